@@ -18,7 +18,14 @@ from typing import Any
 
 import click
 
-from forebear.journal import Journal, JournalBusy, JournalError, JournalMismatch, TrialTable, check_header
+from forebear.journal import (
+    Journal,
+    JournalBusy,
+    JournalError,
+    JournalMismatch,
+    TrialTable,
+    check_header,
+)
 
 EXIT_OK, EXIT_NOTHING_SCORED, EXIT_BAD_INPUT = 0, 1, 2
 

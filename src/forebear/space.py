@@ -224,7 +224,7 @@ class Space:
     def continuous_mask(self) -> np.ndarray:
         """Boolean mask of the coordinates that belong to float parameters."""
         mask = np.zeros(self.dim, dtype=bool)
-        for p, s in zip(self.params, self._slices):
+        for p, s in zip(self.params, self._slices, strict=True):
             if p.kind == "float":
                 mask[s] = True
         return mask
@@ -279,7 +279,7 @@ class Space:
         if x.shape != (self.dim,):
             msg = f"expected a point of shape ({self.dim},), got {x.shape}"
             raise ValueError(msg)
-        return {p.name: p.from_unit(x[s]) for p, s in zip(self.params, self._slices)}
+        return {p.name: p.from_unit(x[s]) for p, s in zip(self.params, self._slices, strict=True)}
 
     def decode_many(self, xs: np.ndarray) -> list[dict[str, Any]]:
         return [self.decode(x) for x in np.atleast_2d(xs)]
@@ -311,7 +311,7 @@ class Space:
     def _from_base(self, u: np.ndarray) -> dict[str, Any]:
         """Map one coordinate per parameter in [0, 1) to a configuration."""
         out: dict[str, Any] = {}
-        for p, t in zip(self.params, u):
+        for p, t in zip(self.params, u, strict=True):
             if p.kind == "categorical":
                 out[p.name] = p.choices[min(len(p.choices) - 1, int(t * len(p.choices)))]
             elif p.kind == "int":

@@ -629,9 +629,9 @@ def load(source: str | os.PathLike[str] | Mapping[str, Any], *, base_dir: str | 
 
 def _build(data: Any, doc: _Doc, base: Path, source: Path | None) -> Spec:
     if data is None:
-        raise SpecError(["spec: the file is empty; a spec needs objective and space"])
+        raise SpecError([f"spec: the file is empty; a spec needs objective and space{doc.where(())}"])
     if not isinstance(data, dict):
-        raise SpecError([f"spec: the top level must be a mapping of keys, got {_describe(data)}"])
+        raise SpecError([f"spec: the top level must be a mapping of keys, got {_describe(data)}{doc.where(())}"])
     _check_keys(doc, (), data, _TOP)
     notes: list[str] = []
     name = data.get("name", source.stem if source else "search")
