@@ -1,0 +1,251 @@
+"""Task families for the quality benchmark.
+
+A family is a set of related tasks over one space. For a held-out task, the
+history is the other tasks of its family, each seen through a fixed design
+of earlier results; the held-out task's objective is then searched from
+scratch by each method.
+
+Two kinds of family:
+
+* analytic transfer families: ``s * f(x - t)`` for a published test function
+  ``f`` on the unit cube, a shift ``t`` uniform in ``[-0.25, 0.25]^D`` clipped so
+  that a minimiser of ``f`` stays inside the cube, a scale ``s`` uniform in
+  ``[0.75, 1.25]``. The parametrisation follows the meta-learning BO
+  literature (e.g. Wistuba & Grabocka 2021, few-shot BO with deep kernels);
+  ``f`` is evaluated at ``clip(x - t, 0, 1)`` so it never leaves its
+  published domain, which leaves its minimum and minimiser (shifted) intact.
+* the real-training family: tasks of the committed table
+  ``data/hgb_tasks.csv.gz`` (see ``metadata.py`` and ``data/DATA_CARD.md``),
+  each task's objective a random forest fitted to its tabled results, as in
+  surrogate benchmarks (Eggensperger et al. 2015).
+
+Normalised regret of a value ``y`` on a task is ``(y - low) / (high - low)``.
+"""
+
+from __future__ import annotations
+
+import csv
+import gzip
+import math
+from collections.abc import Callable, Mapping, Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from scipy.stats import qmc
+
+from forebear.bench import functions
+from forebear.history import History, Task
+from forebear.space import Param, Space
+
+DATA = Path(__file__).parent / "data" / "hgb_tasks.csv.gz"
+
+# name -> (function, dimension, published minimum, one published minimiser in unit coordinates)
+_BRANIN_ARGMIN_UNIT = tuple(((a + 5.0) / 15.0, b / 15.0) for a, b in functions.BRANIN_ARGMIN)
+ANALYTIC: dict[str, tuple[Callable[[np.ndarray], float], int, float, tuple[float, ...]]] = {
+    # Branin has three minimisers; the shift is clipped so that the one
+    # nearest the centre of the square, (pi, 2.275), stays inside.
+    "branin": (functions.branin, 2, functions.BRANIN_MIN, _BRANIN_ARGMIN_UNIT[1]),
+    "hartmann3": (functions.hartmann3, 3, functions.HARTMANN3_MIN, functions.HARTMANN3_ARGMIN),
+    "hartmann6": (functions.hartmann6, 6, functions.HARTMANN6_MIN, functions.HARTMANN6_ARGMIN),
+}
+FAMILIES = (*ANALYTIC, "hgb")
+
+
+@dataclass
+class BenchTask:
+    """One task: an objective over configurations and its normalisation bounds."""
+
+    name: str
+    objective: Callable[[Mapping[str, Any]], float]
+    low: float
+    high: float
+    configs: list[dict[str, Any]]
+    y: np.ndarray
+    notes: dict[str, Any] = field(default_factory=dict)
+
+    def regret(self, value: float | np.ndarray) -> float | np.ndarray:
+        """Normalised regret of ``value`` (0 = best known, 1 = worst known)."""
+        return (np.asarray(value, dtype=float) - self.low) / (self.high - self.low)
+
+
+@dataclass
+class Family:
+    """Related tasks over one space; the history of a task is the others' designs."""
+
+    name: str
+    space: Space
+    tasks: list[BenchTask]
+    source: str
+
+    def history_for(self, index: int) -> History:
+        """The other tasks of the family as a ``History`` (leave one task out)."""
+        if not 0 <= index < len(self.tasks):
+            msg = f"family {self.name}: task index {index} outside 0..{len(self.tasks) - 1}"
+            raise IndexError(msg)
+        out = []
+        for j, t in enumerate(self.tasks):
+            if j == index:
+                continue
+            out.append(Task(t.name, [dict(c) for c in t.configs], self.space.encode_many(t.configs), np.asarray(t.y, dtype=float)))
+        return History(out, [])
+
+
+def unit_space(dim: int) -> Space:
+    """The unit cube as a space of floats ``x0 .. x{dim-1}``."""
+    return Space(tuple(Param(f"x{i}", "float", 0.0, 1.0) for i in range(dim)))
+
+
+def sobol(dim: int, n: int, seed: int) -> np.ndarray:
+    """``n`` points of a scrambled Sobol sequence (first ``n`` of a power-of-two block)."""
+    m = max(1, math.ceil(math.log2(max(n, 2))))
+    return qmc.Sobol(d=dim, scramble=True, seed=seed).random_base2(m)[:n]
+
+
+def analytic_family(name: str, n_tasks: int = 10, n_points: int = 300, seed: int = 0) -> Family:
+    """A transfer family ``s * f(clip(x - t))`` of ``n_tasks`` tasks.
+
+    Parameters
+    ----------
+    name
+        ``branin``, ``hartmann3`` or ``hartmann6``.
+    n_tasks
+        Tasks in the family.
+    n_points
+        Sobol design points per task (what the history holds of it).
+    seed
+        Draws the shifts, scales and designs; fixed per family so every
+        method and seed sees the same tasks.
+    """
+    if name not in ANALYTIC:
+        msg = f"unknown analytic family {name!r}; expected one of {', '.join(ANALYTIC)}"
+        raise ValueError(msg)
+    if n_tasks < 2 or n_points < 1:
+        msg = f"family {name}: need n_tasks >= 2 and n_points >= 1, got {n_tasks}, {n_points}"
+        raise ValueError(msg)
+    f, dim, fmin, argmin = ANALYTIC[name]
+    space = unit_space(dim)
+    rng = np.random.default_rng([seed, dim])
+    xstar = np.asarray(argmin, dtype=float)
+    probe = sobol(dim, 4096, seed=10_000 + seed)
+    tasks = []
+    for k in range(n_tasks):
+        t = np.clip(rng.uniform(-0.25, 0.25, dim), -xstar, 1.0 - xstar)
+        s = float(rng.uniform(0.75, 1.25))
+        g = _shifted(f, t, s)
+        design = sobol(dim, n_points, seed=1000 * (seed + 1) + k)
+        y = np.array([g(x) for x in design])
+        worst = max(float(np.max(y)), max(g(x) for x in probe))
+        configs = space.decode_many(design)
+        tasks.append(BenchTask(
+            name=f"{name}-{k}",
+            objective=_on_configs(g, space),
+            low=s * fmin,
+            high=worst,
+            configs=configs,
+            y=y,
+            notes={"shift": t.round(4).tolist(), "scale": round(s, 4)},
+        ))
+    source = {
+        "branin": "Branin-Hoo on [-5, 10] x [0, 15] mapped to the unit square",
+        "hartmann3": "Hartmann-3 on [0, 1]^3",
+        "hartmann6": "Hartmann-6 on [0, 1]^6",
+    }[name] + " (definitions and minima from the Virtual Library of Simulation Experiments)"
+    return Family(name, space, tasks, source)
+
+
+def _shifted(f: Callable[[np.ndarray], float], t: np.ndarray, s: float) -> Callable[[np.ndarray], float]:
+    def g(x: np.ndarray) -> float:
+        return s * f(np.clip(np.asarray(x, dtype=float) - t, 0.0, 1.0))
+
+    return g
+
+
+def _on_configs(g: Callable[[np.ndarray], float], space: Space) -> Callable[[Mapping[str, Any]], float]:
+    def objective(config: Mapping[str, Any]) -> float:
+        return float(g(space.encode(config)))
+
+    return objective
+
+
+def read_table(path: Path = DATA) -> dict[str, list[dict[str, Any]]]:
+    """Rows of the meta-dataset table grouped by task, values typed per the space."""
+    from forebear.bench.metadata import hgb_space
+
+    space = hgb_space()
+    if not path.is_file():
+        msg = f"meta-dataset table {path} does not exist; build it with python -m forebear.bench.metadata"
+        raise FileNotFoundError(msg)
+    out: dict[str, list[dict[str, Any]]] = {}
+    with gzip.open(path, "rt", newline="") as fh:
+        for line, row in enumerate(csv.DictReader(fh), start=2):
+            config: dict[str, Any] = {}
+            for p in space.params:
+                cell = row.get(p.name)
+                if cell is None or cell == "":
+                    msg = f"{path}: line {line}: no value for {p.name}"
+                    raise ValueError(msg)
+                if p.kind == "categorical":
+                    config[p.name] = p.choices[p.index(float(cell))]
+                elif p.kind == "int":
+                    config[p.name] = int(cell)
+                else:
+                    config[p.name] = float(cell)
+            out.setdefault(row["task"], []).append({"config": config, "error": float(row["error"])})
+    return out
+
+
+def hgb_family(path: Path = DATA, n_points: int | None = None, seed: int = 0) -> Family:
+    """The real-training family: one task per table task, objective a random forest fit.
+
+    ``n_points`` keeps only the first rows of each task's design in the
+    history (the random forest always uses every row).
+    """
+    from forebear.bench.metadata import hgb_space
+
+    space = hgb_space()
+    table = read_table(path)
+    tasks = []
+    for name, rows in table.items():
+        configs = [r["config"] for r in rows]
+        y = np.array([r["error"] for r in rows])
+        X = space.encode_many(configs)
+        keep = len(rows) if n_points is None else n_points
+        tasks.append(BenchTask(
+            name=name,
+            objective=_forest_objective(X, y, space, seed),
+            low=float(y.min()),
+            high=float(y.max()),
+            configs=configs[:keep],
+            y=y[:keep],
+            notes={"rows": len(rows)},
+        ))
+    src = "HistGradientBoostingClassifier 3-fold CV error on scikit-learn's bundled datasets (see data/DATA_CARD.md)"
+    return Family("hgb", space, tasks, src)
+
+
+def _forest_objective(X: np.ndarray, y: np.ndarray, space: Space, seed: int) -> Callable[[Mapping[str, Any]], float]:
+    from sklearn.ensemble import RandomForestRegressor
+
+    forest: list[Any] = []
+
+    def objective(config: Mapping[str, Any]) -> float:
+        # Fitted on first use: only held-out tasks are ever evaluated.
+        if not forest:
+            forest.append(RandomForestRegressor(n_estimators=100, random_state=seed, n_jobs=1).fit(X, y))
+        return float(forest[0].predict(space.encode(config)[None, :])[0])
+
+    return objective
+
+
+def make_family(name: str, n_tasks: int = 10, n_points: int = 300, seed: int = 0) -> Family:
+    """A family by name (``branin``, ``hartmann3``, ``hartmann6`` or ``hgb``)."""
+    if name == "hgb":
+        return hgb_family(n_points=n_points, seed=seed)
+    return analytic_family(name, n_tasks=n_tasks, n_points=n_points, seed=seed)
+
+
+def held_out(family: Family, count: int) -> Sequence[int]:
+    """The indices of the first ``count`` tasks (all when ``count`` exceeds the family)."""
+    return range(min(count, len(family.tasks)))

@@ -1,0 +1,468 @@
+"""Quality benchmark: normalised regret on transfer task families, leave one task out.
+
+For each held-out task of a family, the history is the other tasks of the
+family (see ``families.py``); every method searches the held-out task from
+scratch for the same number of trials, driven in process (no Dask). The
+figures are the mean normalised best-so-far regret with 95% bootstrap
+intervals, the average rank of the sequential methods, trials-to-target and
+the batch efficiency of q = 4 and 8 against q = 1.
+
+``forebear bench quality --smoke`` runs one family, 3 held-out tasks, 2 seeds
+and 15 trials. The full protocol is ``python -m forebear.bench.quality``
+(see ``--help``).
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import shutil
+import tempfile
+import time
+from collections import Counter
+from collections.abc import Mapping, Sequence
+from concurrent.futures import ProcessPoolExecutor
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from forebear.bench.families import Family, make_family
+
+CHECKPOINTS = (5, 10, 25, 50)
+
+
+@dataclass(frozen=True)
+class Method:
+    """One compared method: how to propose, with which batch size."""
+
+    name: str
+    kind: str  # "random", "lhs-random" or "proposer"
+    q: int = 1
+    history: bool = False
+    settings: Mapping[str, Any] = field(default_factory=dict)
+
+
+METHODS: dict[str, Method] = {m.name: m for m in (
+    Method("random", "random"),
+    Method("lhs-random", "lhs-random"),
+    # Plain GP-EI: the engine's Matern-5/2 GP with its Latin hypercube start and no history.
+    Method("gp", "proposer", settings={"model": "gp"}),
+    Method("gp-q4", "proposer", q=4, settings={"model": "gp"}),
+    Method("gp-q8", "proposer", q=8, settings={"model": "gp"}),
+    Method("forebear-cold", "proposer"),
+    Method("forebear-full", "proposer", history=True),
+    Method("forebear-full-q4", "proposer", q=4, history=True),
+    Method("forebear-full-q8", "proposer", q=8, history=True),
+    Method("no-warm-start", "proposer", history=True, settings={"warm_start": False}),
+    Method("no-augment", "proposer", history=True, settings={"augment": False}),
+    Method("no-fine-tune", "proposer", history=True, settings={"fine_tune": False}),
+    Method("no-guard", "proposer", history=True, settings={"guard": False}),
+)}
+SMOKE_METHODS = ("random", "gp", "forebear-cold", "forebear-full")
+#: Size of the Latin hypercube before random search in ``lhs-random``.
+LHS_SIZE = 10
+
+
+@dataclass(frozen=True)
+class Protocol:
+    """What one benchmark run covers."""
+
+    families: tuple[str, ...] = ("branin", "hartmann3", "hartmann6", "hgb")
+    tasks: int = 10
+    seeds: int = 5
+    trials: int = 50
+    methods: tuple[str, ...] = tuple(METHODS)
+    family_size: int = 10
+    history_points: int = 300
+    workers: int = 1
+
+    def __post_init__(self) -> None:
+        unknown = [m for m in self.methods if m not in METHODS]
+        if unknown:
+            msg = f"unknown methods: {', '.join(unknown)}; expected some of {', '.join(METHODS)}"
+            raise ValueError(msg)
+        bad = [f for f in self.families if f not in ("branin", "hartmann3", "hartmann6", "hgb")]
+        if bad:
+            msg = f"unknown families: {', '.join(bad)}"
+            raise ValueError(msg)
+        for name in ("tasks", "seeds", "trials", "family_size", "history_points", "workers"):
+            if getattr(self, name) < 1:
+                msg = f"{name} must be >= 1, got {getattr(self, name)}"
+                raise ValueError(msg)
+        if self.family_size < 2:
+            msg = f"family_size must be >= 2 (one held out, at least one as history), got {self.family_size}"
+            raise ValueError(msg)
+
+
+SMOKE = Protocol(families=("branin",), tasks=3, seeds=2, trials=15, methods=SMOKE_METHODS)
+
+
+# --------------------------------------------------------------------------
+# running one search
+
+
+_FAMILIES: dict[tuple[str, int, int], Family] = {}
+
+
+def _family(name: str, size: int, points: int) -> Family:
+    # Built once per process: the tasks are deterministic in (name, size, points).
+    key = (name, size, points)
+    if key not in _FAMILIES:
+        _FAMILIES[key] = make_family(name, n_tasks=size, n_points=points)
+    return _FAMILIES[key]
+
+
+def search(family: Family, index: int, method: Method, seed: int, trials: int, cache_dir: str | None = None) -> dict[str, Any]:
+    """Run one method on one held-out task; best-so-far normalised regret per trial."""
+    from forebear.proposer import Observation, Proposer
+
+    task = family.tasks[index]
+    space = family.space
+    scores: list[float] = []
+    models: Counter[str] = Counter()
+    sources: Counter[str] = Counter()
+    t0 = time.perf_counter()
+    if method.kind == "random":
+        configs = space.sample(trials, np.random.default_rng([seed, index]))
+        scores = [task.objective(c) for c in configs]
+        sources["random"] = trials
+    elif method.kind == "lhs-random":
+        n0 = min(LHS_SIZE, trials)
+        configs = space.latin_hypercube(n0, seed=seed) + space.sample(trials - n0, np.random.default_rng([seed, index]))
+        scores = [task.objective(c) for c in configs]
+        sources.update({"initial": n0, "random": trials - n0})
+    else:
+        history = family.history_for(index) if method.history else None
+        proposer = Proposer(space, history, seed=seed, cache_dir=cache_dir, **dict(method.settings))
+        observed: list[Any] = []
+        while len(observed) < trials:
+            batch = proposer.propose(min(method.q, trials - len(observed)), observed)
+            if not batch:
+                msg = f"{method.name} proposed nothing after {len(observed)} trials on {task.name}"
+                raise RuntimeError(msg)
+            # A synchronous batch: every proposal of the round is scored before the next round.
+            for p in batch:
+                y = task.objective(p.config)
+                observed.append(Observation(p.config, y))
+                scores.append(y)
+                models[str(p.model)] += 1
+                sources[p.source] += 1
+    best = np.minimum.accumulate(np.asarray(scores, dtype=float))
+    regret = np.maximum(np.asarray(task.regret(best), dtype=float), 0.0)
+    return {
+        "regret": regret.tolist(),
+        "models": dict(models),
+        "sources": dict(sources),
+        "seconds": time.perf_counter() - t0,
+    }
+
+
+def _job(args: tuple[str, int, int, int, Protocol]) -> dict[str, Any]:
+    fam_name, index, seed, trials, proto = args
+    try:
+        import torch
+
+        torch.set_num_threads(1)
+    except ImportError:  # pragma: no cover - torch is a hard dependency
+        pass
+    family = _family(fam_name, proto.family_size, proto.history_points)
+    cache = tempfile.mkdtemp(prefix="forebear-bench-")
+    out: dict[str, Any] = {"family": fam_name, "task": family.tasks[index].name, "seed": seed, "runs": {}}
+    try:
+        for name in proto.methods:
+            out["runs"][name] = search(family, index, METHODS[name], seed, trials, cache_dir=cache)
+    finally:
+        shutil.rmtree(cache, ignore_errors=True)
+    return out
+
+
+def run(proto: Protocol, progress: bool = False) -> list[dict[str, Any]]:
+    """Every (family, held-out task, seed) job of the protocol; one dict per job."""
+    jobs = []
+    for fam_name in proto.families:
+        family = _family(fam_name, proto.family_size, proto.history_points)
+        n = min(proto.tasks, len(family.tasks))
+        jobs += [(fam_name, i, s, proto.trials, proto) for i in range(n) for s in range(proto.seeds)]
+    results: list[dict[str, Any]] = []
+    if proto.workers == 1:
+        for j in jobs:
+            results.append(_job(j))
+            if progress:
+                _say_progress(results[-1], len(results), len(jobs))
+        return results
+    import multiprocessing
+
+    with ProcessPoolExecutor(max_workers=proto.workers, mp_context=multiprocessing.get_context("spawn")) as pool:
+        for r in pool.map(_job, jobs):
+            results.append(r)
+            if progress:
+                _say_progress(r, len(results), len(jobs))
+    return results
+
+
+def _say_progress(r: dict[str, Any], done: int, total: int) -> None:
+    import sys
+
+    secs = sum(v["seconds"] for v in r["runs"].values())
+    print(f"[{done}/{total}] {r['task']} seed {r['seed']}: {secs:.0f}s", file=sys.stderr, flush=True)
+
+
+# --------------------------------------------------------------------------
+# figures
+
+
+def curves(results: Sequence[Mapping[str, Any]], family: str, method: str) -> np.ndarray:
+    """Regret curves of one method on one family, shape (runs, trials), rows in job order."""
+    rows = [r["runs"][method]["regret"] for r in results if r["family"] == family and method in r["runs"]]
+    return np.asarray(rows, dtype=float)
+
+
+def interval(values: np.ndarray, seed: int = 0) -> tuple[float, float, float]:
+    """Mean and 95% percentile-bootstrap interval of the mean (Efron & Tibshirani 1993)."""
+    v = np.asarray(values, dtype=float)
+    if len(v) < 2 or np.all(v == v[0]):
+        return float(v.mean()), float(v.mean()), float(v.mean())
+    from scipy.stats import bootstrap
+
+    res = bootstrap((v,), np.mean, confidence_level=0.95, n_resamples=2000, method="percentile", random_state=seed)
+    return float(v.mean()), float(res.confidence_interval.low), float(res.confidence_interval.high)
+
+
+def summarise(results: Sequence[Mapping[str, Any]], proto: Protocol) -> dict[str, Any]:
+    """The figures of a run: regret with intervals, ranks, trials-to-target, goals."""
+    from scipy.stats import rankdata
+
+    checkpoints = [t for t in CHECKPOINTS if t <= proto.trials] or [proto.trials]
+    if checkpoints[-1] != proto.trials and proto.trials not in checkpoints:
+        checkpoints.append(proto.trials)
+    out: dict[str, Any] = {}
+    for fam in proto.families:
+        c = {m: curves(results, fam, m) for m in proto.methods}
+        regret = {m: {t: interval(c[m][:, t - 1]) for t in checkpoints} for m in proto.methods}
+        seq = [m for m in proto.methods if METHODS[m].q == 1]
+        ranks: dict[str, dict[int, float]] = {m: {} for m in seq}
+        for t in checkpoints:
+            table = np.column_stack([c[m][:, t - 1] for m in seq])
+            r = np.apply_along_axis(rankdata, 1, table).mean(axis=0)
+            for m, v in zip(seq, r, strict=True):
+                ranks[m][t] = float(v)
+        fam_out: dict[str, Any] = {"regret": regret, "rank": ranks, "runs": int(len(c[proto.methods[0]]))}
+        fam_out["models"] = {m: _merge([r["runs"][m]["models"] for r in results if r["family"] == fam]) for m in proto.methods}
+        fam_out["seconds"] = {m: float(np.mean([r["runs"][m]["seconds"] for r in results if r["family"] == fam])) for m in proto.methods}
+        fam_out["goals"] = _goals(c, proto.trials)
+        out[fam] = fam_out
+    return out
+
+
+def _merge(counts: Sequence[Mapping[str, int]]) -> dict[str, int]:
+    total: Counter[str] = Counter()
+    for c in counts:
+        total.update(c)
+    return dict(total)
+
+
+def _goals(c: Mapping[str, np.ndarray], trials: int) -> dict[str, Any]:
+    """The three targets of the benchmark, where the run holds the methods they need."""
+    goals: dict[str, Any] = {}
+    if "gp" in c and "forebear-full" in c:
+        target = float(c["gp"][:, trials - 1].mean())
+        mean = c["forebear-full"].mean(axis=0)
+        hit = np.nonzero(mean <= target)[0]
+        goals["target_regret"] = target
+        goals["trials_to_target"] = int(hit[0] + 1) if len(hit) else None
+        per_run = [int(np.nonzero(row <= target)[0][0] + 1) if np.any(row <= target) else None for row in c["forebear-full"]]
+        goals["runs_on_target_by_10"] = float(np.mean([t is not None and t <= 10 for t in per_run]))
+        goals["trials_to_target_ok"] = goals["trials_to_target"] is not None and goals["trials_to_target"] <= 10
+    t10 = min(10, trials) - 1
+    if "random" in c and "forebear-full" in c:
+        rnd = float(c["random"][:, t10].mean())
+        full = float(c["forebear-full"][:, t10].mean())
+        goals["ratio_to_random_at_10"] = full / rnd if rnd > 0 else None
+        goals["ratio_to_random_ok"] = rnd > 0 and full <= 0.33 * rnd
+    for q in (4, 8):
+        name = f"forebear-full-q{q}"
+        if name in c and "forebear-full" in c:
+            ratios = {}
+            for t in (10, 25, 50):
+                if t <= trials:
+                    seq = float(c["forebear-full"][:, t - 1].mean())
+                    bat = float(c[name][:, t - 1].mean())
+                    ratios[t] = bat / seq if seq > 0 else None
+            goals[f"q{q}_over_q1"] = ratios
+            if q == 8 and ratios:
+                last = ratios[max(ratios)]
+                goals["q8_ok"] = last is not None and last <= 1.1
+    return goals
+
+
+# --------------------------------------------------------------------------
+# output
+
+
+def markdown(summary: Mapping[str, Any], proto: Protocol) -> str:
+    """Tables of one run as Markdown (regret, rank, goals), one section per family."""
+    lines: list[str] = []
+    for fam, s in summary.items():
+        cps = sorted(next(iter(s["regret"].values())))
+        lines += [f"#### {fam} ({s['runs']} runs: held-out tasks x seeds)", ""]
+        lines += ["| method | " + " | ".join(f"regret @{t}" for t in cps) + " |", "|---|" + "---|" * len(cps)]
+        for m, row in s["regret"].items():
+            cells = [f"{mu:.3g} [{lo:.3g}, {hi:.3g}]" for mu, lo, hi in (row[t] for t in cps)]
+            lines.append(f"| {m} | " + " | ".join(cells) + " |")
+        lines += ["", "| method (q = 1) | " + " | ".join(f"rank @{t}" for t in cps) + " |", "|---|" + "---|" * len(cps)]
+        for m, row in s["rank"].items():
+            lines.append(f"| {m} | " + " | ".join(f"{row[t]:.2f}" for t in cps) + " |")
+        g = s["goals"]
+        lines.append("")
+        if "trials_to_target" in g:
+            ttt = g["trials_to_target"]
+            lines.append(f"- trials-to-target (plain GP's {proto.trials}-trial regret {g['target_regret']:.3g}): "
+                         f"{ttt if ttt is not None else f'not reached in {proto.trials}'} "
+                         f"(goal <= 10: {'met' if g['trials_to_target_ok'] else 'missed'}); "
+                         f"runs on target by trial 10: {100 * g['runs_on_target_by_10']:.0f}%")
+        if g.get("ratio_to_random_at_10") is not None:
+            lines.append(f"- regret at 10 trials / random search's: {g['ratio_to_random_at_10']:.2f} "
+                         f"(goal <= 0.33: {'met' if g['ratio_to_random_ok'] else 'missed'})")
+        for q in (4, 8):
+            r = g.get(f"q{q}_over_q1")
+            if r:
+                txt = ", ".join(f"@{t}: {v:.2f}" for t, v in r.items() if v is not None)
+                extra = f" (goal <= 1.1 at {max(r)}: {'met' if g.get('q8_ok') else 'missed'})" if q == 8 else ""
+                lines.append(f"- q={q} regret / q=1 regret, forebear full: {txt}{extra}")
+        models = s["models"].get("forebear-full")
+        if models:
+            lines.append(f"- forebear full proposals by model: {json.dumps(models, sort_keys=True)}")
+        lines.append("")
+    return "\n".join(lines)
+
+
+def plots(results: Sequence[Mapping[str, Any]], proto: Protocol, out_dir: Path) -> list[Path]:
+    """One regret-vs-trials PNG per family and one batch-efficiency PNG."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    paths = []
+    x = np.arange(1, proto.trials + 1)
+    seq = [m for m in proto.methods if METHODS[m].q == 1]
+    for fam in proto.families:
+        fig, ax = plt.subplots(figsize=(6.4, 4.2))
+        for m in seq:
+            c = np.maximum(curves(results, fam, m), 1e-6)
+            mean = c.mean(axis=0)
+            style = "--" if m.startswith("no-") else "-"
+            width = 2.2 if m == "forebear-full" else 1.2
+            ax.plot(x, mean, style, lw=width, label=m)
+            if m in ("random", "gp", "forebear-full"):
+                se = c.std(axis=0, ddof=1) / np.sqrt(len(c)) if len(c) > 1 else np.zeros_like(mean)
+                ax.fill_between(x, np.maximum(mean - 1.96 * se, 1e-6), mean + 1.96 * se, alpha=0.15)
+        ax.set_yscale("log")
+        ax.set_xlabel("trials")
+        ax.set_ylabel("mean normalised regret (best so far)")
+        ax.set_title(f"{fam}: leave one task out, {len(c)} runs")
+        ax.legend(fontsize=7, ncol=2)
+        fig.tight_layout()
+        p = out_dir / f"quality_{fam}.png"
+        fig.savefig(p, dpi=110)
+        plt.close(fig)
+        paths.append(p)
+    batch = [(base, q) for base in ("forebear-full", "gp") for q in (1, 4, 8)
+             if (base if q == 1 else f"{base}-q{q}") in proto.methods]
+    if any(q > 1 for _, q in batch):
+        fig, axes = plt.subplots(1, len(proto.families), figsize=(4.0 * len(proto.families), 3.6), squeeze=False)
+        for ax, fam in zip(axes[0], proto.families, strict=True):
+            for base, q in batch:
+                m = base if q == 1 else f"{base}-q{q}"
+                mean = np.maximum(curves(results, fam, m), 1e-6).mean(axis=0)
+                ax.plot(x, mean, "-" if base == "forebear-full" else ":", lw=1.5, label=f"{base} q={q}")
+            ax.set_yscale("log")
+            ax.set_title(fam)
+            ax.set_xlabel("trials")
+        axes[0][0].set_ylabel("mean normalised regret")
+        axes[0][0].legend(fontsize=7)
+        fig.tight_layout()
+        p = out_dir / "quality_batch.png"
+        fig.savefig(p, dpi=110)
+        plt.close(fig)
+        paths.append(p)
+    return paths
+
+
+def main(smoke: bool = False, out_dir: str | None = None, proto: Protocol | None = None, progress: bool = False) -> dict[str, Any]:
+    """Run the benchmark; returns its figures (``mean_regret`` at the last trial per method).
+
+    Parameters
+    ----------
+    smoke
+        The small protocol (one family, 3 held-out tasks, 2 seeds, 15 trials).
+    out_dir
+        Folder for curves.json, results.md and the PNGs; nothing is written without it.
+    proto
+        An explicit protocol (overrides ``smoke``).
+    """
+    proto = proto or (SMOKE if smoke else Protocol())
+    t0 = time.perf_counter()
+    results = run(proto, progress=progress)
+    wall = time.perf_counter() - t0
+    summary = summarise(results, proto)
+    first = proto.families[0]
+    mean_regret = {m: float(curves(results, first, m)[:, -1].mean()) for m in proto.methods}
+    figures: dict[str, Any] = {
+        "mean_regret": mean_regret,
+        "family": first,
+        "trials": proto.trials,
+        "runs": summary[first]["runs"],
+        "goals": {f: s["goals"] for f, s in summary.items()},
+        "models": {f: s["models"].get("forebear-full") for f, s in summary.items()},
+        "wall_s": round(wall, 1),
+        "cores": os.cpu_count(),
+        "protocol": {k: getattr(proto, k) for k in ("families", "tasks", "seeds", "trials", "methods", "family_size", "history_points", "workers")},
+    }
+    if out_dir is not None:
+        out = Path(out_dir)
+        out.mkdir(parents=True, exist_ok=True)
+        (out / "curves.json").write_text(json.dumps({"protocol": figures["protocol"], "results": results}))
+        (out / "summary.json").write_text(json.dumps(_jsonable(summary), indent=1))
+        (out / "results.md").write_text(markdown(summary, proto))
+        figures["plots"] = [str(p) for p in plots(results, proto, out)]
+    return _jsonable(figures)
+
+
+def _jsonable(obj: Any) -> Any:
+    if isinstance(obj, dict):
+        return {str(k): _jsonable(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_jsonable(v) for v in obj]
+    if isinstance(obj, (np.floating, np.integer)):
+        return obj.item()
+    return obj
+
+
+def _cli(argv: Sequence[str] | None = None) -> None:
+    d = Protocol()
+    ap = argparse.ArgumentParser(prog="python -m forebear.bench.quality", description=__doc__.splitlines()[0])
+    ap.add_argument("--families", nargs="+", default=list(d.families))
+    ap.add_argument("--tasks", type=int, default=d.tasks, help="Held-out tasks per family.")
+    ap.add_argument("--seeds", type=int, default=d.seeds)
+    ap.add_argument("--trials", type=int, default=d.trials)
+    ap.add_argument("--methods", nargs="+", default=list(d.methods))
+    ap.add_argument("--family-size", type=int, default=d.family_size, help="Tasks per analytic family.")
+    ap.add_argument("--history-points", type=int, default=d.history_points, help="Design points per history task.")
+    ap.add_argument("--workers", type=int, default=d.workers, help="Processes.")
+    ap.add_argument("--out", default=None, help="Folder for curves.json, results.md and PNGs.")
+    ap.add_argument("--smoke", action="store_true")
+    ns = ap.parse_args(argv)
+    try:
+        proto = SMOKE if ns.smoke else Protocol(tuple(ns.families), ns.tasks, ns.seeds, ns.trials, tuple(ns.methods),
+                                                  ns.family_size, ns.history_points, ns.workers)
+    except ValueError as exc:
+        ap.error(str(exc))
+    print(json.dumps(main(out_dir=ns.out, proto=proto, progress=True), indent=1))
+
+
+if __name__ == "__main__":
+    _cli()

@@ -1,0 +1,137 @@
+"""Task families of the quality benchmark: analytic transfer families and the meta-dataset."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from forebear.bench import functions
+from forebear.bench.families import (
+    ANALYTIC,
+    DATA,
+    analytic_family,
+    hgb_family,
+    read_table,
+    unit_space,
+)
+from forebear.bench.metadata import COLUMNS, TASKS, design, hgb_space, score
+
+
+@pytest.mark.parametrize("name", sorted(ANALYTIC))
+def test_analytic_tasks_keep_the_published_minimum_inside(name: str) -> None:
+    # Minima and minimisers: Virtual Library of Simulation Experiments (see tests/references.md).
+    fam = analytic_family(name, n_tasks=6, n_points=64, seed=3)
+    f, dim, fmin, argmin = ANALYTIC[name]
+    assert fam.space.dim == dim and len(fam.tasks) == 6
+    for task in fam.tasks:
+        t = np.asarray(task.notes["shift"])
+        s = task.notes["scale"]
+        assert np.all(np.abs(t) <= 0.25) and 0.75 <= s <= 1.25
+        xstar = np.asarray(argmin) + t
+        assert np.all((xstar >= -1e-4) & (xstar <= 1 + 1e-4))
+        at_min = task.objective(fam.space.decode(np.clip(xstar, 0, 1)))
+        # notes round t to 4 digits, so the minimiser is only known to ~1e-4.
+        assert at_min == pytest.approx(task.low, abs=2e-3 * abs(fmin) + 2e-3)
+        assert task.low == pytest.approx(s * fmin, rel=1e-3)
+        # No design point beats the published minimum; the worst bound covers the design.
+        assert np.min(task.y) >= task.low - 1e-9
+        assert np.max(task.y) <= task.high
+        r = task.regret(task.y)
+        assert np.all((r >= 0) & (r <= 1))
+
+
+def test_branin_family_uses_the_published_function() -> None:
+    fam = analytic_family("branin", n_tasks=2, n_points=8, seed=0)
+    task = fam.tasks[0]
+    t = np.asarray(task.notes["shift"])
+    s = task.notes["scale"]
+    x = np.array([0.9, 0.7])
+    # Branin-Hoo (Virtual Library of Simulation Experiments), scaled and shifted.
+    expect = s * functions.branin(np.clip(x - t, 0, 1))
+    assert task.objective({"x0": 0.9, "x1": 0.7}) == pytest.approx(expect, rel=1e-3)
+
+
+def test_families_are_deterministic_and_tasks_differ() -> None:
+    a = analytic_family("hartmann3", n_tasks=4, n_points=16, seed=1)
+    b = analytic_family("hartmann3", n_tasks=4, n_points=16, seed=1)
+    assert [t.notes for t in a.tasks] == [t.notes for t in b.tasks]
+    assert np.array_equal(a.tasks[2].y, b.tasks[2].y)
+    shifts = {tuple(t.notes["shift"]) for t in a.tasks}
+    assert len(shifts) == 4
+
+
+def test_history_is_the_other_tasks() -> None:
+    fam = analytic_family("hartmann6", n_tasks=5, n_points=32, seed=0)
+    hist = fam.history_for(2)
+    assert len(hist) == 4
+    assert [t.name for t in hist.tasks] == [fam.tasks[i].name for i in (0, 1, 3, 4)]
+    for t in hist.tasks:
+        assert t.X.shape == (32, 6) and t.y.shape == (32,)
+        assert len(t.configs) == 32
+    with pytest.raises(IndexError, match="task index 5"):
+        fam.history_for(5)
+
+
+def test_bad_family_arguments_name_the_problem() -> None:
+    with pytest.raises(ValueError, match="unknown analytic family 'rosen'"):
+        analytic_family("rosen")
+    with pytest.raises(ValueError, match="n_tasks >= 2"):
+        analytic_family("branin", n_tasks=1)
+
+
+def test_unit_space_is_identity_encoded() -> None:
+    sp = unit_space(3)
+    x = np.array([0.1, 0.5, 0.9])
+    assert np.allclose(sp.encode(sp.decode(x)), x)
+
+
+# -- the meta-dataset ------------------------------------------------------------
+
+
+def test_committed_table_has_enough_tasks_and_configurations() -> None:
+    table = read_table(DATA)
+    assert len(table) >= 20
+    assert set(table) == {t.name for t in TASKS}
+    space = hgb_space()
+    for name, rows in table.items():
+        assert len(rows) >= 300, name
+        for r in rows[:20]:
+            space.validate(r["config"])
+            assert 0.0 <= r["error"] <= 1.0
+        # Every task sees the same Sobol design.
+        assert [r["config"] for r in rows[:5]] == [r["config"] for r in table["iris"][:5]]
+    # Mixed types: a log float, ints and one categorical.
+    kinds = {p.kind for p in space.params}
+    assert kinds == {"float", "int", "categorical"} and 4 <= len(space.params) <= 6
+    assert COLUMNS[0] == "task"
+
+
+def test_table_is_reproducible_from_the_script() -> None:
+    table = read_table(DATA)
+    configs = design(300)
+    by_name = {t.name: t for t in TASKS}
+    for name in ("iris", "wine-1v2"):
+        row = table[name][3]
+        assert row["config"] == configs[3]
+        err, _, _ = score(by_name[name], configs[3])
+        assert err == pytest.approx(row["error"], abs=1e-5)
+
+
+def test_hgb_family_objective_is_a_forest_fitted_to_the_table() -> None:
+    fam = hgb_family(n_points=50)
+    assert len(fam.tasks) >= 20
+    task = fam.tasks[0]
+    assert len(task.configs) == 50
+    table = read_table(DATA)[task.name]
+    pred = np.array([task.objective(r["config"]) for r in table[:60]])
+    true = np.array([r["error"] for r in table[:60]])
+    # In-sample fit of a random forest: close, and bounded by the tabled extremes.
+    assert np.corrcoef(pred, true)[0, 1] > 0.9
+    assert np.all(pred >= task.low - 1e-12) and np.all(pred <= task.high + 1e-12)
+    hist = fam.history_for(0)
+    assert len(hist) == len(fam.tasks) - 1 and hist.tasks[0].X.shape == (50, fam.space.dim)
+
+
+def test_read_table_rejects_a_missing_file(tmp_path) -> None:
+    with pytest.raises(FileNotFoundError, match="does not exist"):
+        read_table(tmp_path / "none.csv.gz")
