@@ -203,6 +203,22 @@ def test_pbs_jobqueue_yaml_renders_a_gpu_job_script() -> None:
     assert "--resources GPU=1" in script
 
 
+@pytest.mark.skipif(importlib.util.find_spec("dask_jobqueue") is None, reason="dask-jobqueue is not installed (the slurm extra)")
+@pytest.mark.parametrize("section", ["slurm", "pbs"])
+def test_deploy_specs_render_one_gpu_worker_per_job(section: str) -> None:
+    """Through forebear's own dispatch: each job has one GPU, so exactly one worker may advertise it."""
+    from forebear.dispatch import jobqueue_cluster
+
+    cluster = jobqueue_cluster(spec_mod.load(DEPLOY / section / "search.yaml"))
+    try:
+        script = cluster.job_script()
+    finally:
+        cluster.close()
+    assert "--resources GPU=1" in script
+    assert "--nworkers" not in script, f"several workers would share one GPU:\n{script}"
+    assert ("--gres=gpu:1" in script) if section == "slurm" else ("ngpus=1" in script)
+
+
 # -- TLS: the Kubernetes scheduler/worker arguments with make-certs.sh's certificates --
 
 
