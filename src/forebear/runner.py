@@ -18,6 +18,7 @@ from __future__ import annotations
 
 import json
 import os
+import re
 import select
 import shutil
 import signal
@@ -375,20 +376,16 @@ def _killpg(pid: int) -> None:
         pass
 
 
+_PLACEHOLDER = re.compile(r"\{([A-Za-z_][\w.-]*)\}")
+
+
 def _substitute(item: str, config: Mapping[str, Any]) -> str:
-    """Fill ``{name}`` placeholders of one argv item; the item stays one argument."""
-    try:
-        return item.format_map(_Values(config))
-    except (ValueError, IndexError) as exc:
-        msg = f"command item {item!r}: {exc}"
-        raise ValueError(msg) from None
+    """Fill ``{name}`` placeholders of one argv item; the item stays one argument.
 
-
-class _Values(dict):  # type: ignore[type-arg]
-    """format_map values: unknown names stay as written, so literal braces survive."""
-
-    def __missing__(self, key: str) -> str:
-        return "{" + key + "}"
+    Only names of the configuration are replaced; any other braces (a JSON
+    snippet, a Python one-liner) stay as written.
+    """
+    return _PLACEHOLDER.sub(lambda m: str(config[m.group(1)]) if m.group(1) in config else m.group(0), item)
 
 
 def _read_log(log: Path, out: Path | None) -> str:
