@@ -76,6 +76,9 @@ class LoopbackCluster:
         self.tls = dict(tls) if tls else None
         self.resources = resources
         self.env = test_env(env)
+        # Folders that tests/objectives.py's counted and stall_signal objectives report into.
+        self.env.setdefault("FOREBEAR_TEST_COUNTER", str(folder / "counter"))
+        self.env.setdefault("FOREBEAR_TEST_SIGNAL", str(folder / "signals"))
         self.workers: list[subprocess.Popen[Any]] = []
         self.procs: list[subprocess.Popen[Any]] = []
         self._n = 0

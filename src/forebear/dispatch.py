@@ -38,15 +38,18 @@ WORKER_WAIT = 60.0  # seconds to wait for a first worker of an address cluster b
 NO_WORKERS_TIMEOUT = "120s"  # embedded clusters: a task no worker can run fails instead of waiting forever
 
 
-class ClusterError(RuntimeError):
-    """The cluster cannot be created or reached, or cannot run the trials as asked."""
+class ClusterError(ConnectionError):
+    """The cluster cannot be created or reached."""
 
     def __reduce__(self) -> tuple[Any, ...]:
         return (self.__class__, self.args)
 
 
-class UnsatisfiableResources(ClusterError):
+class UnsatisfiableResources(ValueError):
     """No worker offers the resources each trial asks for."""
+
+    def __reduce__(self) -> tuple[Any, ...]:
+        return (self.__class__, self.args)
 
 
 # --------------------------------------------------------------------------

@@ -562,5 +562,24 @@ def check_header(table: TrialTable, path: Path, spec_hash: str | None = None) ->
         raise JournalMismatch(msg)
 
 
+def load(path: str | os.PathLike[str]) -> TrialTable:
+    """The trial table of the journal at ``path`` (``forebear.load``); ``.best()`` is the best trial.
+
+    Raises
+    ------
+    JournalError
+        When the file is missing or unreadable.
+    JournalMismatch
+        When it is not a forebear journal, or of a newer format.
+    """
+    p = Path(path)
+    if not p.is_file():
+        msg = f"journal {p}: no such file"
+        raise JournalError(2, msg)
+    table = Journal(p).fold()
+    check_header(table, p)
+    return table
+
+
 def finite(x: Any) -> bool:
     return isinstance(x, (int, float)) and not isinstance(x, bool) and math.isfinite(x)

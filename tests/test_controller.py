@@ -1,0 +1,169 @@
+"""The controller against a real loopback cluster: budgets, concurrency, failures, resume checks."""
+
+from __future__ import annotations
+
+import io
+from collections import Counter
+from pathlib import Path
+from typing import Any
+
+import pytest
+
+import forebear
+from forebear.controller import Controller, SpecChanged, spec_changes
+from forebear.journal import Journal, JournalBusy
+from forebear.progress import Progress
+from forebear.spec import load
+
+from .conftest import LoopbackCluster
+
+
+def make_spec(tmp: Path, cluster: LoopbackCluster, call: str = "objectives:quadratic", **budget: Any) -> dict[str, Any]:
+    b = {"trials": 6, "batch": 2, "concurrency": 2, "retries": 1}
+    b.update(budget)
+    return {
+        "name": "ctl",
+        "objective": {"call": call, "minimize": "loss"},
+        "space": {"x": {"float": [0.0, 1.0]}, "y": {"float": [-1.0, 1.0]}},
+        "budget": b,
+        "cluster": {"address": cluster.address},
+        "journal": str(tmp / "runs" / "ctl.jsonl"),
+        "seed": 3,
+    }
+
+
+def kinds_by_trial(journal: Path) -> dict[int, list[str]]:
+    out: dict[int, list[str]] = {}
+    for rec in Journal(journal).records():
+        if "trial" in rec:
+            out.setdefault(rec["trial"], []).append(rec["kind"])
+    return out
+
+
+def test_search_completes_and_records_everything(tmp_path: Path, shared_loopback: LoopbackCluster) -> None:
+    spec = make_spec(tmp_path, shared_loopback, trials=5)
+    result = forebear.run(spec)
+    assert result.closed == "budget"
+    assert result.counts["scored"] == 5 and len(result.trials) == 5
+    table = forebear.load(tmp_path / "runs" / "ctl.jsonl")
+    assert table.best() is not None and table.best().trial == result.best.trial
+    assert result.best.score == min(t.score for t in result.trials)
+    for kinds in kinds_by_trial(tmp_path / "runs" / "ctl.jsonl").values():
+        assert kinds == ["proposed", "started", "scored"]
+    assert table.closed is not None and table.closed["reason"] == "budget"
+    # Rerunning a finished search does nothing and says so.
+    again = forebear.run(spec)
+    assert again.counts == result.counts
+
+
+def test_concurrency_never_exceeded(tmp_path: Path, shared_loopback: LoopbackCluster, monkeypatch: pytest.MonkeyPatch) -> None:
+    # The counter folder is read by the objective on the workers; the workers were started with this
+    # environment variable unset, so pass the folder through the configuration's seconds and a fixed path.
+    counter = shared_loopback.folder / "counter"
+    spec = make_spec(tmp_path, shared_loopback, call="objectives:counted", trials=6, concurrency=1, batch=1)
+    result = forebear.run(spec)
+    assert result.counts["scored"] == 6
+    assert int((counter / "peak").read_text()) == 1
+    assert int((counter / "running").read_text()) == 0
+
+
+def test_objective_errors_fail_without_retry(tmp_path: Path, shared_loopback: LoopbackCluster) -> None:
+    spec = make_spec(tmp_path, shared_loopback, call="objectives:crash", trials=2)
+    result = forebear.run(spec)
+    assert result.best is None and result.counts["failed"] == 2
+    for kinds in kinds_by_trial(tmp_path / "runs" / "ctl.jsonl").values():
+        assert kinds == ["proposed", "started", "failed"]
+    assert "ValueError" in (result.trials[0].error or "")
+
+
+def test_retry_errors_retries_then_fails(tmp_path: Path, shared_loopback: LoopbackCluster) -> None:
+    spec = make_spec(tmp_path, shared_loopback, call="objectives:crash", trials=1, retries=2, retry_errors=True)
+    result = forebear.run(spec)
+    assert result.counts["failed"] == 1
+    kinds = kinds_by_trial(tmp_path / "runs" / "ctl.jsonl")[0]
+    assert kinds == ["proposed"] + ["started", "failed"] * 3
+    recs = [r for r in Journal(tmp_path / "runs" / "ctl.jsonl").records() if r["kind"] == "failed"]
+    assert [r["retryable"] for r in recs] == [True, True, False]
+
+
+def test_maximize_and_dict_metric(tmp_path: Path, shared_loopback: LoopbackCluster) -> None:
+    spec = make_spec(tmp_path, shared_loopback, call="objectives:quadratic_metrics", trials=4)
+    spec["objective"] = {"call": "objectives:quadratic_metrics", "maximize": "accuracy"}
+    result = forebear.run(spec)
+    assert result.best.score == max(t.score for t in result.trials)
+    assert "loss" in result.best.metrics
+
+
+def test_changed_spec_is_refused_with_the_changes(tmp_path: Path, shared_loopback: LoopbackCluster) -> None:
+    spec = make_spec(tmp_path, shared_loopback, trials=2)
+    forebear.run(spec)
+    changed = {**spec, "seed": 4, "space": {"x": {"float": [0.0, 2.0]}, "z": {"int": [1, 3]}}}
+    with pytest.raises(SpecChanged) as err:
+        forebear.run(changed)
+    text = str(err.value)
+    assert "seed: 3 -> 4" in text and "space.x" in text and "space.y: removed" in text and "space.z: added" in text
+    bigger = {**spec, "budget": {**spec["budget"], "trials": 4}}
+    with pytest.raises(SpecChanged, match="give --extend"):
+        forebear.run(bigger)
+    result = forebear.run(bigger, extend=True)
+    assert result.counts["scored"] == 4
+    # The extended budget is now the journal's: a plain rerun is accepted.
+    assert forebear.run(bigger).counts["scored"] == 4
+
+
+def test_spec_changes_rules(tmp_path: Path) -> None:
+    base = {"objective": {"call": "m:f", "minimize": "loss"}, "space": {"x": {"float": [0, 1]}}, "budget": {"trials": 5, "batch": 2, "concurrency": 2}}
+    s = load(base, base_dir=tmp_path)
+    from forebear.controller import search_record
+
+    header = search_record(s)
+    assert spec_changes(header, s, extend=False) == ([], False)
+    smaller = load({**base, "budget": {"trials": 3, "batch": 2, "concurrency": 2}}, base_dir=tmp_path)
+    changes, _ = spec_changes(header, smaller, extend=True)
+    assert changes == ["budget.trials: 5 -> 3"]
+    other = load({**base, "budget": {"trials": 5, "batch": 2, "concurrency": 1}}, base_dir=tmp_path)
+    assert spec_changes(header, other, extend=True)[0] == ["budget.concurrency: 2 -> 1"]
+
+
+def test_second_controller_is_refused(tmp_path: Path, shared_loopback: LoopbackCluster) -> None:
+    spec = load(make_spec(tmp_path, shared_loopback, trials=1))
+    from forebear.journal import ControllerLock
+
+    with ControllerLock(Journal(spec.journal)):
+        with pytest.raises(JournalBusy, match="is driven by pid"):
+            Controller(spec).run()
+
+
+def test_missing_objective_module_fails_every_trial_clearly(tmp_path: Path, shared_loopback: LoopbackCluster) -> None:
+    spec = make_spec(tmp_path, shared_loopback, call="not_installed_anywhere:train", trials=2)
+    result = forebear.run(spec)
+    assert result.counts["failed"] == 2
+    assert "cannot import objective not_installed_anywhere:train" in (result.trials[0].error or "")
+
+
+def test_unsatisfiable_resources_fail_fast(tmp_path: Path, shared_loopback: LoopbackCluster) -> None:
+    spec = {**make_spec(tmp_path, shared_loopback, trials=1), "resources": {"GPU": 1}}
+    with pytest.raises(ValueError, match=r"resources \{GPU: 1\}: no worker"):
+        forebear.run(spec)
+    assert not (tmp_path / "runs" / "ctl.jsonl").exists()  # nothing written
+
+
+def test_plain_progress_lines() -> None:
+    out = io.StringIO()
+    p = Progress(4, metric="loss", stream=out)
+    p.update(scored=1, failed=0, running=2, best=0.5, best_trial=0, event="trial 0 scored 0.5")
+    p.update(scored=1, failed=1, running=1, best=0.5, best_trial=0, event="trial 1 failed: boom")
+    lines = out.getvalue().splitlines()
+    assert len(lines) == 2
+    assert "1/4 finished: scored 1 failed 0 running 2 | best loss 0.5 (trial 0)" in lines[0]
+    assert "remaining ~" in lines[1] and "failed 1" in lines[1]
+    quiet = io.StringIO()
+    Progress(4, metric="loss", stream=quiet, quiet=True).update(scored=1, failed=0, running=0, best=1.0, best_trial=0, event="x")
+    assert quiet.getvalue() == ""
+
+
+def test_each_trial_terminal_once(tmp_path: Path, shared_loopback: LoopbackCluster) -> None:
+    spec = make_spec(tmp_path, shared_loopback, call="objectives:sleep_from_x", trials=6, concurrency=2, batch=3)
+    forebear.run(spec)
+    terminal = Counter(r["trial"] for r in Journal(tmp_path / "runs" / "ctl.jsonl").records() if r["kind"] in ("scored", "failed"))
+    assert sorted(terminal) == list(range(6)) and set(terminal.values()) == {1}
