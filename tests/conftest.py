@@ -26,7 +26,7 @@ TESTS = Path(__file__).resolve().parent
 START_DEADLINE = 90.0  # seconds; workers on a busy 2-core machine take several seconds to import
 
 
-def test_env(extra: Mapping[str, str] | None = None) -> dict[str, str]:
+def child_env(extra: Mapping[str, str] | None = None) -> dict[str, str]:
     """The environment for processes a test starts: tests/ on PYTHONPATH."""
     env = dict(os.environ)
     env["PYTHONPATH"] = os.pathsep.join([str(TESTS), *filter(None, [env.get("PYTHONPATH")])])
@@ -36,7 +36,7 @@ def test_env(extra: Mapping[str, str] | None = None) -> dict[str, str]:
 
 
 # The embedded LocalCluster's workers are started by this process: they must find objectives too.
-os.environ["PYTHONPATH"] = test_env()["PYTHONPATH"]
+os.environ["PYTHONPATH"] = child_env()["PYTHONPATH"]
 
 
 def reap(proc: subprocess.Popen[Any], grace: float = 5.0) -> None:
@@ -75,7 +75,7 @@ class LoopbackCluster:
         self.folder.mkdir(parents=True, exist_ok=True)
         self.tls = dict(tls) if tls else None
         self.resources = resources
-        self.env = test_env(env)
+        self.env = child_env(env)
         # Folders that tests/objectives.py's counted and stall_signal objectives report into.
         self.env.setdefault("FOREBEAR_TEST_COUNTER", str(folder / "counter"))
         self.env.setdefault("FOREBEAR_TEST_SIGNAL", str(folder / "signals"))

@@ -57,6 +57,7 @@ log = logging.getLogger("forebear.controller")
 RETRY_REASONS = ("worker", "timeout")  # lost attempts that use up a retry; restarts and interrupts do not
 BUDGET_KEYS = ("trials", "batch", "concurrency", "trial_timeout", "retries", "retry_errors", "wall_time")
 EXTENDABLE = ("trials", "wall_time")
+RESOURCE_CHECK_EVERY = 5.0  # seconds between checks that some worker still offers the trials' resources
 
 
 class SpecChanged(ValueError):
@@ -255,6 +256,7 @@ class Controller:
         self.inflight: dict[Any, tuple[int, int, dict[str, Any]]] = {}
         self.retry_queue: deque[int] = deque()
         self.shared: bool | None = None
+        self._next_resource_check = time.monotonic() + RESOURCE_CHECK_EVERY
 
     # -- output ---------------------------------------------------------------
 
@@ -390,6 +392,7 @@ class Controller:
                         self.say("the proposer has no new configuration to offer (space exhausted); closing")
                         break
                     continue
+                self._watch_resources()
                 wait = 0.5 if deadline is None else max(0.0, min(0.5, deadline - time.monotonic()))
                 events = [self._collect(fut) for fut in _ready(ac, wait)]
                 if events and self.stop.reason is None:
@@ -420,6 +423,16 @@ class Controller:
             if self.progress is not None:
                 self.progress.close()
         return self._close(closed)
+
+    def _watch_resources(self) -> None:
+        """Fail instead of waiting forever when the workers that could run a trial are gone."""
+        if not self.spec.resources or self._dispatch is None:
+            return
+        now = time.monotonic()
+        if now < self._next_resource_check:
+            return
+        self._next_resource_check = now + RESOURCE_CHECK_EVERY
+        self._dispatch.check_resources(self.spec.resources)
 
     def _close(self, reason: str, error: str | None = None) -> SearchResult:
         table = self.journal.fold()
