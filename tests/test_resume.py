@@ -18,7 +18,7 @@ from forebear.controller import Controller
 from forebear.journal import Journal, fold
 from forebear.spec import load
 
-from .conftest import LoopbackCluster, reap, child_env
+from .conftest import LoopbackCluster, child_env, reap
 
 DEADLINE = 120.0
 
