@@ -280,6 +280,8 @@ def jobqueue_cluster(spec: Spec) -> Any:
         if "--resources" not in extra_args:
             extra_args += ["--resources", "GPU=1"]
     opts.setdefault("cores", 1)
+    if not gpus:
+        opts.setdefault("processes", int(opts["cores"]))  # one single-thread worker per core
     opts.setdefault("memory", "4GB")
     security = security_for(cl)
     if security is not None:

@@ -1,0 +1,138 @@
+"""Cluster creation: loopback-only embedded cluster, address warnings, job scripts, resources."""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Any
+
+import psutil
+import pytest
+
+from forebear.dispatch import (
+    Dispatch,
+    UnsatisfiableResources,
+    connect,
+    declared_resources,
+    insecure_warning,
+    jobqueue_cluster,
+)
+from forebear.spec import load
+
+
+def base(tmp: Path, cluster: dict[str, Any], **extra: Any) -> Any:
+    return load({
+        "objective": {"call": "objectives:quadratic", "minimize": "loss"},
+        "space": {"x": {"float": [0.0, 1.0]}},
+        "budget": {"trials": 2, "concurrency": 2},
+        "cluster": cluster,
+        "journal": str(tmp / "j.jsonl"),
+        **extra,
+    }, base_dir=tmp)
+
+
+@pytest.mark.parametrize(
+    ("address", "allow", "warns"),
+    [
+        ("tcp://10.1.2.3:8786", False, True),
+        ("scheduler.internal:8786", False, True),
+        ("tcp://10.1.2.3:8786", True, False),
+        ("tcp://127.0.0.1:8786", False, False),
+        ("tcp://localhost:8786", False, False),
+        ("tcp://[::1]:8786", False, False),
+        ("tls://10.1.2.3:8786", False, False),
+    ],
+)
+def test_insecure_warning(address: str, allow: bool, warns: bool) -> None:
+    text = insecure_warning(address, allow)
+    assert (text is not None) == warns
+    if text:
+        assert "anyone who can reach it can run code" in text
+
+
+def test_local_cluster_listens_on_loopback_only(tmp_path: Path) -> None:
+    said: list[str] = []
+    with connect(base(tmp_path, {"local": {"workers": 2}}), said.append) as d:
+        assert d.kind == "local" and len(d.worker_resources()) == 2
+        assert any(s.startswith("dashboard: http://127.0.0.1:") for s in said)
+        me = psutil.Process()
+        listening = []
+        for proc in [me, *me.children(recursive=True)]:
+            try:
+                conns = proc.net_connections(kind="inet")
+            except psutil.Error:
+                continue
+            listening += [c.laddr for c in conns if c.status == psutil.CONN_LISTEN]
+        assert len(listening) >= 5  # scheduler, dashboard, 2 workers, 2 nannies
+        assert {a.ip for a in listening} == {"127.0.0.1"}, listening
+        assert d.client.run_on_scheduler(lambda dask_scheduler: dask_scheduler.allowed_failures) == 0
+        # A resource no worker offers is refused up front, not left waiting.
+        with pytest.raises(UnsatisfiableResources, match=r"GPU: 1"):
+            d.check_resources({"GPU": 1})
+        d.check_resources({})
+
+
+def _jobqueue_spec(tmp: Path, kind: str, certs: dict[str, str] | None, gpus: int | None = 1) -> Any:
+    cluster: dict[str, Any] = {
+        kind: {
+            "jobs": 2,
+            "cores": 4,
+            "memory": "16GB",
+            "walltime": "02:00:00",
+            "python": "/opt/team/bin/python",
+            "scheduler_options": {"host": "127.0.0.1"},
+        }
+    }
+    if gpus:
+        cluster[kind]["gpus"] = gpus
+    if certs:
+        cluster["tls"] = certs
+    return base(tmp, cluster)
+
+
+def test_slurm_job_script(tmp_path: Path) -> None:
+    pytest.importorskip("dask_jobqueue")
+    certs = _write_temporary_certs(tmp_path)
+    cluster = jobqueue_cluster(_jobqueue_spec(tmp_path, "slurm", certs))
+    try:
+        script = cluster.job_script()
+    finally:
+        cluster.close()
+    assert "#SBATCH --cpus-per-task=4" in script
+    assert "#SBATCH --mem=15G" in script  # dask-jobqueue writes 16GB as 15G (GiB, rounded down)
+    assert "#SBATCH -t 02:00:00" in script
+    assert "#SBATCH --gres=gpu:1" in script
+    assert "/opt/team/bin/python -m distributed.cli.dask_worker tls://" in script
+    assert "--resources GPU=1" in script and "--nworkers" not in script  # one worker per GPU
+    for flag in ("--tls-ca-file", "--tls-cert", "--tls-key"):
+        assert flag in script
+
+
+def test_pbs_job_script(tmp_path: Path) -> None:
+    pytest.importorskip("dask_jobqueue")
+    cluster = jobqueue_cluster(_jobqueue_spec(tmp_path, "pbs", None, gpus=None))
+    try:
+        script = cluster.job_script()
+    finally:
+        cluster.close()
+    assert "#PBS -l walltime=02:00:00" in script
+    assert "#PBS -l select=1:ncpus=4:mem=15GB" in script  # 16GB written as 15GB (GiB, rounded down)
+    assert "/opt/team/bin/python -m distributed.cli.dask_worker tcp://" in script
+    assert "--nthreads 1" in script and "--nworkers 4" in script  # one single-thread worker per core
+
+
+def test_declared_resources(tmp_path: Path) -> None:
+    spec = base(tmp_path, {"slurm": {"worker_extra_args": ["--resources", "GPU=2,MEM=8"]}})
+    assert declared_resources(spec) == {"GPU": 2.0, "MEM": 8.0}
+    d = Dispatch(client=None, kind="slurm")  # type: ignore[arg-type]
+    d.check_resources({"GPU": 2}, declared=declared_resources(spec))
+    with pytest.raises(UnsatisfiableResources, match="resources offered: GPU, MEM"):
+        d.check_resources({"GPU": 3}, declared=declared_resources(spec))
+
+
+def _write_temporary_certs(tmp: Path) -> dict[str, str]:
+    pytest.importorskip("cryptography")
+    from distributed.security import Security
+
+    from .test_tls import write_certs
+
+    return write_certs(Security.temporary(), tmp / "certs")
