@@ -30,12 +30,12 @@ class _Loader(yaml.SafeLoader):
 
 @dataclass
 class Doc:
+    """Lines of keys and the errors found, for one spec file (``filename`` None for a mapping)."""
+
     lines: dict[tuple[str, ...], int]
     errors: list[str]
     filename: str | None
     nodes: int = 0
-
-    """Lines of keys and the errors found, for one spec file (``filename`` None for a mapping)."""
 
     def where(self, path: tuple[str, ...]) -> str:
         if self.filename is None:
