@@ -184,7 +184,7 @@ def _timeline(table: TrialTable, now: float) -> Figure:
     ax.set_xlabel("seconds since the search started (gaps in a row: the worker was idle)")
     ax.set_title("Worker timeline (one row per worker, one bar per attempt)")
     handles = [Patch(color=color, label=outcome) for outcome, color in OUTCOME_COLORS.items()]
-    ax.legend(handles=handles, loc="upper center", bbox_to_anchor=(0.5, -0.25 if len(names) < 4 else -0.12), ncol=4, fontsize=8, frameon=False)
+    fig.legend(handles=handles, loc="outside lower center", ncol=4, fontsize=8, frameon=False)
     if not names:
         ax.text(0.5, 0.5, "no attempt has started yet", ha="center", va="center", transform=ax.transAxes)
     ax.grid(axis="x", alpha=0.3)

@@ -1,0 +1,86 @@
+"""forebear demo: the regional demand-forecasting fleet, tuned with and without history."""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+import pytest
+from scipy.stats import spearmanr
+
+from forebear import demo
+from forebear.demo_forecast import REGIONS, SPACE, dataset, evaluate
+from forebear.journal import Journal
+from forebear.space import Space
+
+# Registering forebear's fail-fast plugin once per search on the demo's shared scheduler makes
+# distributed warn that it replaces the previous copy; the replacement is the same plugin.
+pytestmark = pytest.mark.filterwarnings("ignore:Scheduler already contains a plugin:UserWarning")
+
+
+def test_regions_are_deterministic_related_and_distinct() -> None:
+    X1, y1, _, _ = dataset("north")
+    dataset.cache_clear()
+    X2, y2, Xv, yv = dataset("north")
+    assert np.array_equal(X1, X2) and np.array_equal(y1, y2)
+    assert len(yv) == 91 and not np.isnan(X1).any()
+    configs = Space.from_dict(SPACE).latin_hypercube(8, seed=3)
+    north = [evaluate("north", c)["val_mape"] for c in configs]
+    coast = [evaluate("coast", c)["val_mape"] for c in configs]
+    assert north != coast, "two regions gave identical scores"
+    assert all(3.0 < s < 40.0 for s in north + coast), (north, coast)
+    # Related tasks: configurations rank similarly across regions (that is what history exploits).
+    assert spearmanr(north, coast)[0] > 0.2
+    assert set(REGIONS) >= {*demo.HISTORY_REGIONS, demo.NEW_REGION}
+
+
+def test_demo_refuses_a_folder_it_did_not_make(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    (tmp_path / "thesis.tex").write_text("mine")
+    assert demo.main(tmp_path, quiet=True) == 2
+    assert "not empty and was not made by forebear demo" in capsys.readouterr().err
+    assert (tmp_path / "thesis.tex").read_text() == "mine"
+
+
+def test_reduced_demo_end_to_end(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    # One earlier region keeps it short: each new objective costs a fork server start per worker.
+    plan = demo.Plan(history_trials=4, trials=5, batch=2, workers=2, checkpoints=(2, 5), history_regions=("north",))
+    folder = tmp_path / "demo"
+    assert demo.main(folder, quiet=True, plan=plan) == 0
+    err = capsys.readouterr().err
+    assert "best configuration for coast:" in err and "gain from history:" in err
+    for region in plan.history_regions:
+        table = Journal(folder / "runs" / "history" / f"region-{region}.jsonl").fold()
+        assert (table.closed or {}).get("reason") == "budget"
+        assert table.counts()["scored"] == 4
+    cold = Journal(folder / "runs" / "coast-cold.jsonl").fold()
+    warm = Journal(folder / "runs" / "coast-history.jsonl").fold()
+    assert cold.counts()["scored"] == warm.counts()["scored"] == 5
+    assert cold.header["seed"] == warm.header["seed"]
+    # Only the history differs: the warm search's model rounds used a history-aware model.
+    assert {t.model for t in warm if t.source == "model"} & {"deep-kernel", "mix"} or all(t.source == "initial" for t in warm)
+    assert all(t.model in (None, "gp") for t in cold)
+    for line in err.splitlines():
+        if line.startswith("  with history ") or line.startswith("  cold start "):
+            values = [float(v) for v in line.split()[2:]]
+            assert values == sorted(values, reverse=True), f"best-so-far must not rise: {line}"
+    assert (folder / "report" / "report.html").exists()
+    assert (folder / "specs" / "coast-history.yaml").exists()
+    # The written specs are valid on their own (cluster: local), so a user can rerun them.
+    from forebear import spec as spec_mod
+
+    s = spec_mod.load(folder / "specs" / "coast-history.yaml")
+    assert s.cluster.kind == "local" and s.history and s.journal.resolve() == folder.resolve() / "runs" / "coast-history.jsonl"
+
+
+@pytest.mark.slow
+def test_full_demo_from_the_command_line_within_three_minutes(tmp_path: Path) -> None:
+    t0 = time.monotonic()
+    res = subprocess.run([sys.executable, "-m", "forebear", "demo", "--folder", str(tmp_path / "d"), "-q"],
+                         capture_output=True, text=True, timeout=300)
+    took = time.monotonic() - t0
+    assert res.returncode == 0, res.stderr[-3000:]
+    assert "gain from history" in res.stderr
+    assert took < 180, f"the demo took {took:.0f} s"
