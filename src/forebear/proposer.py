@@ -48,6 +48,7 @@ from forebear.warmstart import initial_design
 
 MODELS = ("auto", "gp", "deep-kernel")
 FAILED = ("impute", "classifier")
+HISTORY_SHARE = 1.0  # of the initial design from history; 0.5 measured worse (docs/engine.md)
 DEFAULT_FAILED = "impute"  # chosen by `python -m forebear.bench.proposal failures` (docs/engine.md)
 
 
@@ -120,6 +121,10 @@ class Proposer:
         :class:`forebear.surrogate.Settings` or a mapping of its fields.
     n_candidates
         Quasi-random candidates per batch.
+    history_share
+        With history and ``warm_start``, the fraction of the initial design
+        taken from history; a Latin hypercube fills the rest, a hedge against
+        history that misleads.
     """
 
     def __init__(
@@ -141,6 +146,7 @@ class Proposer:
         threads: int | None = 1,
         deep_kernel: Settings | Mapping[str, Any] | None = None,
         n_candidates: int = 2048,
+        history_share: float = HISTORY_SHARE,
         **more: Any,
     ) -> None:
         if more:
@@ -171,6 +177,10 @@ class Proposer:
         self.warm_start, self.guard, self.fine_tune = warm_start, guard, fine_tune
         self.model, self.lie, self.failed, self.device = model, lie, failed, device
         self.n_initial, self.threads, self.n_candidates = n_initial, threads, n_candidates
+        if not 0.0 <= history_share <= 1.0:
+            msg = f"history_share must be in [0, 1], got {history_share}"
+            raise ValueError(msg)
+        self.history_share = history_share
         dk = deep_kernel if isinstance(deep_kernel, Settings) else Settings(**dict(deep_kernel or {}))
         self.settings = replace(dk, augment=augment, seed=dk.seed if deep_kernel else seed)
         self.use_meta = bool(tasks) and model in ("auto", "deep-kernel")
@@ -302,7 +312,7 @@ class Proposer:
             def impute(j: int, Xq: np.ndarray) -> np.ndarray:
                 return meta.impute(tasks[j].X, tasks[j].y, Xq)
 
-        return initial_design(self.space, k, tasks=self.tasks, impute=impute, seed=self.seed)
+        return initial_design(self.space, k, tasks=self.tasks, impute=impute, seed=self.seed, share=self.history_share)
 
     def _model_batch(
         self,

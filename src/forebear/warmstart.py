@@ -34,6 +34,7 @@ def initial_design(
     generations: int = 120,
     population: int = 24,
     per_task: int | None = None,
+    share: float = 1.0,
 ) -> list[dict[str, Any]]:
     """``k`` distinct configurations to evaluate first.
 
@@ -46,7 +47,13 @@ def initial_design(
     per_task
         Each task contributes its ``per_task`` best configurations to the pool
         (default ``max(2 k, 8)``).
+    share
+        Fraction of the ``k`` configurations taken from history (at least one);
+        a Latin hypercube fills the rest.
     """
+    if not 0.0 <= share <= 1.0:
+        msg = f"share must be in [0, 1], got {share}"
+        raise ValueError(msg)
     if k <= 0:
         return []
     tasks = [t for t in tasks if len(t.y)]
@@ -55,10 +62,11 @@ def initial_design(
     rng = np.random.default_rng(seed)
     pool_X, pool_cfg = _pool(tasks, per_task or max(2 * k, 8))
     S = _score_matrix(tasks, pool_X, impute)
-    chosen = evolve(S, min(k, len(pool_cfg)), rng, generations=generations, population=population)
+    n_hist = max(1, int(round(share * k)))
+    chosen = evolve(S, min(n_hist, len(pool_cfg)), rng, generations=generations, population=population)
     out = [pool_cfg[i] for i in chosen]
     if len(out) < k:
-        # Fewer distinct history configurations than asked for: fill from a Latin hypercube.
+        # The share left to exploration, or too few distinct history configurations: a Latin hypercube.
         have = set(keys(space.encode_many(out)))
         for c in space.latin_hypercube(2 * k, seed=seed):
             if len(out) >= k:
