@@ -26,6 +26,7 @@ import threading
 import time
 from collections import deque
 from collections.abc import Mapping
+from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -57,6 +58,7 @@ log = logging.getLogger("forebear.controller")
 RETRY_REASONS = ("worker", "timeout")  # lost attempts that use up a retry; restarts and interrupts do not
 BUDGET_KEYS = ("trials", "batch", "concurrency", "trial_timeout", "retries", "retry_errors", "wall_time")
 EXTENDABLE = ("trials", "wall_time")
+LOOKAHEAD = 1  # proposals kept ready beyond the free slots, computed while the workers run
 RESOURCE_CHECK_EVERY = 5.0  # seconds between checks that some worker still offers the trials' resources
 
 
@@ -227,6 +229,9 @@ class Controller:
         An existing :class:`Dispatch` to use instead of the spec's cluster (the plugin's).
     handle_signals
         Install the two-stage Ctrl-C handler (only possible in the main thread).
+    proposer
+        A :class:`Proposer` to use instead of the default one for the spec (benchmarks
+        configure the engine this way; the spec's history is then not loaded).
     """
 
     def __init__(
@@ -238,8 +243,10 @@ class Controller:
         cancel_running: bool = False,
         dispatch: Dispatch | None = None,
         handle_signals: bool = True,
+        proposer: Proposer | None = None,
     ) -> None:
         self.spec = spec
+        self._proposer = proposer
         self.extend = extend
         self.quiet = quiet
         self.cancel_running = cancel_running
@@ -256,6 +263,11 @@ class Controller:
         self.inflight: dict[Any, tuple[int, int, dict[str, Any]]] = {}
         self.retry_queue: deque[int] = deque()
         self.shared: bool | None = None
+        self.ready: deque[int] = deque()  # proposed, recorded, not yet submitted
+        self._job: Future[list[Any]] | None = None
+        self._job_size = 0
+        self._exhausted = False
+        self._ac: as_completed | None = None
         self._next_resource_check = time.monotonic() + RESOURCE_CHECK_EVERY
 
     # -- output ---------------------------------------------------------------
@@ -300,8 +312,7 @@ class Controller:
         if table.closed and self.book.finished >= spec.budget.trials and new_header is None:
             self.say(f"search {spec.name} is already complete ({self.book.finished} trials finished); nothing to do")
             return SearchResult.from_table(table, spec.journal, str(table.closed.get("reason")))
-        history = load_history(spec, self.say)
-        proposer = Proposer(spec.space, history=history, seed=spec.seed)
+        proposer = self._proposer or Proposer(spec.space, history=load_history(spec, self.say), seed=spec.seed)
         if self._dispatch is None:
             self._dispatch = connect(spec, self.say)
         try:
@@ -368,10 +379,12 @@ class Controller:
         self.progress = Progress(budget.trials, metric=spec.objective.metric, quiet=self.quiet, done=self.book.finished)
         deadline = None if budget.wall_time is None else time.monotonic() + budget.wall_time
         ac = as_completed(with_results=False)
+        self._ac = ac
         previous = signal.getsignal(signal.SIGINT) if self.handle_signals else None
         if self.handle_signals:
             signal.signal(signal.SIGINT, self._on_sigint)
         closed = "budget"
+        pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="forebear-proposer")
         try:
             while True:
                 if deadline is not None and time.monotonic() >= deadline and self.stop.reason is None:
@@ -381,22 +394,23 @@ class Controller:
                 if self.stop.cancel and self.inflight:
                     self._cancel_all()
                 if self.stop.reason is None:
-                    self._fill(proposer, ac)
+                    self._harvest()
+                    self._fill(ac)
+                    self._propose_ahead(proposer, pool)
                 if not self.inflight:
                     if self.stop.reason is not None:
                         closed = self.stop.reason
                         break
-                    if not self.retry_queue and len(self.book.configs) >= budget.trials:
+                    if self._job is None and not self.ready and not self.retry_queue:
+                        if len(self.book.configs) < budget.trials:
+                            self.say("the proposer has no new configuration to offer (space exhausted); closing")
                         break
-                    if not self.retry_queue and self.book.finished < budget.trials:
-                        self.say("the proposer has no new configuration to offer (space exhausted); closing")
-                        break
-                    continue
                 self._watch_resources()
                 wait = 0.5 if deadline is None else max(0.0, min(0.5, deadline - time.monotonic()))
-                events = [self._collect(fut) for fut in _ready(ac, wait)]
+                events = [self._collect(fut) for fut in _ready(ac, wait, self)]
                 if events and self.stop.reason is None:
-                    self._fill(proposer, ac)  # refill before showing, so "running" counts the new attempts
+                    self._harvest()
+                    self._fill(ac)  # refill before showing, so "running" counts the new attempts
                 for event in events:
                     if event:
                         self._show(event)
@@ -418,6 +432,7 @@ class Controller:
                 pass
             raise
         finally:
+            pool.shutdown(wait=False, cancel_futures=True)
             if self.handle_signals:
                 signal.signal(signal.SIGINT, previous)
             if self.progress is not None:
@@ -465,36 +480,67 @@ class Controller:
 
     # -- submitting -----------------------------------------------------------
 
-    def _fill(self, proposer: Proposer, ac: as_completed) -> None:
+    def _fill(self, ac: as_completed) -> None:
+        """Submit retries first, then proposed trials, while slots are free."""
         budget = self.spec.budget
         while len(self.inflight) < budget.concurrency and self.retry_queue:
             self._submit(self.retry_queue.popleft(), ac)
-        free = budget.concurrency - len(self.inflight)
-        left = budget.trials - len(self.book.configs)
-        if free <= 0 or left <= 0:
+        while len(self.inflight) < budget.concurrency and self.ready:
+            self._submit(self.ready.popleft(), ac)
+
+    def _propose_ahead(self, proposer: Proposer, pool: ThreadPoolExecutor) -> None:
+        """Start a round in the proposer thread when the ready queue will not cover the free slots.
+
+        The round is computed while the workers run: one proposal beyond the free slots is kept
+        ready, so a worker that finishes gets its next trial without waiting for a refit.
+        """
+        if self._job is not None or self._exhausted:
             return
-        n = min(budget.batch, free, left)
+        budget = self.spec.budget
+        free = budget.concurrency - len(self.inflight) - len(self.retry_queue)
+        left = budget.trials - len(self.book.configs)
+        n = min(budget.batch, left, max(0, free) + LOOKAHEAD - len(self.ready))
+        if n <= 0:
+            return
         sign = self.spec.objective.sign
         observed = [Observation(self.book.configs[t], sign * s) for t, s in self.book.scores.items()]
         failed = [self.book.configs[t] for t, s in self.book.state.items() if s == "failed"]
         pending = [self.book.configs[t] for t, s in self.book.state.items() if s in ("queued", "running")]
-        proposals = proposer.propose(n, observed, failed=failed, pending=pending)
+        self._job = pool.submit(proposer.propose, n, observed, failed, pending)
+        self._job_size = n
+        self._job.add_done_callback(self._wake)
+
+    def _wake(self, _job: Any) -> None:
+        ac = self._ac
+        if ac is not None:
+            with ac.thread_condition:
+                ac.thread_condition.notify_all()
+
+    def _harvest(self) -> None:
+        """Record a finished round as ``proposed`` and queue its trials."""
+        job = self._job
+        if job is None or not job.done():
+            return
+        self._job = None
+        proposals = job.result()[: self._job_size]
         if not proposals:
+            self._exhausted = True
             return
         round_no = self.book.rounds
         self.book.rounds += 1
         first = max(self.book.configs, default=-1) + 1
         recs = []
-        for i, p in enumerate(proposals[:n]):
+        for i, p in enumerate(proposals):
             tid = first + i
             recs.append(record("proposed", trial=tid, round=round_no, config=p.config, source=p.source, model=p.model, acquisition=p.acquisition))
-            self.book.configs[tid] = dict(p.config)
+        self.journal.append_many(recs)
+        for rec in recs:
+            tid = rec["trial"]
+            self.book.configs[tid] = dict(rec["config"])
             self.book.state[tid] = "queued"
             self.book.attempts[tid] = 0
             self.book.charged[tid] = 0
-        self.journal.append_many(recs)
-        for rec in recs:
-            self._submit(rec["trial"], ac)
+            self.ready.append(tid)
 
     def _submit(self, tid: int, ac: as_completed) -> None:
         assert self._dispatch is not None
@@ -634,12 +680,13 @@ class Controller:
         )
 
 
-def _ready(ac: as_completed, timeout: float) -> list[Any]:
-    """Futures that completed, waiting up to ``timeout`` seconds for the first one."""
+def _ready(ac: as_completed, timeout: float, controller: Controller) -> list[Any]:
+    """Futures that completed, waiting up to ``timeout`` s for the first one or a finished round."""
     # Check and wait under the iterator's condition: as_completed puts a future in its queue and
     # then notifies under this condition, so a completion cannot slip between the check and the wait.
     with ac.thread_condition:
-        if not ac.has_ready():
+        job = controller._job
+        if not ac.has_ready() and not (job is not None and job.done()):
             ac.thread_condition.wait(timeout)
     return ac.next_batch(block=False) if ac.has_ready() else []
 

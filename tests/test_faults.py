@@ -1,0 +1,98 @@
+"""Short versions of every fault scenario of ``forebear bench faults`` (the full campaign is slow).
+
+Each scenario runs against a loopback cluster of separate processes
+(tests/conftest.py) and returns its figures with a list of broken
+invariants, which must be empty. The full sizes run with ``-m slow`` or
+``forebear bench faults``.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from pathlib import Path
+from typing import Any
+
+import pytest
+
+from forebear.bench import faults
+from forebear.journal import record
+
+from .conftest import LoopbackCluster
+
+
+def _trial(t: int, *rest: dict[str, Any]) -> list[dict[str, Any]]:
+    return [record("proposed", trial=t, round=0, config={"x": t / 10}, source="initial", model=None, acquisition=None), *rest]
+
+
+def test_invariant_checker_catches_each_broken_rule() -> None:
+    """The checker is what the campaign relies on: it must see every kind of breakage."""
+    ok = [record("search", name="s", objective={"minimize": "loss"})]
+    ok += _trial(0, record("started", trial=0, attempt=1), record("lost", trial=0, attempt=1, reason="worker"),
+                 record("started", trial=0, attempt=2), record("scored", trial=0, attempt=2, score=0.5, metrics={}, seconds=1))
+    ok += _trial(1, record("started", trial=1, attempt=1), record("scored", trial=1, attempt=1, score=0.2, metrics={}, seconds=1))
+    good = faults.check_invariants(ok)
+    assert good["violations"] == [] and good["best_trial"] == 1 and good["lost"] == {"worker": 1}
+    cases = {
+        "scored 2 times": ok + [record("scored", trial=1, attempt=1, score=0.1, metrics={}, seconds=1)],
+        "never retried": ok + _trial(2, record("started", trial=2, attempt=1), record("lost", trial=2, attempt=1, reason="worker"),
+                                     record("failed", trial=2, attempt=1, error="boom", retryable=False)),
+        "0 terminal records": ok + _trial(3, record("started", trial=3, attempt=1), record("lost", trial=3, attempt=1, reason="restart"),
+                                          record("started", trial=3, attempt=2)),
+        "never proposed": ok + [record("scored", trial=9, attempt=1, score=0.0, metrics={}, seconds=1)],
+        "proposed twice": ok + _trial(1),
+    }
+    for needle, recs in cases.items():
+        found = faults.check_invariants(recs)["violations"]
+        assert any(needle in v for v in found), (needle, found)
+    # Retries used up: the trial failed with the reason, which is not a broken rule.
+    spent = ok + _trial(4, record("started", trial=4, attempt=1), record("lost", trial=4, attempt=1, reason="worker"),
+                        record("failed", trial=4, attempt=1, error="the worker died; no retries left after 1 attempt(s)", retryable=False))
+    assert faults.check_invariants(spent)["violations"] == []
+
+
+@pytest.mark.timeout(400)
+def test_worker_kills_short(tmp_path: Path, loopback_factory: Callable[..., LoopbackCluster]) -> None:
+    cluster = loopback_factory(workers=3)
+    figures = faults.worker_kills(cluster, tmp_path / "wk", trials=20, kills=3, interval=(0.8, 1.6))
+    assert figures["violations"] == [], figures
+    assert figures["kills"] == 3 and figures["trials"] == 20 and figures["scored"] == 20
+    assert sum(figures["lost"].values()) >= 1  # the kills hit running attempts
+
+
+@pytest.fixture(scope="module")
+def cluster(tmp_path_factory: pytest.TempPathFactory) -> Any:
+    c = LoopbackCluster(tmp_path_factory.mktemp("faults-cluster"), workers=3)
+    try:
+        yield c
+    finally:
+        c.close()
+
+
+@pytest.mark.timeout(400)
+def test_controller_kills_short(tmp_path: Path, cluster: LoopbackCluster) -> None:
+    figures = faults.controller_kills(cluster, tmp_path / "ck", trials=12, kills=3)
+    assert figures["violations"] == [], figures
+    assert figures["kills"] >= 1 and figures["trials"] == 12
+
+
+@pytest.mark.timeout(400)
+def test_full_disk(tmp_path: Path, cluster: LoopbackCluster) -> None:
+    figures = faults.full_disk(cluster, tmp_path / "fd", trials=10, fill_after=3)
+    if "skipped" in figures:
+        pytest.skip(figures["skipped"])
+    assert figures["violations"] == [], figures
+    assert "No space left on device" in figures["message"]
+
+
+@pytest.mark.timeout(300)
+def test_failing_fsync_stops_the_controller(tmp_path: Path, cluster: LoopbackCluster) -> None:
+    figures = faults.fsync_failure(cluster, tmp_path / "fs", trials=8, fail_after=4)
+    assert figures["violations"] == [], figures
+    assert figures["message"].startswith("forebear: journal ") and "write failed: Input/output error" in figures["message"]
+
+
+@pytest.mark.slow
+@pytest.mark.timeout(3600)
+def test_full_campaign(tmp_path: Path) -> None:
+    figures = faults.main(short=False, folder=str(tmp_path))
+    assert figures["ok"], figures
