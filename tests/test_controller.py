@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import io
+import time
 from collections import Counter
 from pathlib import Path
 from typing import Any
@@ -10,7 +11,7 @@ from typing import Any
 import pytest
 
 import forebear
-from forebear.controller import Controller, SpecChanged, spec_changes
+from forebear.controller import LOOKAHEAD, Controller, SpecChanged, spec_changes
 from forebear.journal import Journal, JournalBusy
 from forebear.progress import Progress
 from forebear.spec import load
@@ -167,3 +168,92 @@ def test_each_trial_terminal_once(tmp_path: Path, shared_loopback: LoopbackClust
     forebear.run(spec)
     terminal = Counter(r["trial"] for r in Journal(tmp_path / "runs" / "ctl.jsonl").records() if r["kind"] in ("scored", "failed"))
     assert sorted(terminal) == list(range(6)) and set(terminal.values()) == {1}
+
+
+def _launch(tmp: Path, cluster: LoopbackCluster, *args: str, trials: int = 6) -> tuple[Any, Path]:
+    import subprocess
+    import sys
+
+    import yaml
+
+    from .conftest import child_env
+
+    spec = make_spec(tmp, cluster, call="objectives:sleepy", trials=trials, concurrency=2, batch=2)
+    spec["space"] = {"x": {"float": [0.0, 1.0]}, "seconds": {"float": [2.0, 2.5]}}
+    path = tmp / "search.yaml"
+    path.write_text(yaml.safe_dump(spec))
+    proc = subprocess.Popen([sys.executable, "-m", "forebear", "run", str(path), *args], env=child_env(),
+                            start_new_session=True, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
+    journal = Path(spec["journal"])
+    deadline = time.monotonic() + 90
+    while not (journal.exists() and any(r["kind"] == "started" for r in Journal(journal).records())):
+        assert proc.poll() is None, proc.stderr.read() if proc.stderr else ""
+        assert time.monotonic() < deadline, "no attempt started"
+        time.sleep(0.05)
+    return proc, journal
+
+
+@pytest.mark.parametrize("cancel", [False, True])
+def test_first_ctrl_c_stops_proposing(tmp_path: Path, shared_loopback: LoopbackCluster, cancel: bool) -> None:
+    import os
+    import signal
+
+    from .conftest import reap
+
+    proc, journal = _launch(tmp_path, shared_loopback, *(["--cancel-running"] if cancel else []))
+    try:
+        os.kill(proc.pid, signal.SIGINT)
+        _, err = proc.communicate(timeout=60)
+    finally:
+        reap(proc)
+    table = Journal(journal).fold()
+    assert table.closed is not None and table.closed["reason"] == "interrupted"
+    # Two attempts ran; at most one more trial was proposed ahead and stays queued, never started.
+    assert len(table) <= 2 + LOOKAHEAD
+    assert sum(1 for t in table if t.attempts) == 2
+    lost = [r for r in Journal(journal).records() if r["kind"] == "lost"]
+    if cancel:
+        assert "cancelling running attempts" in err
+        assert {r["reason"] for r in lost} == {"interrupted"} and table.counts()["scored"] == 0
+        assert proc.returncode == 1  # nothing scored
+    else:
+        assert "waiting for 2 running attempt(s)" in err
+        assert not lost and table.counts()["scored"] == 2
+        assert proc.returncode == 0
+
+
+def test_second_ctrl_c_stops_at_once(tmp_path: Path, shared_loopback: LoopbackCluster) -> None:
+    import os
+    import signal
+
+    from .conftest import reap
+
+    proc, journal = _launch(tmp_path, shared_loopback)
+    try:
+        os.kill(proc.pid, signal.SIGINT)
+        time.sleep(0.3)
+        t0 = time.monotonic()
+        os.kill(proc.pid, signal.SIGINT)
+        proc.communicate(timeout=60)
+        assert time.monotonic() - t0 < 2.0 + 10  # well before the 2 s attempts plus teardown would end
+    finally:
+        reap(proc)
+    table = Journal(journal).fold()
+    assert table.closed is not None and table.closed["reason"] == "interrupted"
+
+
+def test_without_a_shared_filesystem_the_controller_writes(tmp_path: Path, shared_loopback: LoopbackCluster, monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]) -> None:
+    import forebear.controller as controller_mod
+
+    # The workers look for the token at runner.PROBE_NAME; writing it elsewhere makes the journal's
+    # folder look unreachable to them, as on a machine without the shared filesystem.
+    monkeypatch.setattr(controller_mod, "PROBE_NAME", ".probe-not-where-workers-look")
+    spec = make_spec(tmp_path, shared_loopback, call="objectives:crash", trials=2)
+    result = forebear.run(spec, quiet=False)
+    assert result.counts["failed"] == 2
+    err = capsys.readouterr().err
+    assert err.count("no shared filesystem") == 1
+    for kinds in kinds_by_trial(tmp_path / "runs" / "ctl.jsonl").values():
+        assert kinds == ["proposed", "started", "failed"]
+    log = tmp_path / "runs" / "ctl.logs" / "trial-00000-attempt-1.log"
+    assert "Traceback" in log.read_text() and oct(log.stat().st_mode & 0o777) == "0o600"
