@@ -27,7 +27,7 @@ from __future__ import annotations
 import csv
 import gzip
 import math
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -246,6 +246,13 @@ def make_family(name: str, n_tasks: int = 10, n_points: int = 300, seed: int = 0
     return analytic_family(name, n_tasks=n_tasks, n_points=n_points, seed=seed)
 
 
-def held_out(family: Family, count: int) -> Sequence[int]:
-    """The indices of the first ``count`` tasks (all when ``count`` exceeds the family)."""
-    return range(min(count, len(family.tasks)))
+def held_out(family: Family, count: int) -> list[int]:
+    """Indices of ``count`` held-out tasks, evenly spread over the family (all when it is smaller).
+
+    Spread rather than the first ``count``: the meta-dataset's tasks are listed
+    dataset by dataset, and every dataset should be held out.
+    """
+    n = len(family.tasks)
+    if count >= n:
+        return list(range(n))
+    return sorted({int(round(i)) for i in np.linspace(0, n - 1, count)})

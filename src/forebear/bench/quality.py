@@ -29,7 +29,7 @@ from typing import Any
 
 import numpy as np
 
-from forebear.bench.families import Family, make_family
+from forebear.bench.families import Family, held_out, make_family
 
 CHECKPOINTS = (5, 10, 25, 50)
 
@@ -78,6 +78,7 @@ class Protocol:
     family_size: int = 10
     history_points: int = 300
     workers: int = 1
+    first_seed: int = 0
 
     def __post_init__(self) -> None:
         unknown = [m for m in self.methods if m not in METHODS]
@@ -87,6 +88,9 @@ class Protocol:
         bad = [f for f in self.families if f not in ("branin", "hartmann3", "hartmann6", "hgb")]
         if bad:
             msg = f"unknown families: {', '.join(bad)}"
+            raise ValueError(msg)
+        if self.first_seed < 0:
+            msg = f"first_seed must be >= 0, got {self.first_seed}"
             raise ValueError(msg)
         for name in ("tasks", "seeds", "trials", "family_size", "history_points", "workers"):
             if getattr(self, name) < 1:
@@ -184,8 +188,8 @@ def run(proto: Protocol, progress: bool = False) -> list[dict[str, Any]]:
     jobs = []
     for fam_name in proto.families:
         family = _family(fam_name, proto.family_size, proto.history_points)
-        n = min(proto.tasks, len(family.tasks))
-        jobs += [(fam_name, i, s, proto.trials, proto) for i in range(n) for s in range(proto.seeds)]
+        jobs += [(fam_name, i, s, proto.trials, proto) for i in held_out(family, proto.tasks)
+                 for s in range(proto.first_seed, proto.first_seed + proto.seeds)]
     results: list[dict[str, Any]] = []
     if proto.workers == 1:
         for j in jobs:
@@ -408,7 +412,8 @@ def main(smoke: bool = False, out_dir: str | None = None, proto: Protocol | None
     t0 = time.perf_counter()
     results = run(proto, progress=progress)
     wall = time.perf_counter() - t0
-    summary = summarise(results, proto)
+    written = write(results, proto, out_dir) if out_dir is not None else None
+    summary = written["summary"] if written else summarise(results, proto)
     first = proto.families[0]
     mean_regret = {m: float(curves(results, first, m)[:, -1].mean()) for m in proto.methods}
     figures: dict[str, Any] = {
@@ -420,16 +425,44 @@ def main(smoke: bool = False, out_dir: str | None = None, proto: Protocol | None
         "models": {f: s["models"].get("forebear-full") for f, s in summary.items()},
         "wall_s": round(wall, 1),
         "cores": os.cpu_count(),
-        "protocol": {k: getattr(proto, k) for k in ("families", "tasks", "seeds", "trials", "methods", "family_size", "history_points", "workers")},
+        "protocol": {k: getattr(proto, k) for k in ("families", "tasks", "seeds", "trials", "methods", "family_size", "history_points", "workers", "first_seed")},
     }
-    if out_dir is not None:
-        out = Path(out_dir)
-        out.mkdir(parents=True, exist_ok=True)
-        (out / "curves.json").write_text(json.dumps({"protocol": figures["protocol"], "results": results}))
-        (out / "summary.json").write_text(json.dumps(_jsonable(summary), indent=1))
-        (out / "results.md").write_text(markdown(summary, proto))
-        figures["plots"] = [str(p) for p in plots(results, proto, out)]
+    if written:
+        figures["plots"] = written["plots"]
     return _jsonable(figures)
+
+
+def write(results: Sequence[Mapping[str, Any]], proto: Protocol, out_dir: str | Path) -> dict[str, Any]:
+    """Write curves.json, summary.json, results.md and the PNGs of ``results`` into ``out_dir``."""
+    out = Path(out_dir)
+    out.mkdir(parents=True, exist_ok=True)
+    summary = summarise(results, proto)
+    proto_d = {k: getattr(proto, k) for k in ("families", "tasks", "seeds", "trials", "methods", "family_size", "history_points", "workers", "first_seed")}
+    (out / "curves.json").write_text(json.dumps({"protocol": proto_d, "results": list(results)}))
+    (out / "summary.json").write_text(json.dumps(_jsonable(summary), indent=1))
+    (out / "results.md").write_text(markdown(summary, proto))
+    return {"summary": summary, "plots": [str(p) for p in plots(results, proto, out)]}
+
+
+def merge(dirs: Sequence[str | Path], out_dir: str | Path) -> dict[str, Any]:
+    """Combine the curves.json of several runs (e.g. one per family) into one report."""
+    results: list[dict[str, Any]] = []
+    protos = []
+    for d in dirs:
+        path = Path(d) / "curves.json"
+        if not path.is_file():
+            msg = f"{path} does not exist; run the benchmark with --out {d} first"
+            raise FileNotFoundError(msg)
+        data = json.loads(path.read_text())
+        protos.append(data["protocol"])
+        results += data["results"]
+    families = tuple(dict.fromkeys(f for p in protos for f in p["families"]))
+    methods = tuple(m for m in protos[0]["methods"] if all(m in p["methods"] for p in protos))
+    first = protos[0]
+    proto = Protocol(families, max(p["tasks"] for p in protos), max(p["seeds"] for p in protos),
+                     min(p["trials"] for p in protos), methods, first["family_size"], first["history_points"],
+                     first["workers"], first.get("first_seed", 0))
+    return {"protocol": {"families": families, "methods": methods}, **write(results, proto, out_dir)}
 
 
 def _jsonable(obj: Any) -> Any:
@@ -453,12 +486,20 @@ def _cli(argv: Sequence[str] | None = None) -> None:
     ap.add_argument("--family-size", type=int, default=d.family_size, help="Tasks per analytic family.")
     ap.add_argument("--history-points", type=int, default=d.history_points, help="Design points per history task.")
     ap.add_argument("--workers", type=int, default=d.workers, help="Processes.")
+    ap.add_argument("--first-seed", type=int, default=d.first_seed, help="Seeds are first-seed .. first-seed + seeds - 1.")
     ap.add_argument("--out", default=None, help="Folder for curves.json, results.md and PNGs.")
     ap.add_argument("--smoke", action="store_true")
+    ap.add_argument("--merge", nargs="+", default=None, metavar="DIR", help="Only combine the curves.json of earlier runs into --out.")
     ns = ap.parse_args(argv)
+    if ns.merge:
+        if ns.out is None:
+            ap.error("--merge needs --out")
+        merged = merge(ns.merge, ns.out)
+        print(json.dumps(_jsonable({"protocol": merged["protocol"], "plots": merged["plots"]}), indent=1))
+        return
     try:
         proto = SMOKE if ns.smoke else Protocol(tuple(ns.families), ns.tasks, ns.seeds, ns.trials, tuple(ns.methods),
-                                                  ns.family_size, ns.history_points, ns.workers)
+                                                  ns.family_size, ns.history_points, ns.workers, ns.first_seed)
     except ValueError as exc:
         ap.error(str(exc))
     print(json.dumps(main(out_dir=ns.out, proto=proto, progress=True), indent=1))

@@ -1,0 +1,83 @@
+"""The quality benchmark harness: figures, goals and a small real run."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from forebear.bench import quality
+from forebear.bench.families import analytic_family
+from forebear.bench.quality import METHODS, Protocol, _goals, interval, search, summarise
+
+
+def _fake_results(curves: dict[str, list[list[float]]]) -> list[dict]:
+    n = len(next(iter(curves.values())))
+    return [
+        {"family": "branin", "task": f"t{i}", "seed": 0,
+         "runs": {m: {"regret": c[i], "models": {"gp": 1}, "sources": {}, "seconds": 0.0} for m, c in curves.items()}}
+        for i in range(n)
+    ]
+
+
+def test_interval_brackets_the_mean() -> None:
+    v = np.random.default_rng(0).exponential(size=40)
+    mean, lo, hi = interval(v)
+    assert lo < mean < hi
+    assert interval(np.array([0.5, 0.5])) == (0.5, 0.5, 0.5)
+
+
+def test_goals_from_known_curves() -> None:
+    trials = 12
+    gp = np.tile(np.linspace(1.0, 0.2, trials), (3, 1))
+    full = np.tile(np.linspace(0.5, 0.01, trials), (3, 1))
+    rnd = np.ones((3, trials))
+    g = _goals({"gp": gp, "forebear-full": full, "random": rnd, "forebear-full-q8": full * 1.05}, trials)
+    # full's mean curve first drops to <= 0.2 at trial index where linspace(0.5, 0.01) <= 0.2
+    expect = int(np.nonzero(np.linspace(0.5, 0.01, trials) <= 0.2)[0][0]) + 1
+    assert g["trials_to_target"] == expect and g["trials_to_target_ok"]
+    assert g["ratio_to_random_at_10"] == pytest.approx(full[0, 9])
+    assert g["q8_over_q1"][10] == pytest.approx(1.05) and g["q8_ok"]
+
+
+def test_summary_ranks_and_tables() -> None:
+    results = _fake_results({
+        "random": [[0.9] * 10, [0.8] * 10],
+        "gp": [[0.5] * 10, [0.9] * 10],
+        "forebear-full": [[0.1] * 10, [0.1] * 10],
+    })
+    proto = Protocol(families=("branin",), tasks=2, seeds=1, trials=10, methods=("random", "gp", "forebear-full"))
+    s = summarise(results, proto)["branin"]
+    assert s["rank"]["forebear-full"][10] == 1.0
+    assert s["rank"]["random"][10] == 2.5 and s["rank"]["gp"][10] == 2.5
+    assert sum(r[5] for r in s["rank"].values()) == pytest.approx(6.0)
+    md = quality.markdown({"branin": s}, proto)
+    assert "| forebear-full | 0.1 [0.1, 0.1]" in md
+    assert "trials-to-target" in md
+
+
+def test_protocol_rejects_bad_input() -> None:
+    with pytest.raises(ValueError, match="unknown methods: bogus"):
+        Protocol(methods=("bogus",))
+    with pytest.raises(ValueError, match="unknown families: rosen"):
+        Protocol(families=("rosen",))
+    with pytest.raises(ValueError, match="trials must be >= 1"):
+        Protocol(trials=0)
+
+
+def test_search_regret_is_monotone_and_counts_trials() -> None:
+    fam = analytic_family("branin", n_tasks=3, n_points=32, seed=0)
+    for name in ("random", "lhs-random"):
+        out = search(fam, 0, METHODS[name], seed=1, trials=12)
+        r = np.asarray(out["regret"])
+        assert r.shape == (12,) and np.all(np.diff(r) <= 0) and np.all(r >= 0)
+        assert sum(out["sources"].values()) == 12
+
+
+def test_forebear_full_beats_random_search_on_branin() -> None:
+    # A smaller version of `forebear bench quality --smoke`: the real proposer, in process.
+    proto = Protocol(families=("branin",), tasks=2, seeds=2, trials=10, methods=("random", "forebear-full"),
+                     family_size=5, history_points=64)
+    out = quality.main(proto=proto)
+    assert out["runs"] == 4
+    mr = out["mean_regret"]
+    assert mr["forebear-full"] < mr["random"], mr
