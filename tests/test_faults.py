@@ -59,6 +59,57 @@ def test_worker_kills_short(tmp_path: Path, loopback_factory: Callable[..., Loop
     assert sum(figures["lost"].values()) >= 1  # the kills hit running attempts
 
 
+SLOW_IMPORT = """
+import time
+time.sleep(4.0)  # the fork server imports this module before the attempt can start
+
+
+def score(config):
+    return (float(config["x"]) - 0.3) ** 2
+"""
+
+
+@pytest.mark.timeout(300)
+def test_worker_killed_before_the_attempt_started_uses_no_retry(tmp_path: Path, loopback_factory: Callable[..., LoopbackCluster]) -> None:
+    """A worker that dies while the attempt waits for its process costs no retry (retries: 0 here)."""
+    import threading
+    import time
+
+    from forebear.controller import Controller
+    from forebear.journal import Journal
+    from forebear.spec import load
+
+    cluster = loopback_factory(workers=1)
+    (tmp_path / "slow_import_objective.py").write_text(SLOW_IMPORT)
+    import yaml
+
+    spec_path = tmp_path / "unstarted.yaml"  # a spec file: its folder is where the objective's module is found
+    spec_path.write_text(yaml.safe_dump({
+        "name": "unstarted",
+        "objective": {"call": "slow_import_objective:score", "minimize": "loss"},
+        "space": {"x": {"float": [0.0, 1.0]}},
+        "budget": {"trials": 1, "batch": 1, "concurrency": 1, "retries": 0},
+        "cluster": {"address": cluster.address},
+        "journal": "runs/u.jsonl",
+    }))
+    spec = load(spec_path)
+    out: list[Any] = []
+    thread = threading.Thread(target=lambda: out.append(Controller(spec).run()), daemon=True)
+    thread.start()
+    deadline = time.monotonic() + 120
+    while not (spec.journal.exists() and any(r["kind"] == "proposed" for r in Journal(spec.journal).records())):
+        assert time.monotonic() < deadline
+        time.sleep(0.05)
+    time.sleep(1.5)  # the task is on the worker, whose fork server is still importing the objective
+    cluster.kill_worker(0)
+    cluster.start_worker()
+    thread.join(180)
+    assert out and out[0].counts == {"queued": 0, "running": 0, "scored": 1, "failed": 0}, out
+    trail = [(r["kind"], r.get("attempt"), r.get("reason")) for r in Journal(spec.journal).records() if r["kind"] not in ("search", "proposed", "closed")]
+    assert trail == [("lost", 1, "worker"), ("started", 2, None), ("scored", 2, None)], trail
+    assert faults.check_invariants(Journal(spec.journal).records())["violations"] == []
+
+
 @pytest.fixture(scope="module")
 def cluster(tmp_path_factory: pytest.TempPathFactory) -> Any:
     c = LoopbackCluster(tmp_path_factory.mktemp("faults-cluster"), workers=3)

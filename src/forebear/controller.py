@@ -183,7 +183,8 @@ class _Book:
             if t.state == "scored" and t.score is not None:
                 book.scores[t.trial] = float(t.score)
             book.attempts[t.trial] = max((a.attempt for a in t.attempts), default=0)
-            charged = sum(1 for a in t.attempts if a.outcome == "lost" and a.detail in RETRY_REASONS)
+            # An attempt lost before it started (no started record) used up no retry.
+            charged = sum(1 for a in t.attempts if a.outcome == "lost" and a.detail in RETRY_REASONS and a.started_at is not None)
             charged += sum(1 for a in t.attempts[:-1] if a.outcome == "failed")
             book.charged[t.trial] = charged
             if t.error:
@@ -607,7 +608,7 @@ class Controller:
         else:
             exc = fut.exception()
             if isinstance(exc, KilledWorker):
-                event = self._lost(tid, attempt, "worker", "the worker running it died")
+                event = self._worker_died(tid, attempt)
             else:
                 error = f"the attempt could not run on the worker: {type(exc).__name__}: {exc}"
                 self.journal.append(record("failed", trial=tid, attempt=attempt, error=error, retryable=False))
@@ -643,10 +644,34 @@ class Controller:
             return self._lost(tid, attempt, "timeout", (res.error or "timed out").split("\n", 1)[0])
         return self._lost(tid, attempt, "interrupted", "cancelled")
 
-    def _lost(self, tid: int, attempt: int, reason: str, why: str) -> str:
+    def _worker_died(self, tid: int, attempt: int) -> str:
+        """A KilledWorker: settle the attempt from what its runner already wrote to the shared journal.
+
+        The worker may die after appending the attempt's result but before Dask delivered it (then
+        the result stands, and a retry would score the trial twice), or before the attempt started
+        at all (then the trial's code never ran and the loss uses up no retry).
+        """
+        why = "the worker running it died"
+        if not self.shared:
+            return self._lost(tid, attempt, "worker", why)  # the journal cannot tell: charge the retry
+        mine = [r for r in self.journal.records() if r.get("trial") == tid and r.get("attempt") == attempt]
+        final = next((r for r in mine if r.get("kind") in ("scored", "failed")), None)
+        if final is not None and final["kind"] == "scored":
+            self.book.state[tid] = "scored"
+            self.book.scores[tid] = float(final["score"])
+            return f"trial {tid} scored {float(final['score']):.6g} (its worker died after recording it)"
+        if final is not None and not final.get("retryable"):
+            self.book.state[tid] = "failed"
+            self.book.errors[tid] = str(final.get("error") or "")
+            return f"trial {tid} failed: {str(final.get('error') or '').split(chr(10), 1)[0]}"
+        started = any(r.get("kind") == "started" for r in mine)
+        return self._lost(tid, attempt, "worker", why if started else "its worker died before the attempt started", charge=started)
+
+    def _lost(self, tid: int, attempt: int, reason: str, why: str, charge: bool = True) -> str:
         recs = [record("lost", trial=tid, attempt=attempt, reason=reason)]
         charged = self.book.charged.get(tid, 0)
-        if reason in RETRY_REASONS and charged >= self.spec.budget.retries:
+        charge = charge and reason in RETRY_REASONS
+        if charge and charged >= self.spec.budget.retries:
             error = f"{why}; no retries left after {attempt} attempt(s) (budget.retries: {self.spec.budget.retries})"
             recs.append(record("failed", trial=tid, attempt=attempt, error=error, retryable=False))
             self.journal.append_many(recs)
@@ -654,7 +679,7 @@ class Controller:
             self.book.errors[tid] = error
             return f"trial {tid} failed: {error}"
         self.journal.append_many(recs)
-        if reason in RETRY_REASONS:
+        if charge:
             self.book.charged[tid] = charged + 1
         self.book.state[tid] = "queued"
         if self.stop.reason is None:

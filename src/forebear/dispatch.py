@@ -88,7 +88,7 @@ def is_loopback(host: str) -> bool:
 def insecure_warning(address: str, allow_insecure: bool) -> str | None:
     """The warning for a plain-TCP scheduler beyond this machine, or None."""
     url = urlsplit(address if "://" in address else f"tcp://{address}")
-    if url.scheme != "tcp" or allow_insecure or is_loopback(url.hostname or ""):
+    if url.scheme not in ("tcp", "ws") or allow_insecure or is_loopback(url.hostname or ""):
         return None
     return (
         f"warning: {address} is plain TCP: anyone who can reach it can run code on the cluster; "

@@ -685,19 +685,25 @@ def main(short: bool = False, folder: str | None = None) -> dict[str, Any]:
     sizes = SHORT if short else FULL
     base = Path(folder) if folder else Path(tempfile.mkdtemp(prefix="forebear-faults-"))
     out: dict[str, Any] = {"size": "short" if short else "full", "folder": str(base)}
+
+    def keep(name: str, figures: dict[str, Any]) -> None:
+        # Figures are saved as each scenario ends, so a long campaign that is stopped keeps what it measured.
+        out[name] = figures
+        (base / "figures.json").write_text(json.dumps(out, indent=2))
+
     cluster = ProcessCluster(base / "cluster-a", workers=4)
     try:
-        out["worker_kills"] = worker_kills(cluster, base / "worker-kills", **sizes["worker_kills"])
+        keep("worker_kills", worker_kills(cluster, base / "worker-kills", **sizes["worker_kills"]))
     finally:
         cluster.close()
     cluster = ProcessCluster(base / "cluster-b", workers=4)
     try:
-        out["controller_kills"] = controller_kills(cluster, base / "controller-kills", **sizes["controller_kills"])
-        out["full_disk"] = full_disk(cluster, base / "full-disk", **sizes["full_disk"])
-        out["fsync"] = fsync_failure(cluster, base / "fsync", **sizes["fsync"])
+        keep("controller_kills", controller_kills(cluster, base / "controller-kills", **sizes["controller_kills"]))
+        keep("full_disk", full_disk(cluster, base / "full-disk", **sizes["full_disk"]))
+        keep("fsync", fsync_failure(cluster, base / "fsync", **sizes["fsync"]))
     finally:
         cluster.close()
-    out["journal"] = journal_tests(full=not short)
-    out["load"] = load(base / "load", **sizes["load"])
+    keep("journal", journal_tests(full=not short))
+    keep("load", load(base / "load", **sizes["load"]))
     out["ok"] = not any(v.get("violations") for v in out.values() if isinstance(v, dict))
     return out
