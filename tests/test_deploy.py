@@ -312,22 +312,23 @@ def test_local_scripts_start_and_stop_a_cluster_a_search_uses(tmp_path: Path) ->
             workers = info["workers"].values()
             assert len(workers) == 2
             assert all(w["host"] == "127.0.0.1" and w["resources"] == {"GPU": 1} for w in workers)
-        if importlib.util.find_spec("forebear.controller") is None:
-            pytest.skip("forebear.controller has not landed; the cluster started and stopped, the search part is pending")
+        import dataclasses
+
         import forebear.controller as controller
 
-        spec = {
-            "name": "local-scripts",
-            "objective": {"call": "forebear.demo_forecast:evaluate_coast", "minimize": "val_mape"},
-            "space": {"learning_rate": {"float": [0.02, 0.3], "log": True}, "max_leaf_nodes": {"int": [4, 32]}},
-            "budget": {"trials": 6, "batch": 2, "concurrency": 2, "trial_timeout": 60},
-            "cluster": {"address": address},
-            "resources": {"GPU": 1},
-            "journal": str(tmp_path / "runs" / "local.jsonl"),
-        }
-        result = controller.run(spec)
+        # examples/cluster_gpu's own spec (a torch objective asking for one GPU per trial),
+        # pointed at this cluster's port, with a smaller budget and the journal under tmp_path.
+        s = spec_mod.load(ROOT / "examples" / "cluster_gpu" / "search.yaml")
+        assert dict(s.resources) == {"GPU": 1}
+        s = dataclasses.replace(
+            s,
+            cluster=dataclasses.replace(s.cluster, address=address),
+            budget=dataclasses.replace(s.budget, trials=4),
+            journal=tmp_path / "runs" / "returns.jsonl",
+        )
+        result = controller.run(s)
         assert result.closed == "budget"
-        assert len([t for t in result.trials if t.state == "scored"]) == 6
+        assert len([t for t in result.trials if t.state == "scored"]) == 4, [t.error for t in result.trials]
         assert all(t.attempts for t in result.trials), "every trial ran on the cluster's workers"
     finally:
         stop = subprocess.run([str(DEPLOY / "local" / "stop.sh"), "-d", str(state)], capture_output=True, text=True, timeout=90)
