@@ -123,19 +123,19 @@ def test_subset_keeps_the_best_half() -> None:
 
 
 def test_subset_of_data_is_close_to_the_exact_gp() -> None:
-    # 1500 points, posterior from the 500-point subset vs the exact posterior, same hyperparameters.
+    # 1200 points, posterior from the 500-point subset vs the exact posterior, same hyperparameters.
     rng = np.random.default_rng(7)
-    X = rng.random((1500, 2))
+    X = rng.random((1200, 2))
     y = np.array([branin(x) for x in X])
-    fit = fit_gp(X, y, restarts=1, seed=0)
+    fit = fit_gp(X, y, restarts=1, seed=0, max_iter=8)  # a short fit: the subset path is what is tested
     sub = fit.posterior
     assert sub.n == 500
     exact = Posterior(sub.kernel, sub.mean, sub.noise, as_tensor(X), as_tensor(y), sub.shift, sub.scale)
-    Xs = rng.random((2000, 2))
+    Xs = rng.random((1000, 2))
     ys = np.array([branin(x) for x in Xs])
     rmse_sub = np.sqrt(np.mean((sub.predict(Xs)[0] - ys) ** 2))
     rmse_exact = np.sqrt(np.mean((exact.predict(Xs)[0] - ys) ** 2))
     # Measured (docs/engine.md): the subset's error is larger than the exact GP's but both are
-    # tiny next to Branin's spread (std about 50): 0.03 vs 0.003 on 1500 points.
+    # tiny next to Branin's spread (std about 50).
     assert rmse_sub < 0.002 * np.std(ys)
     assert rmse_exact < rmse_sub

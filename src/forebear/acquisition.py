@@ -24,7 +24,7 @@ from forebear.space import Space
 from forebear.surrogate.gp import DTYPE, Posterior, as_tensor
 
 LIES = ("min", "mean", "max")
-DEFAULT_LIE = "max"  # chosen by `python -m forebear.bench.proposal lies` (docs/engine.md)
+DEFAULT_LIE = "min"  # chosen by `python -m forebear.bench.proposal lies` (docs/engine.md)
 _C1 = 0.5 * math.log(2 * math.pi)
 _C2 = 0.5 * math.log(math.pi / 2)
 _INV_SQRT_EPS = 1.0 / math.sqrt(torch.finfo(DTYPE).eps)

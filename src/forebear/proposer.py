@@ -29,6 +29,7 @@ from __future__ import annotations
 import contextlib
 import math
 import os
+import pickle
 import tempfile
 import time
 from collections.abc import Iterator, Mapping, Sequence
@@ -234,7 +235,7 @@ class Proposer:
                 meta.load_state_dict(torch.load(path, map_location=self.device, weights_only=True))
                 self.meta_seconds, self.meta_cached = time.perf_counter() - start, True
                 return meta
-            except (OSError, RuntimeError, ValueError, KeyError, EOFError):
+            except (OSError, RuntimeError, ValueError, KeyError, EOFError, pickle.UnpicklingError):
                 meta = MetaModel(self.space.dim, self.settings, self.device)  # unreadable entry: retrain, overwrite
         meta.meta_train([(t.X, t.y) for t in self.tasks])
         self.meta_seconds, self.meta_cached = time.perf_counter() - start, False

@@ -66,7 +66,9 @@ class Posterior:
         embed: Callable[[torch.Tensor], torch.Tensor] | None = None,
         name: str = "gp",
     ) -> None:
-        self.kernel = copy.deepcopy(kernel).requires_grad_(False)
+        # Conditioning on lies builds many posteriors from one frozen kernel: copy only once.
+        frozen = not any(p.requires_grad for p in kernel.parameters())
+        self.kernel = kernel if frozen else copy.deepcopy(kernel).requires_grad_(False)
         self.embed = embed
         self.mean = float(mean)
         self.noise = float(noise)

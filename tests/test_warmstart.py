@@ -1,0 +1,82 @@
+"""warmstart.py: the evolutionary warm start over history, and the Latin hypercube without it."""
+
+from __future__ import annotations
+
+import itertools
+
+import numpy as np
+import pytest
+
+from forebear.history import Task
+from forebear.space import Space
+from forebear.warmstart import evolve, initial_design, set_score
+
+SPACE = Space.from_dict({"a": {"float": [0.0, 1.0]}, "b": {"int": [1, 9]}, "c": {"categories": ["x", "y"]}})
+
+
+def test_without_history_a_latin_hypercube() -> None:
+    design = initial_design(SPACE, 9, seed=3)
+    assert len(design) == 9
+    strata = sorted(int(c["a"] * 9) for c in design)
+    assert strata == list(range(9))  # one point per stratum of the float parameter
+    assert sorted(c["b"] for c in design) == list(range(1, 10))
+    assert design == SPACE.latin_hypercube(9, seed=3)
+
+
+def test_evolve_finds_the_best_set_on_a_small_problem() -> None:
+    rng = np.random.default_rng(0)
+    S = rng.random((12, 6))
+    best = min(set_score(S, np.array(c)) for c in itertools.combinations(range(12), 3))
+    got = evolve(S, 3, np.random.default_rng(1), generations=60)
+    assert len(set(got)) == 3
+    assert set_score(S, np.array(got)) == pytest.approx(best)
+
+
+def tasks_with_a_shared_good_config() -> list[Task]:
+    rng = np.random.default_rng(2)
+    tasks = []
+    shared = {"a": 0.5, "b": 5, "c": "y"}
+    for t in range(4):
+        configs = [shared] + SPACE.sample(20, rng)
+        y = rng.random(21) + 0.2
+        y[0] = 0.0  # the shared configuration is the best on every task
+        tasks.append(Task(f"t{t}", configs, SPACE.encode_many(configs), y))
+    return tasks
+
+
+def test_history_design_takes_history_configurations() -> None:
+    tasks = tasks_with_a_shared_good_config()
+    design = initial_design(SPACE, 4, tasks=tasks, seed=0)
+    assert design[0] == {"a": 0.5, "b": 5, "c": "y"}
+    pool = {repr(sorted(c.items())) for t in tasks for c in t.configs}
+    assert all(repr(sorted(c.items())) in pool for c in design)
+    assert len({repr(sorted(c.items())) for c in design}) == 4
+
+
+def test_imputation_decides_for_configurations_a_task_did_not_see() -> None:
+    rng = np.random.default_rng(4)
+    tasks = []
+    for t in range(4):
+        configs = SPACE.sample(15, rng)
+        tasks.append(Task(f"t{t}", configs, SPACE.encode_many(configs), rng.random(15)))
+    for j in (0, 1):
+        target = tasks[j].configs[int(np.argmin(tasks[j].y))]
+        x_target = SPACE.encode(target)
+
+        def impute(_: int, Xq: np.ndarray, x_target: np.ndarray = x_target) -> np.ndarray:
+            # Calls one configuration excellent wherever it was not observed, the rest poor.
+            return np.where(np.all(np.isclose(Xq, x_target), axis=1), 0.0, 1.0)
+
+        assert initial_design(SPACE, 1, tasks=tasks, impute=impute, seed=0) == [target]
+
+
+def test_share_and_fill_from_a_latin_hypercube() -> None:
+    tasks = tasks_with_a_shared_good_config()[:1]
+    tasks[0] = Task("t0", tasks[0].configs[:3], tasks[0].X[:3], tasks[0].y[:3])
+    design = initial_design(SPACE, 6, tasks=tasks, seed=0)
+    assert len(design) == 6 and design[:3] != SPACE.latin_hypercube(3, seed=0)
+    assert len({repr(sorted(c.items())) for c in design}) == 6
+    half = initial_design(SPACE, 6, tasks=tasks_with_a_shared_good_config(), seed=0, share=0.5)
+    assert half[0] == {"a": 0.5, "b": 5, "c": "y"} and len(half) == 6
+    with pytest.raises(ValueError, match="share must be in"):
+        initial_design(SPACE, 2, tasks=tasks, share=1.5)
