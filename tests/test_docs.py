@@ -102,3 +102,16 @@ def test_docs_exist_and_link_only_to_files_that_exist(doc: str) -> None:
         if "://" in target:
             continue
         assert (path.parent / target).exists(), f"docs/{doc} links to {target}, which does not exist"
+
+
+def test_readme_test_command_is_the_one_ci_runs() -> None:
+    """.ci/run runs the README's test command verbatim; the two must not drift apart."""
+    ci = [ln for ln in (ROOT / ".ci" / "run").read_text().splitlines() if ln.startswith("python3 -m venv")]
+    assert len(ci) == 1, ci
+    readme = (ROOT / "README.md").read_text()
+    assert f"```bash\n{ci[0]}\n```" in readme
+    assert ci[0].endswith("python -m pytest -q")
+    # The demo command sets itself up the same way and then runs the demo.
+    demo = ci[0].rsplit(" && ", 1)[0] + " && forebear demo"
+    assert f"```bash\n{demo}\n```" in readme
+    assert readme.index("forebear demo") > 0 and readme.splitlines()[2].startswith("forebear is for")

@@ -28,7 +28,7 @@ from forebear.space import Param, Space
 try:
     from matplotlib.figure import Figure
     from matplotlib.patches import Patch
-    from matplotlib.ticker import MaxNLocator
+    from matplotlib.ticker import FuncFormatter, LogLocator, MaxNLocator, NullFormatter
 except ModuleNotFoundError as exc:  # pragma: no cover - depends on the install
     msg = "forebear report needs matplotlib; install it with pip install 'forebear[report]'"
     raise ModuleNotFoundError(msg, name=exc.name) from None
@@ -219,6 +219,11 @@ def _parameters(table: TrialTable, space: Space) -> Figure:
             if p.log:
                 ax.set_xscale("log")
                 ax.set_xlim(p.low / 1.2, p.high * 1.2)  # type: ignore[operator]
+                # Plain numbers at 1-2-5 steps; matplotlib's default labels short log ranges
+                # with overlapping "4x10^0"-style minor labels.
+                ax.xaxis.set_major_locator(LogLocator(base=10, subs=(1.0, 2.0, 5.0)))
+                ax.xaxis.set_major_formatter(FuncFormatter(lambda v, _pos: f"{v:g}"))
+                ax.xaxis.set_minor_formatter(NullFormatter())
             else:
                 pad = 0.04 * (p.high - p.low)  # type: ignore[operator]
                 ax.set_xlim(p.low - pad, p.high + pad)  # type: ignore[operator]
