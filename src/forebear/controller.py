@@ -19,14 +19,16 @@ controller died and have no result in the journal become ``lost`` (reason
 from __future__ import annotations
 
 import logging
+import multiprocessing
 import os
+import pickle
 import secrets
 import signal
 import threading
 import time
 from collections import deque
 from collections.abc import Mapping
-from concurrent.futures import Future, ThreadPoolExecutor
+from concurrent.futures import Future, ProcessPoolExecutor, ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -41,6 +43,7 @@ from forebear.journal import (
     ControllerLock,
     Journal,
     JournalError,
+    JournalMismatch,
     Trial,
     TrialTable,
     check_header,
@@ -204,6 +207,60 @@ class _Book:
 # the loop
 
 
+_REMOTE: Proposer | None = None
+
+
+def _init_remote(proposer: Proposer) -> None:
+    global _REMOTE
+    signal.signal(signal.SIGINT, signal.SIG_IGN)  # Ctrl-C is the controller's to handle
+    _REMOTE = proposer
+
+
+def _ping() -> bool:
+    return _REMOTE is not None
+
+
+def _propose_remote(n: int, observed: list[Observation], failed: list[dict[str, Any]], pending: list[dict[str, Any]]) -> list[Any]:
+    assert _REMOTE is not None
+    return _REMOTE.propose(n, observed, failed=failed, pending=pending)
+
+
+class _Engine:
+    """Runs proposal rounds off the controller's loop.
+
+    By default in a child process: a refit is mostly Python (torch autograd, optimiser loops)
+    and in the controller's process it would hold the GIL against the Dask client and the
+    embedded scheduler, delaying every result and submission. A proposer that cannot be
+    pickled runs in a thread instead.
+    """
+
+    def __init__(self, proposer: Proposer, say: Any) -> None:
+        self.pool: Any
+        try:
+            pickle.dumps(proposer)
+        except Exception as exc:  # noqa: BLE001 - any pickling failure means: run it here
+            say(f"note: the proposer runs in a thread of the controller ({type(exc).__name__}: {exc})")
+            self.pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="forebear-proposer")
+            self.proposer: Proposer | None = proposer
+            return
+        self.proposer = None
+        ctx = multiprocessing.get_context("spawn")
+        self.pool = ProcessPoolExecutor(max_workers=1, mp_context=ctx, initializer=_init_remote, initargs=(proposer,))
+        self.pool.submit(_ping)  # import the engine now, while the cluster starts
+
+    def submit(self, n: int, observed: list[Observation], failed: list[dict[str, Any]], pending: list[dict[str, Any]]) -> Future[list[Any]]:
+        if self.proposer is not None:
+            return self.pool.submit(self.proposer.propose, n, observed, failed, pending)
+        return self.pool.submit(_propose_remote, n, observed, failed, pending)
+
+    def shutdown(self) -> None:
+        procs = list((getattr(self.pool, "_processes", None) or {}).values())
+        self.pool.shutdown(wait=False, cancel_futures=True)
+        for proc in procs:
+            # A round still being computed is of no use once the search stops; do not wait for it.
+            proc.terminate()
+
+
 class _Stop:
     """Why the loop stops proposing: None while running."""
 
@@ -296,6 +353,13 @@ class Controller:
     def _run_locked(self) -> SearchResult:
         spec = self.spec
         records, skipped = self.journal.read()
+        if skipped and not records and b"\n" in spec.journal.read_bytes():
+            # Whole lines and none of them ours: someone else's file. Writing would append to it and
+            # cut its last line as a torn record. (A lone torn first record has no newline: resumable.)
+            raise JournalMismatch(
+                f"journal {spec.journal}: holds no forebear records ({skipped} unreadable line(s)); "
+                "not a forebear journal, so nothing is written to it"
+            )
         table = fold(records)
         table.skipped = skipped
         check_header(table, spec.journal)
@@ -314,14 +378,16 @@ class Controller:
             self.say(f"search {spec.name} is already complete ({self.book.finished} trials finished); nothing to do")
             return SearchResult.from_table(table, spec.journal, str(table.closed.get("reason")))
         proposer = self._proposer or Proposer(spec.space, history=load_history(spec, self.say), seed=spec.seed)
-        if self._dispatch is None:
-            self._dispatch = connect(spec, self.say)
+        engine = _Engine(proposer, self.say)
         try:
+            if self._dispatch is None:
+                self._dispatch = connect(spec, self.say)
             self._dispatch.check_resources(spec.resources)
             if new_header is not None:
                 self.journal.append(new_header)
-            return self._drive(proposer, table)
+            return self._drive(engine, table)
         finally:
+            engine.shutdown()
             if self._own_dispatch and self._dispatch is not None:
                 self._dispatch.close()
                 self._dispatch = None
@@ -369,7 +435,7 @@ class Controller:
 
     # -- the loop -------------------------------------------------------------
 
-    def _drive(self, proposer: Proposer, table: TrialTable) -> SearchResult:
+    def _drive(self, engine: _Engine, table: TrialTable) -> SearchResult:
         spec = self.spec
         budget = spec.budget
         self._probe()
@@ -385,7 +451,6 @@ class Controller:
         if self.handle_signals:
             signal.signal(signal.SIGINT, self._on_sigint)
         closed = "budget"
-        pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="forebear-proposer")
         try:
             while True:
                 if deadline is not None and time.monotonic() >= deadline and self.stop.reason is None:
@@ -397,7 +462,7 @@ class Controller:
                 if self.stop.reason is None:
                     self._harvest()
                     self._fill(ac)
-                    self._propose_ahead(proposer, pool)
+                    self._propose_ahead(engine)
                 if not self.inflight:
                     if self.stop.reason is not None:
                         closed = self.stop.reason
@@ -433,7 +498,6 @@ class Controller:
                 pass
             raise
         finally:
-            pool.shutdown(wait=False, cancel_futures=True)
             if self.handle_signals:
                 signal.signal(signal.SIGINT, previous)
             if self.progress is not None:
@@ -489,8 +553,8 @@ class Controller:
         while len(self.inflight) < budget.concurrency and self.ready:
             self._submit(self.ready.popleft(), ac)
 
-    def _propose_ahead(self, proposer: Proposer, pool: ThreadPoolExecutor) -> None:
-        """Start a round in the proposer thread when the ready queue will not cover the free slots.
+    def _propose_ahead(self, engine: _Engine) -> None:
+        """Start a round off the loop when the ready queue will not cover the free slots.
 
         The round is computed while the workers run: one proposal beyond the free slots is kept
         ready, so a worker that finishes gets its next trial without waiting for a refit.
@@ -507,7 +571,7 @@ class Controller:
         observed = [Observation(self.book.configs[t], sign * s) for t, s in self.book.scores.items()]
         failed = [self.book.configs[t] for t, s in self.book.state.items() if s == "failed"]
         pending = [self.book.configs[t] for t, s in self.book.state.items() if s in ("queued", "running")]
-        self._job = pool.submit(proposer.propose, n, observed, failed, pending)
+        self._job = engine.submit(n, observed, failed, pending)
         self._job_size = n
         self._job.add_done_callback(self._wake)
 
