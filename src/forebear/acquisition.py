@@ -163,7 +163,7 @@ def _mutations(space: Space, anchors: np.ndarray, rng: np.random.Generator, n: i
     return project(space, X)
 
 
-def refine(scorer: Scorer, X0: np.ndarray, mask: np.ndarray, steps: int = 12, lr: float = 0.03) -> tuple[np.ndarray, np.ndarray]:
+def refine(scorer: Scorer, X0: np.ndarray, mask: np.ndarray, steps: int = 10, lr: float = 0.03) -> tuple[np.ndarray, np.ndarray]:
     """Gradient ascent of the acquisition over the continuous coordinates (``mask``) of ``X0``.
 
     Returns the best point seen for each row and its value; other coordinates stay fixed.
@@ -203,7 +203,8 @@ def batch(
     anchors: np.ndarray | None = None,
     rng: np.random.Generator,
     n_sobol: int = 2048,
-    n_refine: int = 3,
+    n_refine: int = 2,
+    keep: int = 512,
 ) -> list[tuple[np.ndarray, float]]:
     """``q`` distinct points by constant liar; each comes with its log-acquisition value.
 
@@ -217,6 +218,8 @@ def batch(
         Encoded points never to propose (observed, failed, pending).
     anchors
         Encoded best observed points, centres of the local mutations.
+    keep
+        After the first point, only this many leading candidates are rescored.
     """
     anchors = np.zeros((0, space.dim)) if anchors is None else anchors
     cand = candidates(space, anchors, rng, n_sobol=n_sobol)
@@ -225,9 +228,15 @@ def batch(
     out: list[tuple[np.ndarray, float]] = []
     dev = scorer.device
     Xc = as_tensor(cand, dev)
-    for _ in range(q):
+    for j in range(q):
         with torch.no_grad():
             v = scorer(Xc).cpu().numpy()
+        if j == 0 and q > 1 and len(cand) > keep:
+            # A lie changes the acquisition only near the chosen point; the rest of the batch is
+            # picked from the leading candidates of the first full scoring (docs/engine.md).
+            lead = np.argsort(-v, kind="stable")[:keep]
+            cand, v = cand[lead], v[lead]
+            Xc = as_tensor(cand, dev)
         ck = keys(cand)
         v = np.where([k in used for k in ck], -np.inf, v)
         order = np.argsort(-v, kind="stable")
@@ -239,7 +248,8 @@ def batch(
         with torch.no_grad():
             lv = scorer(as_tensor(local, dev)).cpu().numpy()
         pool = np.vstack([cand[top], local[np.argsort(-lv)[:n_refine]]])
-        xs, vs = refine(scorer, pool, mask)
+        # Later points of a batch sit in a landscape the first refinement already explored.
+        xs, vs = refine(scorer, pool, mask, steps=10 if j == 0 else 5)
         xs = project(space, xs)
         choice = None
         for i in np.argsort(-vs, kind="stable"):

@@ -56,7 +56,7 @@ class Settings:
     eval_every: int = 50  # steps between held-out evaluations
     patience: int = 6  # evaluations without improvement before stopping
     holdout: float = 0.2  # share of history tasks held out for early stopping
-    fine_tune_steps: int = 20  # Adam steps on the current search at each refit
+    fine_tune_steps: int = 10  # Adam steps on the current search at each refit
     fine_tune_lr: float = 1e-3  # Adam learning rate of fine-tuning
     seed: int = 0
 
