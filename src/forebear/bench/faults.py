@@ -626,6 +626,7 @@ def load_run(folder: Path, *, trials: int = 2000, workers: int = 4, window: int 
         return round((ends[hi - 1] - ends[lo - 1]) * workers / window, 5)
 
     early, late = per_trial(min(window + window // 2, len(ends))), per_trial(len(ends))
+    at = f"at_{window + window // 2}"
 
     def propose_ms(lo: int, hi: int) -> float | None:
         sel = [s for n, s in timings if lo <= n < hi]
@@ -636,11 +637,12 @@ def load_run(folder: Path, *, trials: int = 2000, workers: int = 4, window: int 
         "workers": workers,
         "seconds": round(seconds, 1),
         "closed": result.closed,
-        "overhead_s_per_trial_at_100": early,
+        "window": window,
+        f"overhead_s_per_trial_{at}": early,
         "overhead_s_per_trial_at_end": late,
         "overhead_growth": round(late / early, 2) if early and late else None,
-        "propose_ms_at_100": propose_ms(50, 150),
-        "propose_ms_at_end": propose_ms(trials - 150, trials),
+        f"propose_ms_{at}": propose_ms(window // 2, window + window // 2),
+        "propose_ms_at_end": propose_ms(trials - window - window // 2, trials),
         "controller_peak_rss_mib": round(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024, 1),
         "controller_rss_mib_early": round(rss[min(len(rss) - 1, 5)][1], 1) if rss else None,
         "controller_rss_mib_end": round(rss[-1][1], 1) if rss else None,
@@ -649,12 +651,12 @@ def load_run(folder: Path, *, trials: int = 2000, workers: int = 4, window: int 
     }
 
 
-def load(folder: Path, *, trials: int = 2000, workers: int = 4, timeout: float = 3600.0) -> dict[str, Any]:
+def load(folder: Path, *, trials: int = 2000, workers: int = 4, window: int = 100, timeout: float = 3600.0) -> dict[str, Any]:
     """:func:`load_run` in a fresh Python process; returns its figures."""
     out = folder / "load.json"
     code = (
         "import json, sys; from pathlib import Path; from forebear.bench.faults import load_run; "
-        f"r = load_run(Path({str(folder)!r}), trials={trials}, workers={workers}); "
+        f"r = load_run(Path({str(folder)!r}), trials={trials}, workers={workers}, window={window}); "
         f"Path({str(out)!r}).write_text(json.dumps(r))"
     )
     folder.mkdir(parents=True, exist_ok=True)
@@ -671,7 +673,7 @@ def load(folder: Path, *, trials: int = 2000, workers: int = 4, timeout: float =
 FULL = {"worker_kills": {"trials": 200, "kills": 50}, "controller_kills": {"trials": 60, "kills": 20},
         "full_disk": {"trials": 16}, "fsync": {"trials": 12}, "load": {"trials": 2000}}
 SHORT = {"worker_kills": {"trials": 20, "kills": 3, "interval": (0.8, 1.6)}, "controller_kills": {"trials": 12, "kills": 3},
-         "full_disk": {"trials": 10}, "fsync": {"trials": 8}, "load": {"trials": 200}}
+         "full_disk": {"trials": 10}, "fsync": {"trials": 8}, "load": {"trials": 200, "workers": 2, "window": 50}}
 
 
 def main(short: bool = False, folder: str | None = None) -> dict[str, Any]:
