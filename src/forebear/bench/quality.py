@@ -79,6 +79,8 @@ class Protocol:
     history_points: int = 300
     workers: int = 1
     first_seed: int = 0
+    #: Extra Proposer settings for every proposer method (the default run uses none).
+    proposer: Mapping[str, Any] = field(default_factory=dict)
 
     def __post_init__(self) -> None:
         unknown = [m for m in self.methods if m not in METHODS]
@@ -119,8 +121,19 @@ def _family(name: str, size: int, points: int) -> Family:
     return _FAMILIES[key]
 
 
-def search(family: Family, index: int, method: Method, seed: int, trials: int, cache_dir: str | None = None) -> dict[str, Any]:
-    """Run one method on one held-out task; best-so-far normalised regret per trial."""
+def search(
+    family: Family,
+    index: int,
+    method: Method,
+    seed: int,
+    trials: int,
+    cache_dir: str | None = None,
+    settings: Mapping[str, Any] | None = None,
+) -> dict[str, Any]:
+    """Run one method on one held-out task; best-so-far normalised regret per trial.
+
+    ``settings`` are extra Proposer keywords, overridden by the method's own.
+    """
     from forebear.proposer import Observation, Proposer
 
     task = family.tasks[index]
@@ -140,7 +153,8 @@ def search(family: Family, index: int, method: Method, seed: int, trials: int, c
         sources.update({"initial": n0, "random": trials - n0})
     else:
         history = family.history_for(index) if method.history else None
-        proposer = Proposer(space, history, seed=seed, cache_dir=cache_dir, **dict(method.settings))
+        kwargs = {**dict(settings or {}), **dict(method.settings)}
+        proposer = Proposer(space, history, seed=seed, cache_dir=cache_dir, **kwargs)
         observed: list[Any] = []
         while len(observed) < trials:
             batch = proposer.propose(min(method.q, trials - len(observed)), observed)
@@ -177,14 +191,18 @@ def _job(args: tuple[str, int, int, int, Protocol]) -> dict[str, Any]:
     out: dict[str, Any] = {"family": fam_name, "task": family.tasks[index].name, "seed": seed, "runs": {}}
     try:
         for name in proto.methods:
-            out["runs"][name] = search(family, index, METHODS[name], seed, trials, cache_dir=cache)
+            out["runs"][name] = search(family, index, METHODS[name], seed, trials, cache_dir=cache, settings=proto.proposer)
     finally:
         shutil.rmtree(cache, ignore_errors=True)
     return out
 
 
-def run(proto: Protocol, progress: bool = False) -> list[dict[str, Any]]:
-    """Every (family, held-out task, seed) job of the protocol; one dict per job."""
+def run(proto: Protocol, progress: bool = False, partial: Path | None = None) -> list[dict[str, Any]]:
+    """Every (family, held-out task, seed) job of the protocol; one dict per job.
+
+    With ``partial``, each finished job is also appended to that JSON-lines
+    file, so a run cut short still leaves its finished jobs behind.
+    """
     jobs = []
     for fam_name in proto.families:
         family = _family(fam_name, proto.family_size, proto.history_points)
@@ -194,22 +212,25 @@ def run(proto: Protocol, progress: bool = False) -> list[dict[str, Any]]:
     if proto.workers == 1:
         for j in jobs:
             results.append(_job(j))
-            if progress:
-                _say_progress(results[-1], len(results), len(jobs))
+            _finished(results[-1], len(results), len(jobs), progress, partial)
         return results
     import multiprocessing
 
     with ProcessPoolExecutor(max_workers=proto.workers, mp_context=multiprocessing.get_context("spawn")) as pool:
         for r in pool.map(_job, jobs):
             results.append(r)
-            if progress:
-                _say_progress(r, len(results), len(jobs))
+            _finished(r, len(results), len(jobs), progress, partial)
     return results
 
 
-def _say_progress(r: dict[str, Any], done: int, total: int) -> None:
+def _finished(r: dict[str, Any], done: int, total: int, progress: bool, partial: Path | None) -> None:
     import sys
 
+    if partial is not None:
+        with open(partial, "a") as fh:
+            fh.write(json.dumps(r) + "\n")
+    if not progress:
+        return
     secs = sum(v["seconds"] for v in r["runs"].values())
     print(f"[{done}/{total}] {r['task']} seed {r['seed']}: {secs:.0f}s", file=sys.stderr, flush=True)
 
@@ -410,7 +431,12 @@ def main(smoke: bool = False, out_dir: str | None = None, proto: Protocol | None
     """
     proto = proto or (SMOKE if smoke else Protocol())
     t0 = time.perf_counter()
-    results = run(proto, progress=progress)
+    partial = None
+    if out_dir is not None:
+        Path(out_dir).mkdir(parents=True, exist_ok=True)
+        partial = Path(out_dir) / "partial.jsonl"
+        partial.unlink(missing_ok=True)
+    results = run(proto, progress=progress, partial=partial)
     wall = time.perf_counter() - t0
     written = write(results, proto, out_dir) if out_dir is not None else None
     summary = written["summary"] if written else summarise(results, proto)
@@ -425,11 +451,15 @@ def main(smoke: bool = False, out_dir: str | None = None, proto: Protocol | None
         "models": {f: s["models"].get("forebear-full") for f, s in summary.items()},
         "wall_s": round(wall, 1),
         "cores": os.cpu_count(),
-        "protocol": {k: getattr(proto, k) for k in ("families", "tasks", "seeds", "trials", "methods", "family_size", "history_points", "workers", "first_seed")},
+        "protocol": _protocol_dict(proto),
     }
     if written:
         figures["plots"] = written["plots"]
     return _jsonable(figures)
+
+
+def _protocol_dict(proto: Protocol) -> dict[str, Any]:
+    return {k: getattr(proto, k) for k in Protocol.__dataclass_fields__}
 
 
 def write(results: Sequence[Mapping[str, Any]], proto: Protocol, out_dir: str | Path) -> dict[str, Any]:
@@ -437,7 +467,7 @@ def write(results: Sequence[Mapping[str, Any]], proto: Protocol, out_dir: str | 
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
     summary = summarise(results, proto)
-    proto_d = {k: getattr(proto, k) for k in ("families", "tasks", "seeds", "trials", "methods", "family_size", "history_points", "workers", "first_seed")}
+    proto_d = _protocol_dict(proto)
     (out / "curves.json").write_text(json.dumps({"protocol": proto_d, "results": list(results)}))
     (out / "summary.json").write_text(json.dumps(_jsonable(summary), indent=1))
     (out / "results.md").write_text(markdown(summary, proto))
@@ -450,18 +480,32 @@ def merge(dirs: Sequence[str | Path], out_dir: str | Path) -> dict[str, Any]:
     protos = []
     for d in dirs:
         path = Path(d) / "curves.json"
-        if not path.is_file():
+        if path.is_file():
+            data = json.loads(path.read_text())
+            protos.append(data["protocol"])
+            results += data["results"]
+            continue
+        # A run cut short: its finished jobs; the protocol is read off them.
+        part = Path(d) / "partial.jsonl"
+        if not part.is_file():
             msg = f"{path} does not exist; run the benchmark with --out {d} first"
             raise FileNotFoundError(msg)
-        data = json.loads(path.read_text())
-        protos.append(data["protocol"])
-        results += data["results"]
+        rows = [json.loads(line) for line in part.read_text().splitlines() if line.strip()]
+        if not rows:
+            msg = f"{part} holds no finished job"
+            raise ValueError(msg)
+        d0 = Protocol()
+        protos.append({"families": list(dict.fromkeys(r["family"] for r in rows)), "methods": list(rows[0]["runs"]),
+                       "tasks": len({r["task"] for r in rows}), "seeds": len({r["seed"] for r in rows}),
+                       "trials": len(next(iter(rows[0]["runs"].values()))["regret"]),
+                       "family_size": d0.family_size, "history_points": d0.history_points, "workers": 1})
+        results += rows
     families = tuple(dict.fromkeys(f for p in protos for f in p["families"]))
     methods = tuple(m for m in protos[0]["methods"] if all(m in p["methods"] for p in protos))
     first = protos[0]
     proto = Protocol(families, max(p["tasks"] for p in protos), max(p["seeds"] for p in protos),
                      min(p["trials"] for p in protos), methods, first["family_size"], first["history_points"],
-                     first["workers"], first.get("first_seed", 0))
+                     first["workers"], first.get("first_seed", 0), first.get("proposer", {}))
     return {"protocol": {"families": families, "methods": methods}, **write(results, proto, out_dir)}
 
 
