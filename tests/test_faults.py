@@ -121,9 +121,9 @@ def cluster(tmp_path_factory: pytest.TempPathFactory) -> Any:
 
 @pytest.mark.timeout(400)
 def test_controller_kills_short(tmp_path: Path, cluster: LoopbackCluster) -> None:
-    figures = faults.controller_kills(cluster, tmp_path / "ck", trials=12, kills=3)
+    figures = faults.controller_kills(cluster, tmp_path / "ck", trials=10, kills=3)
     assert figures["violations"] == [], figures
-    assert figures["kills"] >= 1 and figures["trials"] == 12
+    assert figures["kills"] >= 1 and figures["trials"] == 10
 
 
 @pytest.mark.timeout(400)
