@@ -294,13 +294,26 @@ def _journal_of(spec: Path) -> Path:
 # scenarios
 
 
+def _running_attempt(proc: subprocess.Popen[Any]) -> bool:
+    """Whether a worker process is running an attempt now (its fork server has a child)."""
+    import psutil
+
+    try:
+        return any(server.children() for server in psutil.Process(proc.pid).children())
+    except psutil.Error:
+        return False
+
+
 def worker_kills(cluster: Any, folder: Path, *, trials: int = 200, kills: int = 50, interval: tuple[float, float] = (0.3, 0.9),
-                 seed: int = 1, deadline: float = 1200.0) -> dict[str, Any]:
+                 seed: int = 1, busy_only: bool = True) -> dict[str, Any]:
     """A search on ``cluster`` while a chaos thread SIGKILLs a random worker ``kills`` times.
 
     Each killed worker is replaced at once (``cluster.start_worker()``). The
     controller runs in this process; the kills are real SIGKILLs of the
-    worker processes (their attempts die with them).
+    worker processes (their attempts die with them). With ``busy_only`` the
+    victim is drawn among the workers running an attempt at that moment, so
+    that each kill interrupts an objective rather than a replacement worker
+    that is still starting (which the other setting also exercises).
     """
     from forebear.controller import Controller
     from forebear.spec import load
@@ -322,8 +335,13 @@ def worker_kills(cluster: Any, folder: Path, *, trials: int = 200, kills: int = 
                 if done.wait(rng.uniform(*interval)):
                     return
                 live = [i for i, p in enumerate(cluster.workers) if p.poll() is None]
+                if busy_only:
+                    live = [i for i in live if _running_attempt(cluster.workers[i])]
+                while not live and not done.is_set():
+                    time.sleep(0.05)
+                    live = [i for i, p in enumerate(cluster.workers) if p.poll() is None and (not busy_only or _running_attempt(p))]
                 if not live:
-                    continue
+                    return
                 killed.append(cluster.kill_worker(rng.choice(live)))
                 cluster.start_worker()
         except BaseException as exc:  # noqa: BLE001 - reported with the figures
