@@ -11,7 +11,7 @@ from typing import Any
 import pytest
 
 import forebear
-from forebear.controller import LOOKAHEAD, Controller, SpecChanged, spec_changes
+from forebear.controller import Controller, SpecChanged, spec_changes
 from forebear.journal import Journal, JournalBusy
 from forebear.progress import Progress
 from forebear.spec import load
@@ -208,8 +208,8 @@ def test_first_ctrl_c_stops_proposing(tmp_path: Path, shared_loopback: LoopbackC
         reap(proc)
     table = Journal(journal).fold()
     assert table.closed is not None and table.closed["reason"] == "interrupted"
-    # Two attempts ran; at most one more trial was proposed ahead and stays queued, never started.
-    assert len(table) <= 2 + LOOKAHEAD
+    # Two attempts ran; at most one more round (batch 2) was proposed ahead and stays queued.
+    assert len(table) <= 2 + 2
     assert sum(1 for t in table if t.attempts) == 2
     lost = [r for r in Journal(journal).records() if r["kind"] == "lost"]
     if cancel:
@@ -257,3 +257,29 @@ def test_without_a_shared_filesystem_the_controller_writes(tmp_path: Path, share
         assert kinds == ["proposed", "started", "failed"]
     log = tmp_path / "runs" / "ctl.logs" / "trial-00000-attempt-1.log"
     assert "Traceback" in log.read_text() and oct(log.stat().st_mode & 0o777) == "0o600"
+
+
+def test_journal_write_failure_stops_and_keeps_what_was_recorded(tmp_path: Path, shared_loopback: LoopbackCluster, monkeypatch: pytest.MonkeyPatch) -> None:
+    import errno
+
+    import forebear.controller as controller_mod
+    from forebear.journal import JournalError
+
+    real = controller_mod.Journal.append_many
+    calls = {"n": 0}
+
+    def failing(self: Journal, recs: Any) -> None:
+        calls["n"] += 1
+        if calls["n"] > 4:  # the search record, a round or two, then the disk "fills up"
+            raise JournalError(errno.ENOSPC, f"journal {self.path}: write failed: No space left on device")
+        real(self, recs)
+
+    monkeypatch.setattr(controller_mod.Journal, "append_many", failing)
+    spec = make_spec(tmp_path, shared_loopback, call="objectives:sleep_from_x", trials=20, concurrency=2, batch=1)
+    with pytest.raises(JournalError, match="No space left on device"):
+        forebear.run(spec)
+    monkeypatch.setattr(controller_mod.Journal, "append_many", real)
+    table = forebear.load(tmp_path / "runs" / "ctl.jsonl")
+    assert table.header is not None and len(table) >= 1 and table.closed is None
+    # Resuming after the disk has room again completes the search from what was recorded.
+    assert forebear.run(spec).counts["scored"] == 20 - table.counts()["failed"]

@@ -71,6 +71,15 @@ def test_local_cluster_listens_on_loopback_only(tmp_path: Path) -> None:
         d.check_resources({})
 
 
+def test_local_cluster_without_dashboard_still_binds_loopback(tmp_path: Path) -> None:
+    said: list[str] = []
+    with connect(base(tmp_path, {"local": {"workers": 1, "dashboard": False}}), said.append) as d:
+        assert d.dashboard is None and not any("dashboard" in s for s in said)
+        me = psutil.Process()
+        listening = [c.laddr for c in me.net_connections(kind="inet") if c.status == psutil.CONN_LISTEN]
+        assert listening and {a.ip for a in listening} == {"127.0.0.1"}, listening
+
+
 def _jobqueue_spec(tmp: Path, kind: str, certs: dict[str, str] | None, gpus: int | None = 1) -> Any:
     cluster: dict[str, Any] = {
         kind: {
@@ -136,3 +145,25 @@ def _write_temporary_certs(tmp: Path) -> dict[str, str]:
     from .test_tls import write_certs
 
     return write_certs(Security.temporary(), tmp / "certs")
+
+
+def test_trials_run_on_workers_that_offer_the_resources(tmp_path: Path, loopback_factory: Any) -> None:
+    import forebear
+
+    cluster = loopback_factory(workers=1, resources="GPU=1")
+    cluster.start_worker(resources="")  # a second worker without the resource
+    cluster.wait_for_workers(2)
+    spec = {
+        "objective": {"call": "objectives:quadratic", "minimize": "loss"},
+        "space": {"x": {"float": [0.0, 1.0]}},
+        "budget": {"trials": 3, "concurrency": 2, "batch": 2},
+        "cluster": {"address": cluster.address},
+        "resources": {"GPU": 1},
+        "journal": str(tmp_path / "gpu.jsonl"),
+    }
+    result = forebear.run(spec)
+    assert result.counts["scored"] == 3
+    from forebear.journal import Journal
+
+    workers = {r["worker"] for r in Journal(tmp_path / "gpu.jsonl").records() if r["kind"] == "started"}
+    assert len(workers) == 1  # only the worker with the GPU resource ran trials

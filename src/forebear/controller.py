@@ -29,6 +29,7 @@ import time
 from collections import deque
 from collections.abc import Mapping
 from concurrent.futures import Future, ProcessPoolExecutor, ThreadPoolExecutor
+from concurrent.futures.process import BrokenProcessPool
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -61,7 +62,7 @@ log = logging.getLogger("forebear.controller")
 RETRY_REASONS = ("worker", "timeout")  # lost attempts that use up a retry; restarts and interrupts do not
 BUDGET_KEYS = ("trials", "batch", "concurrency", "trial_timeout", "retries", "retry_errors", "wall_time")
 EXTENDABLE = ("trials", "wall_time")
-LOOKAHEAD = 1  # proposals kept ready beyond the free slots, computed while the workers run
+LOOKAHEAD = 2  # a new round starts when fewer proposals than free slots + this are ready
 RESOURCE_CHECK_EVERY = 5.0  # seconds between checks that some worker still offers the trials' resources
 
 
@@ -207,22 +208,47 @@ class _Book:
 # the loop
 
 
-_REMOTE: Proposer | None = None
+_REMOTE: dict[str, Proposer] = {}  # in the proposer process: the proposer of each search, by key
+_POOL: ProcessPoolExecutor | None = None  # in the controller's process: one proposer process, reused
+_POOL_LOCK = threading.Lock()
+_ACTIVE: set[str] = set()  # keys of the engines of this process's running searches
 
 
-def _init_remote(proposer: Proposer) -> None:
-    global _REMOTE
+def _init_remote() -> None:
     signal.signal(signal.SIGINT, signal.SIG_IGN)  # Ctrl-C is the controller's to handle
-    _REMOTE = proposer
 
 
-def _ping() -> bool:
-    return _REMOTE is not None
+def _remote_add(key: str, proposer: Proposer) -> bool:
+    _REMOTE[key] = proposer
+    return True
 
 
-def _propose_remote(n: int, observed: list[Observation], failed: list[dict[str, Any]], pending: list[dict[str, Any]]) -> list[Any]:
-    assert _REMOTE is not None
-    return _REMOTE.propose(n, observed, failed=failed, pending=pending)
+def _remote_drop(key: str) -> None:
+    _REMOTE.pop(key, None)
+
+
+def _remote_propose(key: str, n: int, observed: list[Observation], failed: list[dict[str, Any]], pending: list[dict[str, Any]]) -> list[Any]:
+    return _REMOTE[key].propose(n, observed, failed=failed, pending=pending)
+
+
+def _proposer_pool(fresh: bool = False) -> ProcessPoolExecutor:
+    """The controller process's proposer process (started once: torch imports take seconds)."""
+    global _POOL
+    with _POOL_LOCK:
+        if _POOL is not None and fresh:
+            _kill_pool(_POOL)
+            _POOL = None
+        if _POOL is None:
+            ctx = multiprocessing.get_context("spawn")
+            _POOL = ProcessPoolExecutor(max_workers=1, mp_context=ctx, initializer=_init_remote)
+        return _POOL
+
+
+def _kill_pool(pool: ProcessPoolExecutor) -> None:
+    procs = list((getattr(pool, "_processes", None) or {}).values())
+    pool.shutdown(wait=False, cancel_futures=True)
+    for proc in procs:
+        proc.terminate()  # a round still being computed is of no use to anyone
 
 
 class _Engine:
@@ -235,30 +261,42 @@ class _Engine:
     """
 
     def __init__(self, proposer: Proposer, say: Any) -> None:
-        self.pool: Any
+        self.key = secrets.token_hex(8)
+        self.proposer: Proposer | None = None
+        self.thread: ThreadPoolExecutor | None = None
+        self.last: Future[Any] | None = None
         try:
             pickle.dumps(proposer)
         except Exception as exc:  # noqa: BLE001 - any pickling failure means: run it here
             say(f"note: the proposer runs in a thread of the controller ({type(exc).__name__}: {exc})")
-            self.pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="forebear-proposer")
-            self.proposer: Proposer | None = proposer
+            self.proposer = proposer
+            self.thread = ThreadPoolExecutor(max_workers=1, thread_name_prefix="forebear-proposer")
             return
-        self.proposer = None
-        ctx = multiprocessing.get_context("spawn")
-        self.pool = ProcessPoolExecutor(max_workers=1, mp_context=ctx, initializer=_init_remote, initargs=(proposer,))
-        self.pool.submit(_ping)  # import the engine now, while the cluster starts
+        try:
+            self.last = _proposer_pool().submit(_remote_add, self.key, proposer)
+        except BrokenProcessPool:
+            self.last = _proposer_pool(fresh=True).submit(_remote_add, self.key, proposer)
+        _ACTIVE.add(self.key)
 
     def submit(self, n: int, observed: list[Observation], failed: list[dict[str, Any]], pending: list[dict[str, Any]]) -> Future[list[Any]]:
-        if self.proposer is not None:
-            return self.pool.submit(self.proposer.propose, n, observed, failed, pending)
-        return self.pool.submit(_propose_remote, n, observed, failed, pending)
+        if self.thread is not None and self.proposer is not None:
+            self.last = self.thread.submit(self.proposer.propose, n, observed, failed, pending)
+        else:
+            self.last = _proposer_pool().submit(_remote_propose, self.key, n, observed, failed, pending)
+        return self.last
 
     def shutdown(self) -> None:
-        procs = list((getattr(self.pool, "_processes", None) or {}).values())
-        self.pool.shutdown(wait=False, cancel_futures=True)
-        for proc in procs:
-            # A round still being computed is of no use once the search stops; do not wait for it.
-            proc.terminate()
+        if self.thread is not None:
+            self.thread.shutdown(wait=False, cancel_futures=True)
+            return
+        _ACTIVE.discard(self.key)
+        if self.last is not None and not self.last.done() and not _ACTIVE:
+            _proposer_pool(fresh=True)  # do not make the next search wait for this round
+            return
+        try:
+            _proposer_pool().submit(_remote_drop, self.key)
+        except BrokenProcessPool:
+            pass
 
 
 class _Stop:
@@ -554,19 +592,20 @@ class Controller:
             self._submit(self.ready.popleft(), ac)
 
     def _propose_ahead(self, engine: _Engine) -> None:
-        """Start a round off the loop when the ready queue will not cover the free slots.
+        """Start a round of up to ``batch`` proposals off the loop when few are ready.
 
-        The round is computed while the workers run: one proposal beyond the free slots is kept
-        ready, so a worker that finishes gets its next trial without waiting for a refit.
+        The round is computed while the workers run and starts while proposals are still
+        ready (``LOOKAHEAD``), so a worker that finishes gets its next trial without waiting
+        for a refit; a refit has about ``LOOKAHEAD`` trial completions' time to finish.
         """
         if self._job is not None or self._exhausted:
             return
         budget = self.spec.budget
         free = budget.concurrency - len(self.inflight) - len(self.retry_queue)
         left = budget.trials - len(self.book.configs)
-        n = min(budget.batch, left, max(0, free) + LOOKAHEAD - len(self.ready))
-        if n <= 0:
+        if left <= 0 or len(self.ready) >= max(0, free) + LOOKAHEAD:
             return
+        n = min(budget.batch, left)
         sign = self.spec.objective.sign
         observed = [Observation(self.book.configs[t], sign * s) for t, s in self.book.scores.items()]
         failed = [self.book.configs[t] for t, s in self.book.state.items() if s == "failed"]

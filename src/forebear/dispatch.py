@@ -191,13 +191,16 @@ def _local(spec: Spec, say: Callable[[str], None]) -> Dispatch:
     opts = dict(spec.cluster.options)
     workers = opts.get("workers") or max(1, min(spec.budget.concurrency, os.cpu_count() or 1))
     dashboard = opts.get("dashboard", True)
-    if dashboard is False or dashboard is None:
-        dashboard_address = None
-    elif isinstance(dashboard, int) and not isinstance(dashboard, bool):
+    show_dashboard = dashboard is not False and dashboard is not None
+    # The scheduler's HTTP server (health and metrics routes) runs even without the dashboard,
+    # on all interfaces at port 8787 unless told otherwise: always give it a loopback address.
+    if isinstance(dashboard, int) and not isinstance(dashboard, bool):
         dashboard_address = f"127.0.0.1:{dashboard}"
     else:
         dashboard_address = "127.0.0.1:0"
     kwargs: dict[str, Any] = {}
+    if not show_dashboard:
+        kwargs["scheduler_kwargs"] = {"dashboard": False}
     if opts.get("memory_limit") is not None:
         kwargs["memory_limit"] = opts["memory_limit"]
     with dask.config.set({
@@ -219,7 +222,7 @@ def _local(spec: Spec, say: Callable[[str], None]) -> Dispatch:
     except BaseException:
         lc.close()
         raise
-    link = lc.dashboard_link if dashboard_address else None
+    link = lc.dashboard_link if show_dashboard else None
     if link:
         say(f"dashboard: {link}")
     return Dispatch(client, "local", cluster=lc, dashboard=link)
