@@ -157,7 +157,8 @@ def random_search(seeds: int, trials: int = 30) -> list[float]:
 @pytest.mark.slow
 def test_branin_sequential_30_trials_five_seeds() -> None:
     # Branin-Hoo minimum 0.397887 (Surjanovic & Bingham, Virtual Library of Simulation Experiments).
-    # Measured (docs/engine.md): 5 of 5 seeds within 0.05 of the minimum after 30 trials.
+    # Measured (docs/engine.md): 5 of 5 seeds within 0.05 of the minimum after 30 trials
+    # (regrets 0.037, 0.0001, 0.003, 0.0000, 0.0013; random search's mean regret 1.24).
     best = [branin_run(s) for s in range(5)]
     assert sum(b - BRANIN_MIN < 0.05 for b in best) >= 3
     assert np.mean(best) - BRANIN_MIN < 0.25 * (np.mean(random_search(5)) - BRANIN_MIN)
