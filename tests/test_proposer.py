@@ -169,3 +169,16 @@ def test_branin_sequential_30_trials_two_seeds() -> None:
     best = [branin_run(s) for s in (0, 1)]
     assert max(best) - BRANIN_MIN < 0.05
     assert np.mean(best) - BRANIN_MIN < 0.25 * (np.mean(random_search(2)) - BRANIN_MIN)
+
+
+def test_proposer_pickles_before_and_after_use(tmp_path: Path) -> None:
+    # The controller runs the proposer in a child process, so it must survive pickling.
+    import pickle
+
+    p = Proposer(SPACE3, make_history(4, 30, seed=3), seed=0, deep_kernel=DK, cache_dir=tmp_path)
+    pickle.loads(pickle.dumps(p))
+    first = p.propose(3, [])
+    obs = [Observation(x.config, float(_vec(SPACE3, x.config).sum())) for x in first]
+    p.propose(2, obs)
+    q = pickle.loads(pickle.dumps(p))
+    assert q.meta_model() is not None and len(q.propose(2, obs)) == 2
