@@ -182,3 +182,13 @@ def test_proposer_pickles_before_and_after_use(tmp_path: Path) -> None:
     p.propose(2, obs)
     q = pickle.loads(pickle.dumps(p))
     assert q.meta_model() is not None and len(q.propose(2, obs)) == 2
+
+
+def test_searches_with_other_seeds_share_the_cache_entry(tmp_path: Path) -> None:
+    hist = make_history(4, 30, seed=4)
+    a = Proposer(SPACE3, hist, seed=1, deep_kernel=DK, cache_dir=tmp_path)
+    b = Proposer(SPACE3, hist, seed=2, deep_kernel=DK, cache_dir=tmp_path)
+    assert a.cache_path() == b.cache_path()
+    a.meta_model()
+    b.meta_model()
+    assert b.meta_cached is True

@@ -183,7 +183,9 @@ class Proposer:
             raise ValueError(msg)
         self.history_share = history_share
         dk = deep_kernel if isinstance(deep_kernel, Settings) else Settings(**dict(deep_kernel or {}))
-        self.settings = replace(dk, augment=augment, seed=dk.seed if deep_kernel else seed)
+        # Meta-training uses the deep-kernel settings' own seed (0 unless given), not the search's:
+        # searches that share a history then share one cache entry.
+        self.settings = replace(dk, augment=augment)
         self.use_meta = bool(tasks) and model in ("auto", "deep-kernel")
         if cache_dir is False:
             self.cache_dir: Path | None = None
