@@ -44,6 +44,17 @@ def test_demo_refuses_a_folder_it_did_not_make(tmp_path: Path, capsys: pytest.Ca
     assert (tmp_path / "thesis.tex").read_text() == "mine"
 
 
+def test_demo_replaces_only_its_own_outputs_on_a_rerun(tmp_path: Path) -> None:
+    (tmp_path / demo.MARKER).write_text("")
+    for sub in ("runs", "specs", "report"):
+        (tmp_path / sub).mkdir()
+        (tmp_path / sub / "old.txt").write_text("from the last demo")
+    (tmp_path / "notes.md").write_text("kept")
+    demo._prepare(tmp_path)
+    assert not any((tmp_path / sub).exists() for sub in ("runs", "specs", "report"))
+    assert (tmp_path / "notes.md").read_text() == "kept" and (tmp_path / demo.MARKER).exists()
+
+
 def test_reduced_demo_end_to_end(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     # One earlier region keeps it short: each new objective costs a fork server start per worker.
     plan = demo.Plan(history_trials=4, trials=5, batch=2, workers=2, checkpoints=(2, 5), history_regions=("north",))
