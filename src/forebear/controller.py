@@ -216,6 +216,17 @@ _ACTIVE: set[str] = set()  # keys of the engines of this process's running searc
 
 def _init_remote() -> None:
     signal.signal(signal.SIGINT, signal.SIG_IGN)  # Ctrl-C is the controller's to handle
+    parent = os.getppid()
+
+    def orphaned() -> None:
+        # A controller killed with SIGKILL cannot stop its proposer process, which would idle on
+        # with torch loaded; it leaves when its parent is gone (PR_SET_PDEATHSIG would fire when
+        # the thread that started it ends, which for a reused pool is too early).
+        while os.getppid() == parent:
+            time.sleep(1.0)
+        os._exit(0)
+
+    threading.Thread(target=orphaned, name="forebear-orphan-watch", daemon=True).start()
 
 
 def _remote_add(key: str, proposer: Proposer) -> bool:

@@ -381,6 +381,7 @@ def controller_kills(cluster: Any, folder: Path, *, trials: int = 60, kills: int
     t0 = time.monotonic()
     done_kills = 0
     busy_refusals = 0
+    doomed: list[Any] = []  # processes the killed controllers had started
     for _ in range(kills):
         size = journal.stat().st_size if journal.exists() else 0
         proc = _cli(spec)
@@ -392,29 +393,60 @@ def controller_kills(cluster: Any, folder: Path, *, trials: int = 60, kills: int
                 time.sleep(0.05)
             time.sleep(rng.uniform(*after))
             if proc.poll() is None:
+                doomed += _children(proc.pid)
                 os.kill(proc.pid, signal.SIGKILL)
                 done_kills += 1
-            code, err = _wait(proc, 30)
-            if "is driven by pid" in err:
-                busy_refusals += 1  # the dead controller's lock must not outlive it
+                proc.wait(timeout=30)  # not communicate(): its children may hold stderr open a while
+            else:
+                code, err = _wait(proc, 30)
+                if "is driven by pid" in err:
+                    busy_refusals += 1  # the dead controller's lock must not outlive it
         finally:
             _reap(proc)
         if _finished(journal) >= trials:
             break
     code, err = _wait(_cli(spec), deadline)
     seconds = time.monotonic() - t0
+    # A proposer process may still be importing torch when its controller dies; it leaves at its next check.
+    orphans = _outlived(doomed, 60.0)
     records = _records(journal)
     figures = check_invariants(records)
     if code != 0:
         figures["violations"].append(f"the final run exited {code}: {err.strip()[-300:]}")
     if busy_refusals:
         figures["violations"].append(f"{busy_refusals} run(s) refused: a killed controller's lock outlived it")
+    if orphans:
+        figures["violations"].append(f"processes outlived their killed controller by minutes: {orphans[:5]}")
     closed = [r for r in records if r["kind"] == "closed"]
     if not closed or closed[-1].get("reason") != "budget":
         figures["violations"].append(f"the search did not close on its budget: {closed[-1] if closed else None}")
     if figures["trials"] != trials:
         figures["violations"].append(f"{figures['trials']} trials proposed, the budget was {trials}")
     return {"kills": done_kills, "seconds": round(seconds, 1), **figures}
+
+
+def _children(pid: int) -> list[Any]:
+    import psutil
+
+    try:
+        return psutil.Process(pid).children(recursive=True)
+    except psutil.Error:
+        return []
+
+
+def _outlived(children: list[Any], grace: float) -> list[str]:
+    """Processes of a killed controller still alive after ``grace`` s (killed then, and named)."""
+    import psutil
+
+    _, alive = psutil.wait_procs(children, timeout=grace)
+    names = []
+    for p in alive:
+        try:
+            names.append(f"{p.pid} {' '.join(p.cmdline())[:80]}")
+            p.kill()
+        except psutil.Error:
+            continue
+    return names
 
 
 @contextlib.contextmanager
