@@ -193,7 +193,7 @@ def _launch(tmp: Path, cluster: LoopbackCluster, *args: str, trials: int = 6) ->
     return proc, journal
 
 
-@pytest.mark.parametrize("cancel", [False, True])
+@pytest.mark.parametrize("cancel", [False, pytest.param(True, marks=pytest.mark.slow)])
 def test_first_ctrl_c_stops_proposing(tmp_path: Path, shared_loopback: LoopbackCluster, cancel: bool) -> None:
     import os
     import signal
@@ -222,6 +222,7 @@ def test_first_ctrl_c_stops_proposing(tmp_path: Path, shared_loopback: LoopbackC
         assert proc.returncode == 0
 
 
+@pytest.mark.slow  # a third CLI controller process; the first Ctrl-C test covers the handler
 def test_second_ctrl_c_stops_at_once(tmp_path: Path, shared_loopback: LoopbackCluster) -> None:
     import os
     import signal

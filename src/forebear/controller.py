@@ -273,6 +273,7 @@ class _Engine:
 
     def __init__(self, proposer: Proposer, say: Any) -> None:
         self.key = secrets.token_hex(8)
+        self.original = proposer
         self.proposer: Proposer | None = None
         self.thread: ThreadPoolExecutor | None = None
         self.last: Future[Any] | None = None
@@ -293,7 +294,13 @@ class _Engine:
         if self.thread is not None and self.proposer is not None:
             self.last = self.thread.submit(self.proposer.propose, n, observed, failed, pending)
         else:
-            self.last = _proposer_pool().submit(_remote_propose, self.key, n, observed, failed, pending)
+            try:
+                self.last = _proposer_pool().submit(_remote_propose, self.key, n, observed, failed, pending)
+            except BrokenProcessPool:
+                # The proposer process died (killed, out of memory): start another one.
+                pool = _proposer_pool(fresh=True)
+                pool.submit(_remote_add, self.key, self.original)
+                self.last = pool.submit(_remote_propose, self.key, n, observed, failed, pending)
         return self.last
 
     def shutdown(self) -> None:
