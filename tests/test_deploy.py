@@ -244,9 +244,10 @@ def test_tls_certificates_admit_only_holders(tmp_path: Path) -> None:
     subprocess.run([str(K8S / "make-certs.sh"), str(certs)], check=True, capture_output=True, timeout=60)
     port = _free_port()
     sched_args = [a for a in _k8s_args("forebear-scheduler", certs) if not a.startswith(("--host=", "--port=", "--dashboard-address="))]
-    sched_args += ["--host=127.0.0.1", f"--port={port}", "--no-dashboard"]
+    # The scheduler's HTTP server runs even with --no-dashboard; keep it on loopback too.
+    sched_args += ["--host=127.0.0.1", f"--port={port}", "--no-dashboard", "--dashboard-address=127.0.0.1:0"]
     worker_args = _k8s_args("forebear-worker", certs)
-    worker_args = [f"tls://127.0.0.1:{port}", "--host=127.0.0.1", *[a for a in worker_args[1:] if not a.startswith("--name=")], "--name=tls-worker"]
+    worker_args = [f"tls://127.0.0.1:{port}", "--host=127.0.0.1", *[a for a in worker_args[1:] if not a.startswith(("--name=", "--dashboard-address="))], "--name=tls-worker", "--dashboard-address=127.0.0.1:0"]
     procs = []
     try:
         procs.append(subprocess.Popen([sys.executable, "-m", "distributed.cli.dask_scheduler", *sched_args], stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, start_new_session=True))
@@ -290,6 +291,23 @@ def _pid_alive(pid: int) -> bool:
         return True
 
 
+def _listeners(group_leaders: list[int]) -> set[tuple[str, int]]:
+    """Listening TCP addresses of every process in the given process groups (psutil comes with distributed)."""
+    import psutil
+
+    out: set[tuple[str, int]] = set()
+    for proc in psutil.process_iter(["pid"]):
+        try:
+            if os.getpgid(proc.pid) not in group_leaders:
+                continue
+            for c in proc.net_connections(kind="inet"):
+                if c.status == psutil.CONN_LISTEN:
+                    out.add((c.laddr.ip, c.laddr.port))
+        except (psutil.Error, ProcessLookupError, PermissionError):
+            continue
+    return out
+
+
 def test_local_scripts_start_and_stop_a_cluster_a_search_uses(tmp_path: Path) -> None:
     state = tmp_path / "cluster"
     port = _free_port()
@@ -302,6 +320,8 @@ def test_local_scripts_start_and_stop_a_cluster_a_search_uses(tmp_path: Path) ->
         address = start.stdout.strip()
         assert address == f"tcp://127.0.0.1:{port}"
         assert len(pids) == 3 and all(_pid_alive(p) for p in pids)
+        listening = _listeners(pids)
+        assert listening and all(host in ("127.0.0.1", "::1") for host, _ in listening), f"not loopback only: {listening}"
         again = subprocess.run([str(DEPLOY / "local" / "start.sh"), "-d", str(state)], capture_output=True, text=True, env=env, timeout=30)
         assert again.returncode == 2 and "already holds pid files" in again.stderr
 

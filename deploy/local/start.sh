@@ -42,10 +42,10 @@ fi
 # setsid: each process leads its own process group, so stop.sh can end it with its
 # children (a worker's nanny and the worker it supervises) and nothing else.
 setsid "$python" -m distributed.cli.dask_scheduler --host 127.0.0.1 --port "$port" \
-  --no-dashboard >"$state/scheduler.log" 2>&1 </dev/null &
+  --no-dashboard --dashboard-address 127.0.0.1:0 >"$state/scheduler.log" 2>&1 </dev/null &
 echo $! >"$state/scheduler.pid"
 
-worker_args=(--host 127.0.0.1 --nthreads 1 --no-dashboard --death-timeout 60)
+worker_args=(--host 127.0.0.1 --nthreads 1 --no-dashboard --dashboard-address 127.0.0.1:0 --death-timeout 60)
 if [ -n "$resources" ]; then
   worker_args+=(--resources "$resources")
 fi

@@ -18,6 +18,7 @@ so the cluster starts once instead of five times.
 
 from __future__ import annotations
 
+import dataclasses
 import importlib.util
 import os
 import shutil
@@ -112,10 +113,10 @@ def _best_curve(trials: list[Any]) -> list[float]:
 
 def run_demo(folder: Path, plan: Plan = Plan(), quiet: bool = False) -> Outcome:
     """Run the whole demo in ``folder``; raises on failure (``main`` turns that into a message)."""
-    from distributed import LocalCluster
-
+    from forebear import spec as spec_mod
     from forebear.controller import run
     from forebear.demo_forecast import evaluate
+    from forebear.dispatch import connect
     from forebear.journal import Journal
     from forebear.report import write_report
 
@@ -131,11 +132,14 @@ def run_demo(folder: Path, plan: Plan = Plan(), quiet: bool = False) -> Outcome:
         path.write_text(yaml.safe_dump(spec, sort_keys=False))
         return path
 
-    # One loopback cluster for all five searches. The spec files keep cluster: local, so
-    # `forebear run specs/X.yaml` works on its own later; here the demo points them at it.
-    with LocalCluster(n_workers=plan.workers, threads_per_worker=1, processes=True, host="127.0.0.1",
-                      dashboard_address=None, worker_dashboard_address=None) as cluster:
-        address = cluster.scheduler_address
+    # One loopback cluster for all five searches, made by forebear's own dispatch (every
+    # listener on 127.0.0.1, worker deaths not retried behind forebear's back). The spec files
+    # keep cluster: local, so `forebear run specs/X.yaml` works on its own later; here the
+    # demo points them at the shared cluster.
+    base = spec_mod.load(spec_for(NEW_REGION, plan, str(folder / "runs" / "unused.jsonl"), None, seed=0))
+    base = dataclasses.replace(base, cluster=dataclasses.replace(base.cluster, options={"workers": plan.workers, "dashboard": False}))
+    with connect(base) as shared:
+        address = shared.cluster.scheduler_address
 
         def search(name: str, spec: dict[str, Any]) -> Any:
             path = write_spec(name, spec)
