@@ -84,7 +84,7 @@ def _figures(records: list[dict[str, Any]], workers: int, n: int, median: float,
     for r in records:
         if r["kind"] == "started":
             start[r["trial"]] = (r["at"], r["worker"])
-        elif r["kind"] == "scored":
+        elif r["kind"] == "scored" and r["trial"] in start:
             end[r["trial"]] = (r["at"], float(r["seconds"]))
     per_worker: dict[str, list[int]] = defaultdict(list)
     for trial, (_, worker) in start.items():
@@ -98,6 +98,8 @@ def _figures(records: list[dict[str, Any]], workers: int, n: int, median: float,
             continue
         window += start[trials[-1]][0] - start[trials[0]][0]
         for a, b in zip(trials, trials[1:], strict=False):
+            if a not in end:
+                continue  # lost or failed: its time counts as idle
             busy_steady += float(sleep[a % n])
             gaps.append(start[b][0] - end[a][0])
             extra.append(end[a][1] - float(sleep[a % n]))
@@ -111,6 +113,8 @@ def _figures(records: list[dict[str, Any]], workers: int, n: int, median: float,
         "gap_ms_per_trial": round(1000 * float(np.mean(gaps)), 1) if gaps else float("nan"),
         "in_attempt_ms_per_trial": round(1000 * float(np.mean(extra)), 1) if extra else float("nan"),
         "scored": len(end),
+        "lost_attempts": sum(1 for r in records if r["kind"] == "lost"),
+        "failed": sum(1 for r in records if r["kind"] == "failed"),
     }
 
 
@@ -135,5 +139,7 @@ def main(trials: int = 100, workers: int = 4, median: float = 2.0, sigma: float 
         "noop_overhead_ms_per_trial": nf["overhead_ms_per_trial"],
         "noop_trials_per_s": round(nf["scored"] / (noop_last - noop_first), 2),
         "noop_trials": noop_trials,
+        "lost_attempts": figures["lost_attempts"] + nf["lost_attempts"],
+        "failed": figures["failed"] + nf["failed"],
         "cpu_count": os.cpu_count(),
     }
