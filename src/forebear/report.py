@@ -27,6 +27,7 @@ from forebear.space import Param, Space
 
 try:
     from matplotlib.figure import Figure
+    from matplotlib.lines import Line2D
     from matplotlib.patches import Patch
     from matplotlib.ticker import FuncFormatter, LogLocator, MaxNLocator, NullFormatter
 except ModuleNotFoundError as exc:  # pragma: no cover - depends on the install
@@ -221,7 +222,8 @@ def _parameters(table: TrialTable, space: Space) -> Figure:
                 ax.set_xlim(p.low / 1.2, p.high * 1.2)  # type: ignore[operator]
                 # Plain numbers at 1-2-5 steps; matplotlib's default labels short log ranges
                 # with overlapping "4x10^0"-style minor labels.
-                ax.xaxis.set_major_locator(LogLocator(base=10, subs=(1.0, 2.0, 5.0)))
+                decades = math.log10(p.high / p.low)  # type: ignore[operator]
+                ax.xaxis.set_major_locator(LogLocator(base=10, subs=(1.0, 2.0, 5.0) if decades <= 2 else (1.0,)))
                 ax.xaxis.set_major_formatter(FuncFormatter(lambda v, _pos: f"{v:g}"))
                 ax.xaxis.set_minor_formatter(NullFormatter())
             else:
@@ -240,6 +242,10 @@ def _parameters(table: TrialTable, space: Space) -> Figure:
     for ax in axes[len(params):]:
         ax.set_visible(False)
     fig.suptitle(f"{table.metric or 'score'} against each parameter (circled: best)", fontsize=10)
+    sources = [src for src in SOURCE_COLORS if any(t.source == src for t in scored)]
+    if sources:
+        handles = [Line2D([], [], ls="", marker="o", color=SOURCE_COLORS[src], label=src) for src in sources]
+        fig.legend(handles=handles, loc="outside lower center", ncol=len(handles), fontsize=8, frameon=False)
     return fig
 
 
