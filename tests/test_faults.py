@@ -53,9 +53,9 @@ def test_invariant_checker_catches_each_broken_rule() -> None:
 @pytest.mark.timeout(400)
 def test_worker_kills_short(tmp_path: Path, loopback_factory: Callable[..., LoopbackCluster]) -> None:
     cluster = loopback_factory(workers=3)
-    figures = faults.worker_kills(cluster, tmp_path / "wk", trials=20, kills=3, interval=(0.8, 1.6))
+    figures = faults.worker_kills(cluster, tmp_path / "wk", **faults.SHORT["worker_kills"])
     assert figures["violations"] == [], figures
-    assert figures["kills"] == 3 and figures["trials"] == 20 and figures["scored"] == 20
+    assert figures["kills"] == 3 and figures["trials"] == figures["scored"] == 12
     assert sum(figures["lost"].values()) >= 1  # the kills hit running attempts
 
 
@@ -121,14 +121,14 @@ def cluster(tmp_path_factory: pytest.TempPathFactory) -> Any:
 
 @pytest.mark.timeout(400)
 def test_controller_kills_short(tmp_path: Path, cluster: LoopbackCluster) -> None:
-    figures = faults.controller_kills(cluster, tmp_path / "ck", trials=10, kills=3)
+    figures = faults.controller_kills(cluster, tmp_path / "ck", **faults.SHORT["controller_kills"])
     assert figures["violations"] == [], figures
-    assert figures["kills"] >= 1 and figures["trials"] == 10
+    assert figures["kills"] >= 1 and figures["trials"] == 8
 
 
 @pytest.mark.timeout(400)
 def test_full_disk(tmp_path: Path, cluster: LoopbackCluster) -> None:
-    figures = faults.full_disk(cluster, tmp_path / "fd", trials=10, fill_after=3)
+    figures = faults.full_disk(cluster, tmp_path / "fd", trials=8, fill_after=3)
     if "skipped" in figures:
         pytest.skip(figures["skipped"])
     assert figures["violations"] == [], figures

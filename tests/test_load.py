@@ -1,6 +1,6 @@
 """Load: many trials of a no-op objective on the embedded cluster; overhead must not grow with the journal.
 
-The default run is small (120 trials, 2 workers, windows of 40 trials) with a
+The default run is small (80 trials, 2 workers, windows of 25 trials) with a
 loose bound, because CI shares two cores with everything else; the full
 2000-trial run on 4 workers (``-m slow``, or ``forebear bench faults``)
 holds the 2x bound of docs/reliability.md.
@@ -17,10 +17,10 @@ from forebear.bench import faults
 
 @pytest.mark.timeout(600)
 def test_load_small(tmp_path: Path) -> None:
-    figures = faults.load(tmp_path, trials=120, workers=2, window=40)
+    figures = faults.load(tmp_path, **faults.SHORT["load"])
     assert figures.get("violations") == [], figures
-    assert figures["scored"] == 120 and figures["closed"] == "budget"
-    assert figures["overhead_s_per_trial_at_60"] and figures["overhead_s_per_trial_at_end"]
+    assert figures["scored"] == 80 and figures["closed"] == "budget"
+    assert figures["overhead_s_per_trial_at_37"] and figures["overhead_s_per_trial_at_end"]
     # Loose on a shared machine; the slow test below holds the documented 2x.
     assert figures["overhead_growth"] < 3.0, figures
     assert figures["controller_peak_rss_mib"] > 0

@@ -340,18 +340,19 @@ def test_pickle_payloads_in_journal_and_history_are_data(tmp_path: Path) -> None
     assert not marker.exists()
 
 
-_FORBIDDEN_MODULES = {"pickle", "cPickle", "dill", "cloudpickle", "shelve", "marshal", "jsonpickle"}
+_FORBIDDEN_MODULES = {"pickle", "cPickle", "_pickle", "dill", "cloudpickle", "shelve", "marshal", "jsonpickle"}
+_LOADERS = {"load", "loads", "Unpickler", "open", "decode"}
 
 
 def unsafe_loads(source: str) -> list[str]:
     """Places in ``source`` that could turn bytes into objects or run a shell (line: what)."""
     found = []
     for node in ast.walk(ast.parse(source)):
-        if isinstance(node, (ast.Import, ast.ImportFrom)):
-            names = [a.name for a in node.names] if isinstance(node, ast.Import) else [node.module or ""]
-            for name in names:
-                if name.split(".")[0] in _FORBIDDEN_MODULES:
-                    found.append(f"{node.lineno}: import {name}")
+        # Importing pickle to test whether something pickles (pickle.dumps) is harmless; loading is not.
+        if isinstance(node, ast.ImportFrom) and (node.module or "").split(".")[0] in _FORBIDDEN_MODULES:
+            for alias in node.names:
+                if alias.name in _LOADERS:
+                    found.append(f"{node.lineno}: from {node.module} import {alias.name}")
         if not isinstance(node, ast.Call):
             continue
         fn = node.func
@@ -359,7 +360,7 @@ def unsafe_loads(source: str) -> list[str]:
         kw = {k.arg: k.value for k in node.keywords if k.arg}
         if isinstance(fn, ast.Name) and fn.id in ("eval", "exec"):
             found.append(f"{node.lineno}: {fn.id}()")
-        elif dotted.split(".")[0] in _FORBIDDEN_MODULES and dotted.rsplit(".", 1)[-1] in ("load", "loads", "Unpickler"):
+        elif dotted.split(".")[0] in _FORBIDDEN_MODULES and dotted.rsplit(".", 1)[-1] in _LOADERS:
             found.append(f"{node.lineno}: {dotted}()")
         elif dotted in ("yaml.load", "yaml.unsafe_load", "yaml.full_load", "yaml.load_all", "yaml.unsafe_load_all"):
             found.append(f"{node.lineno}: {dotted}()")
@@ -374,12 +375,12 @@ def unsafe_loads(source: str) -> list[str]:
 
 def test_the_scanner_finds_unsafe_loads() -> None:
     bad = (
-        "import pickle\nimport yaml, torch, os, subprocess\nimport numpy as np\n"
+        "import pickle\nimport yaml, torch, os, subprocess\nimport numpy as np\nfrom dill import loads\n"
         "pickle.loads(b'')\nyaml.load(s)\ntorch.load(p)\ntorch.load(p, weights_only=False)\nnp.load(p, allow_pickle=True)\n"
         "eval('1')\nos.system('ls')\nsubprocess.run('ls', shell=True)\n"
     )
     assert len(unsafe_loads(bad)) == 9, unsafe_loads(bad)
-    good = "import yaml, torch\nyaml.safe_load(s)\ntorch.load(p, weights_only=True)\nmodel.eval()\nsubprocess.run(['ls'])\n"
+    good = "import pickle, yaml, torch\npickle.dumps(x)\nyaml.safe_load(s)\ntorch.load(p, weights_only=True)\nmodel.eval()\nsubprocess.run(['ls'])\n"
     assert unsafe_loads(good) == []
 
 
