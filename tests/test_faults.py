@@ -147,3 +147,31 @@ def test_failing_fsync_stops_the_controller(tmp_path: Path, cluster: LoopbackClu
 def test_full_campaign(tmp_path: Path) -> None:
     figures = faults.main(short=False, folder=str(tmp_path))
     assert figures["ok"], figures
+
+
+def test_a_failed_started_write_leaves_the_attempt_process_usable(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    """A journal that cannot take the ``started`` record (full disk) must not leave the fork server mid-attempt."""
+    from forebear import runner
+    from forebear.journal import Journal, JournalError
+
+    logs = tmp_path / "runs" / "s.logs"
+    logs.mkdir(parents=True)
+    (logs / runner.PROBE_NAME).write_text("tok")
+
+    def task(trial: int) -> runner.AttemptTask:
+        return runner.AttemptTask(search="s", trial=trial, attempt=1, config={"x": 0.5, "seconds": 1.0}, metric="loss",
+                                  call="forebear.bench.faults:sleeper", journal=str(tmp_path / "runs" / "s.jsonl"),
+                                  logs=str(logs), token="tok", cwd=str(tmp_path))
+
+    real = Journal.append
+
+    def full(self: Journal, rec: dict[str, Any]) -> None:
+        if rec["kind"] == "started" and rec["trial"] == 0:
+            raise JournalError(28, f"journal {self.path}: write failed: No space left on device")
+        real(self, rec)
+
+    monkeypatch.setattr(Journal, "append", full)
+    with pytest.raises(JournalError):
+        runner.run_attempt(task(0))
+    after = runner.run_attempt(task(1))  # the same fork server serves the next attempt
+    assert after.outcome == "scored", after.error

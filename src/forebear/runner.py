@@ -344,7 +344,14 @@ def _supervise(
     t0 = time.monotonic()
     started = record("started", trial=task.trial, attempt=task.attempt, worker=worker, host=socket.gethostname(), pid=pid)
     if journal is not None:
-        journal.append(started)
+        try:
+            journal.append(started)
+        except BaseException:
+            # The journal cannot be written (a full disk): stop the child and retire this server, whose
+            # protocol would otherwise still owe the child's exit to the next attempt it is given.
+            _killpg(pid)
+            server.close()
+            raise
     deadline = None if task.timeout is None else t0 + task.timeout
     outcome = "done"
     killed_at: float | None = None
