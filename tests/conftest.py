@@ -214,3 +214,15 @@ def _stop_fork_servers() -> Iterator[None]:
     yield
     if "forebear.runner" in sys.modules:
         sys.modules["forebear.runner"].shutdown_servers()
+
+
+@pytest.fixture(autouse=True, scope="session")
+def _private_model_cache(tmp_path_factory: pytest.TempPathFactory) -> Iterator[None]:
+    """Meta-trained states go to a per-run folder, never to the user's ~/.cache/forebear."""
+    old = os.environ.get("FOREBEAR_CACHE")
+    os.environ["FOREBEAR_CACHE"] = str(tmp_path_factory.mktemp("model-cache"))
+    yield
+    if old is None:
+        os.environ.pop("FOREBEAR_CACHE", None)
+    else:
+        os.environ["FOREBEAR_CACHE"] = old
