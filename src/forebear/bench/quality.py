@@ -379,15 +379,17 @@ def plots(results: Sequence[Mapping[str, Any]], proto: Protocol, out_dir: Path) 
         for m in seq:
             c = np.maximum(curves(results, fam, m), 1e-6)
             mean = c.mean(axis=0)
-            style = "--" if m.startswith("no-") else "-"
-            width = 2.2 if m == "forebear-full" else 1.2
-            ax.plot(x, mean, style, lw=width, label=m)
-            if m in ("random", "gp", "forebear-full"):
+            # forebear-cold runs the same plain GP as gp: dotted on top so both stay visible.
+            style = "--" if m.startswith("no-") else (":" if m == "forebear-cold" else "-")
+            width = 2.2 if m in ("forebear-full", "forebear-cold") else 1.2
+            (line,) = ax.plot(x, mean, style, lw=width, label=m)
+            if m in ("random", "forebear-full"):
                 se = c.std(axis=0, ddof=1) / np.sqrt(len(c)) if len(c) > 1 else np.zeros_like(mean)
-                ax.fill_between(x, np.maximum(mean - 1.96 * se, 1e-6), mean + 1.96 * se, alpha=0.15)
+                ax.fill_between(x, np.maximum(mean - 1.96 * se, 1e-6), mean + 1.96 * se, alpha=0.15, color=line.get_color())
         ax.set_yscale("log")
         ax.set_xlabel("trials")
         ax.set_ylabel("mean normalised regret (best so far)")
+        ax.text(0.99, 0.99, "bands: mean +- 1.96 s.e.", transform=ax.transAxes, ha="right", va="top", fontsize=7)
         ax.set_title(f"{fam}: leave one task out, {len(c)} runs")
         ax.legend(fontsize=7, ncol=2)
         fig.tight_layout()
@@ -503,7 +505,9 @@ def merge(dirs: Sequence[str | Path], out_dir: str | Path) -> dict[str, Any]:
     families = tuple(dict.fromkeys(f for p in protos for f in p["families"]))
     methods = tuple(m for m in protos[0]["methods"] if all(m in p["methods"] for p in protos))
     first = protos[0]
-    proto = Protocol(families, max(p["tasks"] for p in protos), max(p["seeds"] for p in protos),
+    seeds = len({r["seed"] for r in results})
+    tasks = max(len({r["task"] for r in results if r["family"] == f}) for f in families)
+    proto = Protocol(families, tasks, seeds,
                      min(p["trials"] for p in protos), methods, first["family_size"], first["history_points"],
                      first["workers"], first.get("first_seed", 0), first.get("proposer", {}))
     return {"protocol": {"families": families, "methods": methods}, **write(results, proto, out_dir)}
