@@ -137,7 +137,7 @@ def test_full_disk(tmp_path: Path, cluster: LoopbackCluster) -> None:
 
 @pytest.mark.timeout(300)
 def test_failing_fsync_stops_the_controller(tmp_path: Path, cluster: LoopbackCluster) -> None:
-    figures = faults.fsync_failure(cluster, tmp_path / "fs", trials=8, fail_after=4)
+    figures = faults.fsync_failure(cluster, tmp_path / "fs", trials=8, fail_after=2)
     assert figures["violations"] == [], figures
     assert figures["message"].startswith("forebear: journal ") and "write failed: Input/output error" in figures["message"]
 

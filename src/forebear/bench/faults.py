@@ -547,7 +547,7 @@ def full_disk(cluster: Any, folder: Path, *, trials: int = 16, fill_after: int =
 
 @contextlib.contextmanager
 def failing_fsync(after: int) -> Iterator[list[int]]:
-    """Make ``os.fsync`` in this process fail with EIO from its ``after``-th call on."""
+    """Make ``os.fsync`` in this process fail with EIO after its first ``after`` calls."""
     from forebear import journal as jmod
 
     real = jmod.os.fsync
@@ -566,7 +566,7 @@ def failing_fsync(after: int) -> Iterator[list[int]]:
         jmod.os.fsync = real  # type: ignore[assignment]
 
 
-def fsync_failure(cluster: Any, folder: Path, *, trials: int = 12, fail_after: int = 4) -> dict[str, Any]:
+def fsync_failure(cluster: Any, folder: Path, *, trials: int = 12, fail_after: int = 2) -> dict[str, Any]:
     """The controller's fsync fails (injected EIO) mid-search: one clear line, exit 2, nothing lost.
 
     The controller runs in this process through the command line's code
@@ -585,6 +585,8 @@ def fsync_failure(cluster: Any, folder: Path, *, trials: int = 12, fail_after: i
         res = CliRunner().invoke(cli_main, ["run", str(spec), "--quiet"])
     err = res.stderr
     lines = [line for line in err.strip().splitlines() if line.strip()]
+    if calls[0] <= fail_after:
+        violations.append(f"the injected failure never came: the controller called fsync {calls[0]} time(s)")
     if res.exit_code != 2:
         violations.append(f"the controller exited {res.exit_code}, want 2 ({res.exception!r})")
     if "Traceback" in err or len(lines) != 1 or "Input/output error" not in lines[0]:
