@@ -144,6 +144,7 @@ def test_command_objective(tmp_path: Path) -> None:
 def test_dict_source(tmp_path: Path) -> None:
     s = load({"objective": {"call": "m:f", "minimize": "l"}, "space": {"x": {"int": [1, 4]}}}, base_dir=tmp_path)
     assert s.journal.parent == tmp_path / "runs"
+    assert s.base_dir == tmp_path  # objectives run from here, as from a spec file's folder
     with pytest.raises(SpecError, match=r"space.x.int: inverted range") as info:
         load({"objective": {"call": "m:f", "minimize": "l"}, "space": {"x": {"int": [4, 1]}}})
     assert "line" not in str(info.value)

@@ -129,11 +129,15 @@ class Spec:
     lock_lifetime: float
     seed: int
     source: Path | None = None
+    root: Path | None = None  # the folder relative paths resolve against
     notes: tuple[str, ...] = ()
     raw: Mapping[str, Any] = field(default_factory=dict, repr=False, compare=False)
 
     @property
     def base_dir(self) -> Path:
+        """The spec file's folder, or the ``base_dir`` given with a mapping."""
+        if self.root is not None:
+            return self.root
         return self.source.parent if self.source else Path.cwd()
 
     def hash(self) -> str:
@@ -573,6 +577,7 @@ def _build(data: Any, doc: _Doc, base: Path, source: Path | None) -> Spec:
         lock_lifetime=float(lifetime),
         seed=seed,
         source=source,
+        root=base,
         notes=tuple(notes),
         raw=data,
     )
