@@ -492,7 +492,7 @@ def merge(dirs: Sequence[str | Path], out_dir: str | Path) -> dict[str, Any]:
         if not part.is_file():
             msg = f"{path} does not exist; run the benchmark with --out {d} first"
             raise FileNotFoundError(msg)
-        rows = [json.loads(line) for line in part.read_text().splitlines() if line.strip()]
+        rows = _read_partial(part)
         if not rows:
             msg = f"{part} holds no finished job"
             raise ValueError(msg)
@@ -511,6 +511,21 @@ def merge(dirs: Sequence[str | Path], out_dir: str | Path) -> dict[str, Any]:
                      min(p["trials"] for p in protos), methods, first["family_size"], first["history_points"],
                      first["workers"], first.get("first_seed", 0), first.get("proposer", {}))
     return {"protocol": {"families": families, "methods": methods}, **write(results, proto, out_dir)}
+
+
+def _read_partial(path: Path) -> list[dict[str, Any]]:
+    """Finished jobs of a partial file; a torn last line (the run was killed mid-write) is skipped."""
+    lines = [line for line in path.read_text().splitlines() if line.strip()]
+    rows = []
+    for i, line in enumerate(lines):
+        try:
+            rows.append(json.loads(line))
+        except ValueError:
+            if i == len(lines) - 1:
+                break
+            msg = f"{path}: line {i + 1} is not a JSON record"
+            raise ValueError(msg) from None
+    return rows
 
 
 def _jsonable(obj: Any) -> Any:
