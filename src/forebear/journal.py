@@ -11,6 +11,8 @@ parse and count them. :func:`fold` turns records into a trial table.
 
 from __future__ import annotations
 
+import contextlib
+import gc
 import json
 import math
 import os
@@ -219,8 +221,30 @@ class Journal:
         return table
 
 
+@contextlib.contextmanager
+def _gc_paused() -> Iterator[None]:
+    """Pause the cyclic garbage collector while building many acyclic objects.
+
+    Parsing and folding 10^5 records allocates millions of containers, which
+    triggers repeated full collections that find nothing to free (records hold
+    no reference cycles); pausing it halves the time of a large fold.
+    """
+    was_enabled = gc.isenabled()
+    gc.disable()
+    try:
+        yield
+    finally:
+        if was_enabled:
+            gc.enable()
+
+
 def parse(data: bytes) -> tuple[list[dict[str, Any]], int]:
     """Parse journal bytes; returns records and the count of unparseable lines."""
+    with _gc_paused():
+        return _parse(data)
+
+
+def _parse(data: bytes) -> tuple[list[dict[str, Any]], int]:
     out: list[dict[str, Any]] = []
     skipped = 0
     loads = json.loads
@@ -402,6 +426,11 @@ class TrialTable:
 
 def fold(records: Iterable[Mapping[str, Any]]) -> TrialTable:
     """Fold records into a :class:`TrialTable`. The first ``scored`` of a trial wins."""
+    with _gc_paused():
+        return _fold(records)
+
+
+def _fold(records: Iterable[Mapping[str, Any]]) -> TrialTable:
     table = TrialTable()
     trials = table.trials
     for rec in records:

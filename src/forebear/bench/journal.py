@@ -65,11 +65,16 @@ def _appends(folder: Path, writers: int, per_writer: int) -> tuple[float, int]:
 def main(records: int = 100_000, appends: int = 500) -> dict[str, Any]:
     """Run the journal benchmark; returns the figures."""
     data = _synthetic(records)
-    t0 = time.perf_counter()
-    recs, _ = parse(data)
-    table = fold(recs)
-    fold_seconds = time.perf_counter() - t0
-    assert len(table) > 0
+    # The fastest of three, as the timeit module's documentation advises: slower runs measure
+    # other processes on the machine, not the fold.
+    times = []
+    for _ in range(3):
+        t0 = time.perf_counter()
+        recs, _ = parse(data)
+        table = fold(recs)
+        times.append(time.perf_counter() - t0)
+        assert len(table) > 0
+    fold_seconds = min(times)
     with tempfile.TemporaryDirectory(prefix="forebear-bench-") as tmp:
         one, lost1 = _appends(Path(tmp), 1, appends)
         eight, lost8 = _appends(Path(tmp), 8, appends)
@@ -78,6 +83,7 @@ def main(records: int = 100_000, appends: int = 500) -> dict[str, Any]:
         "appends_per_second_1_writer": round(one, 1),
         "appends_per_second_8_writers": round(eight, 1),
         "lost_records": lost1 + lost8,
+        "fold_seconds_1e5_slowest_of_3": round(max(times), 4),
         "records_folded": records,
         "appends_per_writer": appends,
     }
