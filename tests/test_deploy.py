@@ -179,8 +179,10 @@ def _with_jobqueue_config(section: str) -> dict[str, Any]:
 
 
 @pytest.mark.skipif(importlib.util.find_spec("dask_jobqueue") is None, reason="dask-jobqueue is not installed (the slurm extra)")
-def test_slurm_jobqueue_yaml_renders_a_gpu_job_script() -> None:
+def test_slurm_jobqueue_yaml_renders_a_gpu_job_script(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
     import dask
+
+    monkeypatch.chdir(tmp_path)  # the config's relative log-directory is created in the working folder
     from dask_jobqueue import SLURMCluster
 
     # interface ib0 exists on the example site's nodes, not here; loopback stands in for it.
@@ -192,8 +194,10 @@ def test_slurm_jobqueue_yaml_renders_a_gpu_job_script() -> None:
 
 
 @pytest.mark.skipif(importlib.util.find_spec("dask_jobqueue") is None, reason="dask-jobqueue is not installed (the slurm extra)")
-def test_pbs_jobqueue_yaml_renders_a_gpu_job_script() -> None:
+def test_pbs_jobqueue_yaml_renders_a_gpu_job_script(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
     import dask
+
+    monkeypatch.chdir(tmp_path)  # the config's relative log-directory is created in the working folder
     from dask_jobqueue import PBSCluster
 
     with dask.config.set(_with_jobqueue_config("pbs")), PBSCluster(interface="lo") as cluster:
