@@ -11,7 +11,7 @@ Two kinds of family:
   ``f`` on the unit cube, a shift ``t`` uniform in ``[-0.25, 0.25]^D`` clipped so
   that a minimiser of ``f`` stays inside the cube, a scale ``s`` uniform in
   ``[0.75, 1.25]``. The parametrisation follows the meta-learning BO
-  literature (e.g. Wistuba & Grabocka 2021, few-shot BO with deep kernels);
+  literature (few-shot BO with deep-kernel surrogates, ICLR 2021);
   ``f`` is evaluated at ``clip(x - t, 0, 1)`` so it never leaves its
   published domain, which leaves its minimum and minimiser (shifted) intact.
 * the real-training family: tasks of the committed table
