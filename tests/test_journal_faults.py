@@ -4,15 +4,14 @@ from __future__ import annotations
 
 import json
 import os
-import shutil
 import signal
-import subprocess
 import uuid
 from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
 
+from forebear.bench.faults import fill_filesystem, tiny_filesystem
 from forebear.journal import Journal, JournalError, record
 from tests.process_helpers import CTX
 
@@ -54,33 +53,18 @@ def test_writer_killed_mid_large_record(tmp_path: Path) -> None:
 
 @pytest.fixture()
 def tiny_fs(tmp_path: Path) -> Iterator[Path]:
-    """A 256 KiB tmpfs where the machine allows mounting one (root on Linux), else skip."""
-    mnt = tmp_path / f"tfs-{uuid.uuid4().hex[:6]}"
-    mnt.mkdir()
-    if shutil.which("mount") is None or os.geteuid() != 0:
-        pytest.skip("mounting a tmpfs needs root; the injected-OSError test covers this case")
-    res = subprocess.run(["mount", "-t", "tmpfs", "-o", "size=256k", "tmpfs", str(mnt)], capture_output=True, text=True, timeout=30)
-    if res.returncode != 0:
-        pytest.skip(f"cannot mount a tmpfs here: {res.stderr.strip()}")
-    try:
+    """A small tmpfs where the machine allows mounting one (root on Linux), else skip."""
+    with tiny_filesystem(tmp_path / f"tfs-{uuid.uuid4().hex[:6]}") as mnt:
+        if mnt is None:
+            pytest.skip("mounting a tmpfs needs root; the injected-OSError test covers this case")
         yield mnt
-    finally:
-        subprocess.run(["umount", "-l", str(mnt)], capture_output=True, timeout=30)
 
 
 def test_full_disk_is_reported_and_nothing_lost(tiny_fs: Path) -> None:
     j = Journal(tiny_fs / "runs" / "a.jsonl")
     kept = [record("proposed", trial=i, round=0, config={"x": i}, source="initial", model=None, acquisition=None) for i in range(50)]
     j.append_many(kept)
-    filler = tiny_fs / "filler"
-    fd = os.open(filler, os.O_WRONLY | os.O_CREAT, 0o600)
-    try:
-        while True:
-            os.write(fd, b"\0" * 4096)
-    except OSError:
-        pass
-    finally:
-        os.close(fd)
+    filler = fill_filesystem(tiny_fs)
     with pytest.raises(JournalError, match="No space left on device"):
         for i in range(1000):
             j.append(record("scored", trial=i, attempt=1, score=1.0, metrics={"pad": "y" * 2000}, seconds=1.0))

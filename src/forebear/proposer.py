@@ -199,6 +199,9 @@ class Proposer:
         self._meta: MetaModel | None = None
         self._gp_state: dict[str, torch.Tensor] | None = None
         self._gp_fits = 0
+        # Encodings of configurations seen so far (None: outside the space). A search hands the
+        # same observations to every round; each is validated and encoded once, not per round.
+        self._rows: dict[tuple[Any, ...], np.ndarray | None] = {}
         self.meta_seconds: float | None = None  # time spent meta-training or loading the cache
         self.meta_cached: bool | None = None  # whether the state came from the cache
         self.last_choice: Choice | None = None
@@ -258,9 +261,9 @@ class Proposer:
         if n <= 0:
             return []
         with _threads(self.threads):
-            obs = [o for o in observed if self.space.contains(o.config)]
-            fail = [c for c in failed if self.space.contains(c)]
-            pend = [c for c in pending if self.space.contains(c)]
+            obs = [o for o in observed if self._row(o.config) is not None]
+            fail = [c for c in failed if self._row(c) is not None]
+            pend = [c for c in pending if self._row(c) is not None]
             seen = set(acquisition.keys(self._encode([o.config for o in obs] + fail + pend)))
             out: list[Proposal] = []
             # The initial design covers the first k trials of a search; a search that already
@@ -291,8 +294,17 @@ class Proposer:
                     out.append(Proposal(config, "random"))
         return out
 
+    def _row(self, config: Mapping[str, Any]) -> np.ndarray | None:
+        """The encoding of ``config`` (memoised), or ``None`` when it lies outside the space."""
+        key = tuple((k, type(v).__name__, v) for k, v in sorted(config.items()))
+        if key not in self._rows:
+            self._rows[key] = self.space.encode(config) if self.space.contains(config) else None
+        return self._rows[key]
+
     def _encode(self, configs: Sequence[Mapping[str, Any]]) -> np.ndarray:
-        return self.space.encode_many(configs)
+        """Encodings of configurations already checked by :meth:`_row`, shape ``(n, dim)``."""
+        rows = [self._row(c) for c in configs]
+        return np.vstack(rows) if rows else np.zeros((0, self.space.dim))
 
     def _initial_size(self, n: int) -> int:
         if self._k is None:

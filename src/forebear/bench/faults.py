@@ -465,7 +465,7 @@ def tiny_filesystem(folder: Path, size: str = TINY_FS) -> Iterator[Path | None]:
             subprocess.run(["umount", "-l", str(folder)], capture_output=True, timeout=30)
 
 
-def _fill(folder: Path) -> Path:
+def fill_filesystem(folder: Path) -> Path:
     """Write a filler file until the filesystem is full; returns it (delete it to free the space)."""
     filler = folder / "filler"
     fd = os.open(filler, os.O_WRONLY | os.O_CREAT, 0o600)
@@ -509,7 +509,7 @@ def full_disk(cluster: Any, folder: Path, *, trials: int = 16, fill_after: int =
             if stop.is_set():
                 return
             before.extend(_records(journal))
-            _fill(mnt)
+            fill_filesystem(mnt)
             filled.set()
 
         thread = threading.Thread(target=filler, name="filler", daemon=True)
