@@ -178,8 +178,28 @@ def search(
     }
 
 
-def _job(args: tuple[str, int, int, int, Protocol]) -> dict[str, Any]:
-    fam_name, index, seed, trials, proto = args
+def _same_as_gp(family: Family, method: Method, settings: Mapping[str, Any] | None) -> bool:
+    """Whether ``method`` resolves to exactly the plain-GP search (``gp``) on this family.
+
+    A proposer without history has no meta-trained model, so model ``auto`` takes the
+    plain-GP branch on every round: same seed, same settings, same proposals. The
+    benchmark then reuses the ``gp`` curve instead of computing it twice.
+    """
+    from forebear.proposer import Proposer
+
+    if method.kind != "proposer" or method.history or method.q != 1:
+        return False
+    kwargs = {**dict(settings or {}), **dict(method.settings)}
+    if kwargs.get("model", "auto") not in ("auto", "gp"):
+        return False
+    mine = Proposer(family.space, None, cache_dir=False, **kwargs)
+    plain = Proposer(family.space, None, cache_dir=False, **{**dict(settings or {}), "model": "gp"})
+    same = ("use_meta", "warm_start", "lie", "failed", "n_initial", "n_candidates", "history_share", "settings", "device")
+    return not mine.use_meta and not mine.tasks and all(getattr(mine, k) == getattr(plain, k) for k in same)
+
+
+def _job(args: tuple[str, int, int, int, Protocol, str | None]) -> dict[str, Any]:
+    fam_name, index, seed, trials, proto, shared_cache = args
     try:
         import torch
 
@@ -187,40 +207,52 @@ def _job(args: tuple[str, int, int, int, Protocol]) -> dict[str, Any]:
     except ImportError:  # pragma: no cover - torch is a hard dependency
         pass
     family = _family(fam_name, proto.family_size, proto.history_points)
-    cache = tempfile.mkdtemp(prefix="forebear-bench-")
+    # Meta-training depends on the history and the deep-kernel settings only (its seed is
+    # fixed), so jobs of one run may share a cache folder; entries are written atomically.
+    cache = shared_cache or tempfile.mkdtemp(prefix="forebear-bench-")
     out: dict[str, Any] = {"family": fam_name, "task": family.tasks[index].name, "seed": seed, "runs": {}}
     try:
         for name in proto.methods:
-            out["runs"][name] = search(family, index, METHODS[name], seed, trials, cache_dir=cache, settings=proto.proposer)
+            method = METHODS[name]
+            if name != "gp" and "gp" in out["runs"] and _same_as_gp(family, method, proto.proposer):
+                out["runs"][name] = {**out["runs"]["gp"], "same_as": "gp"}
+                continue
+            out["runs"][name] = search(family, index, method, seed, trials, cache_dir=cache, settings=proto.proposer)
     finally:
-        shutil.rmtree(cache, ignore_errors=True)
+        if shared_cache is None:
+            shutil.rmtree(cache, ignore_errors=True)
     return out
 
 
 def run(proto: Protocol, progress: bool = False, partial: Path | None = None) -> list[dict[str, Any]]:
     """Every (family, held-out task, seed) job of the protocol; one dict per job.
 
-    With ``partial``, each finished job is also appended to that JSON-lines
-    file, so a run cut short still leaves its finished jobs behind.
+    Jobs go seed by seed (all families and tasks for the first seed, then the next),
+    so a run cut short still covers every family and task evenly. With ``partial``,
+    each finished job is also appended to that JSON-lines file, so a run cut short
+    still leaves its finished jobs behind.
     """
-    jobs = []
-    for fam_name in proto.families:
-        family = _family(fam_name, proto.family_size, proto.history_points)
-        jobs += [(fam_name, i, s, proto.trials, proto) for i in held_out(family, proto.tasks)
-                 for s in range(proto.first_seed, proto.first_seed + proto.seeds)]
+    families = {f: _family(f, proto.family_size, proto.history_points) for f in proto.families}
+    cache = tempfile.mkdtemp(prefix="forebear-bench-")
+    jobs = [(f, i, s, proto.trials, proto, cache)
+            for s in range(proto.first_seed, proto.first_seed + proto.seeds)
+            for f in proto.families for i in held_out(families[f], proto.tasks)]
     results: list[dict[str, Any]] = []
-    if proto.workers == 1:
-        for j in jobs:
-            results.append(_job(j))
-            _finished(results[-1], len(results), len(jobs), progress, partial)
-        return results
-    import multiprocessing
+    try:
+        if proto.workers == 1:
+            for j in jobs:
+                results.append(_job(j))
+                _finished(results[-1], len(results), len(jobs), progress, partial)
+            return results
+        import multiprocessing
 
-    with ProcessPoolExecutor(max_workers=proto.workers, mp_context=multiprocessing.get_context("spawn")) as pool:
-        for r in pool.map(_job, jobs):
-            results.append(r)
-            _finished(r, len(results), len(jobs), progress, partial)
-    return results
+        with ProcessPoolExecutor(max_workers=proto.workers, mp_context=multiprocessing.get_context("spawn")) as pool:
+            for r in pool.map(_job, jobs):
+                results.append(r)
+                _finished(r, len(results), len(jobs), progress, partial)
+        return results
+    finally:
+        shutil.rmtree(cache, ignore_errors=True)
 
 
 def _finished(r: dict[str, Any], done: int, total: int, progress: bool, partial: Path | None) -> None:
@@ -231,7 +263,7 @@ def _finished(r: dict[str, Any], done: int, total: int, progress: bool, partial:
             fh.write(json.dumps(r) + "\n")
     if not progress:
         return
-    secs = sum(v["seconds"] for v in r["runs"].values())
+    secs = sum(v["seconds"] for v in r["runs"].values() if "same_as" not in v)
     print(f"[{done}/{total}] {r['task']} seed {r['seed']}: {secs:.0f}s", file=sys.stderr, flush=True)
 
 
