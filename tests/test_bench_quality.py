@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import json
+
 import numpy as np
 import pytest
 
@@ -96,3 +98,17 @@ def test_forebear_cold_reuses_the_gp_curve_only_when_it_is_the_same_search() -> 
     gp = search(fam, 1, METHODS["gp"], seed=3, trials=8)
     cold = search(fam, 1, METHODS["forebear-cold"], seed=3, trials=8)
     assert cold["regret"] == gp["regret"] and cold["models"] == gp["models"]
+
+
+def test_cli_set_passes_proposer_settings_and_refuses_unknown_ones(capsys: pytest.CaptureFixture[str]) -> None:
+    with pytest.raises(SystemExit) as exc:
+        quality._cli(["--set", "bogus=1"])
+    assert exc.value.code == 2
+    assert "--set: Proposer got unknown settings: bogus" in capsys.readouterr().err
+    with pytest.raises(SystemExit):
+        quality._cli(["--set", "novalue"])
+    assert "--set expects KEY=VALUE" in capsys.readouterr().err
+    quality._cli(["--families", "branin", "--tasks", "1", "--seeds", "1", "--trials", "4", "--methods", "gp",
+                  "--family-size", "3", "--history-points", "16", "--set", "n_initial=3"])
+    out = json.loads(capsys.readouterr().out)
+    assert out["protocol"]["proposer"] == {"n_initial": 3}

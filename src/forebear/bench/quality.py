@@ -585,7 +585,26 @@ def _cli(argv: Sequence[str] | None = None) -> None:
     ap.add_argument("--out", default=None, help="Folder for curves.json, results.md and PNGs.")
     ap.add_argument("--smoke", action="store_true")
     ap.add_argument("--merge", nargs="+", default=None, metavar="DIR", help="Only combine the curves.json of earlier runs into --out.")
+    ap.add_argument("--set", action="append", default=[], metavar="KEY=VALUE", dest="settings",
+                    help="An extra Proposer setting for every proposer method, VALUE read as JSON (e.g. n_initial=7); repeatable.")
     ns = ap.parse_args(argv)
+    settings: dict[str, Any] = {}
+    for item in ns.settings:
+        key, sep, value = item.partition("=")
+        if not sep or not key:
+            ap.error(f"--set expects KEY=VALUE, got {item!r}")
+        try:
+            settings[key] = json.loads(value)
+        except ValueError:
+            settings[key] = value
+    if settings:
+        from forebear.bench.families import unit_space
+        from forebear.proposer import Proposer
+
+        try:  # a bad setting is refused here, not in every worker
+            Proposer(unit_space(2), None, cache_dir=False, **settings)
+        except (TypeError, ValueError) as exc:
+            ap.error(f"--set: {exc}")
     if ns.merge:
         if ns.out is None:
             ap.error("--merge needs --out")
@@ -594,7 +613,7 @@ def _cli(argv: Sequence[str] | None = None) -> None:
         return
     try:
         proto = SMOKE if ns.smoke else Protocol(tuple(ns.families), ns.tasks, ns.seeds, ns.trials, tuple(ns.methods),
-                                                  ns.family_size, ns.history_points, ns.workers, ns.first_seed)
+                                                  ns.family_size, ns.history_points, ns.workers, ns.first_seed, settings)
     except ValueError as exc:
         ap.error(str(exc))
     print(json.dumps(main(out_dir=ns.out, proto=proto, progress=True), indent=1))
