@@ -92,9 +92,9 @@ def test_forebear_cold_reuses_the_gp_curve_only_when_it_is_the_same_search() -> 
     # round). Check that claim against a real run of both, and that history-using methods
     # are never reused.
     fam = analytic_family("branin", n_tasks=3, n_points=32, seed=0)
-    assert quality._same_as_gp(fam, METHODS["forebear-cold"], None)
+    assert quality._same_as_gp(METHODS["forebear-cold"], None)
     for name in ("forebear-full", "no-guard", "gp-q4", "random"):
-        assert not quality._same_as_gp(fam, METHODS[name], None), name
+        assert not quality._same_as_gp(METHODS[name], None), name
     gp = search(fam, 1, METHODS["gp"], seed=3, trials=8)
     cold = search(fam, 1, METHODS["forebear-cold"], seed=3, trials=8)
     assert cold["regret"] == gp["regret"] and cold["models"] == gp["models"]

@@ -178,24 +178,19 @@ def search(
     }
 
 
-def _same_as_gp(family: Family, method: Method, settings: Mapping[str, Any] | None) -> bool:
-    """Whether ``method`` resolves to exactly the plain-GP search (``gp``) on this family.
+def _same_as_gp(method: Method, settings: Mapping[str, Any] | None) -> bool:
+    """Whether ``method`` is exactly the plain-GP search (``gp``), so its curve can be reused.
 
     A proposer without history has no meta-trained model, so model ``auto`` takes the
-    plain-GP branch on every round: same seed, same settings, same proposals. The
-    benchmark then reuses the ``gp`` curve instead of computing it twice.
+    plain-GP branch on every round (``Proposer._model_batch``): with the same seed and
+    otherwise the same settings it makes the same proposals as ``model="gp"``.
     """
-    from forebear.proposer import Proposer
-
     if method.kind != "proposer" or method.history or method.q != 1:
         return False
-    kwargs = {**dict(settings or {}), **dict(method.settings)}
-    if kwargs.get("model", "auto") not in ("auto", "gp"):
+    own = dict(method.settings)
+    if own.pop("model", "auto") not in ("auto", "gp"):
         return False
-    mine = Proposer(family.space, None, cache_dir=False, **kwargs)
-    plain = Proposer(family.space, None, cache_dir=False, **{**dict(settings or {}), "model": "gp"})
-    same = ("use_meta", "warm_start", "lie", "failed", "n_initial", "n_candidates", "history_share", "settings", "device")
-    return not mine.use_meta and not mine.tasks and all(getattr(mine, k) == getattr(plain, k) for k in same)
+    return not own and (settings or {}).get("model", "auto") in ("auto", "gp")
 
 
 def _job(args: tuple[str, int, int, int, Protocol, str | None]) -> dict[str, Any]:
@@ -214,7 +209,7 @@ def _job(args: tuple[str, int, int, int, Protocol, str | None]) -> dict[str, Any
     try:
         for name in proto.methods:
             method = METHODS[name]
-            if name != "gp" and "gp" in out["runs"] and _same_as_gp(family, method, proto.proposer):
+            if name != "gp" and "gp" in out["runs"] and _same_as_gp(method, proto.proposer):
                 out["runs"][name] = {**out["runs"]["gp"], "same_as": "gp"}
                 continue
             out["runs"][name] = search(family, index, method, seed, trials, cache_dir=cache, settings=proto.proposer)
