@@ -10,8 +10,8 @@ import torch
 from scipy.stats import spearmanr
 
 from forebear.bench.proposal import SPACE3, make_history, shifted_hartmann3
-from forebear.surrogate.deep_kernel import MetaModel, Settings, _augment, cache_key
-from forebear.surrogate.gp import fit_gp
+from forebear.engine.surrogate.deep_kernel import MetaModel, Settings, _augment, cache_key
+from forebear.engine.surrogate.gp import fit_gp
 
 FAST = Settings(max_steps=250, eval_every=25, patience=4, batch=40, seed=0)
 

@@ -8,10 +8,10 @@ import pytest
 
 from forebear.bench.functions import BRANIN_MIN, branin
 from forebear.bench.proposal import SPACE2, _vec
-from forebear.history import History, Task
-from forebear.proposer import Observation, Proposer
-from forebear.surrogate.gp import Posterior, as_tensor, fit_gp
-from forebear.surrogate.select import choose
+from forebear.engine.proposer import Observation, Proposer
+from forebear.engine.surrogate.gp import Posterior, as_tensor, fit_gp
+from forebear.engine.surrogate.select import choose
+from forebear.records.history import History, Task
 
 DK = {"max_steps": 300, "eval_every": 25, "patience": 4, "batch": 40}
 

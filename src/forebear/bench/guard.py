@@ -75,9 +75,9 @@ def diagnose(
     """
     import torch
 
-    from forebear.proposer import Observation, Proposer
-    from forebear.surrogate.gp import fit_gp
-    from forebear.surrogate.select import choose
+    from forebear.engine.proposer import Observation, Proposer
+    from forebear.engine.surrogate.gp import fit_gp
+    from forebear.engine.surrogate.select import choose
 
     torch.set_num_threads(1)
     task = family.tasks[index]

@@ -5,16 +5,16 @@ Two ways in:
 * ``forebear run SPEC --detach`` (with ``cluster.address``) registers a
   :class:`SearchPlugin` on the remote scheduler through
   ``Client.register_plugin`` and returns at once;
-* ``dask scheduler --preload forebear.plugin --forebear-spec search.yaml``
+* ``dask scheduler --preload forebear.cluster.plugin --forebear-spec search.yaml``
   starts the search when the scheduler starts.
 
 Either way the plugin runs the ordinary controller in its own thread with its
 own client connected back to the scheduler, so the scheduler's event loop is
-never blocked. The spec's paths (journal, history, TLS files) must be valid on
+never blocked. The spec's paths (logbook, history, TLS files) must be valid on
 the scheduler's host, and the objective importable on the workers. A failure
 is logged loudly on the scheduler (Dask itself only logs it) and, where the
-journal is known, written as a ``closed`` record with reason ``error``.
-``forebear status`` and ``forebear best`` read the journal while it runs.
+logbook is known, written as a ``closed`` record with reason ``error``.
+``forebear status`` and ``forebear best`` read the logbook while it runs.
 """
 
 from __future__ import annotations
@@ -29,9 +29,9 @@ import click
 from distributed import Client
 from distributed.diagnostics.plugin import SchedulerPlugin
 
-from forebear.spec import Spec
+from forebear.core.spec import Spec
 
-log = logging.getLogger("forebear.plugin")
+log = logging.getLogger("forebear.cluster.plugin")
 
 START_WAIT = 60.0  # seconds for the scheduler to be ready before the controller connects to it
 
@@ -42,17 +42,17 @@ def _loud(message: str) -> None:
 
 
 def _record_error(spec: Spec, error: str) -> None:
-    """Write a ``closed`` record with the error, unless the journal belongs to someone else."""
-    from forebear.journal import Journal, JournalError, record
+    """Write a ``closed`` record with the error, unless the logbook belongs to someone else."""
+    from forebear.records.logbook import Logbook, LogbookError, record
 
-    journal = Journal(spec.journal, spec.lock, spec.lock_lifetime)
+    logbook = Logbook(spec.logbook, spec.lock, spec.lock_lifetime)
     try:
-        closed = journal.fold().closed if journal.exists() else None
+        closed = logbook.fold().closed if logbook.exists() else None
         if closed and closed.get("reason") == "error" and closed.get("error") == error:
             return  # the controller recorded it already
-        journal.append(record("closed", reason="error", best=None, error=error))
-    except (JournalError, OSError, ValueError) as exc:
-        _loud(f"could not record the error in {spec.journal}: {exc}")
+        logbook.append(record("closed", reason="error", best=None, error=error))
+    except (LogbookError, OSError, ValueError) as exc:
+        _loud(f"could not record the error in {spec.logbook}: {exc}")
 
 
 class SearchPlugin(SchedulerPlugin):
@@ -76,9 +76,9 @@ class SearchPlugin(SchedulerPlugin):
             self.controller.request_stop(cancel=True)
 
     def _main(self, scheduler: Any) -> None:
-        from forebear.controller import Controller, SpecChanged
-        from forebear.dispatch import Dispatch, install_fail_fast, security_for
-        from forebear.journal import JournalBusy, JournalMismatch
+        from forebear.cluster.dispatch import Dispatch, install_fail_fast, security_for
+        from forebear.loop.controller import Controller, SpecChanged
+        from forebear.records.logbook import LogbookBusy, LogbookMismatch
 
         spec = self.spec
         try:
@@ -89,15 +89,15 @@ class SearchPlugin(SchedulerPlugin):
                 time.sleep(0.05)
             client = Client(scheduler.address, security=security_for(spec.cluster) or scheduler.security, timeout="30s")
             dispatch = Dispatch(client, "scheduler", fail_fast=install_fail_fast(client, log.warning))
-            log.warning("forebear: search %s started inside the scheduler; journal %s", spec.name, spec.journal)
+            log.warning("forebear: search %s started inside the scheduler; logbook %s", spec.name, spec.logbook)
             try:
                 self.controller = Controller(spec, extend=self.extend, quiet=True, dispatch=dispatch, handle_signals=False)
                 self.result = self.controller.run()
             finally:
                 dispatch.close()
             log.warning("forebear: search %s closed (%s)", spec.name, self.result.closed)
-        except (JournalBusy, JournalMismatch, SpecChanged) as exc:
-            # The journal is someone else's (another controller, another search): report, do not write.
+        except (LogbookBusy, LogbookMismatch, SpecChanged) as exc:
+            # The logbook is someone else's (another controller, another search): report, do not write.
             self.error = str(exc)
             _loud(f"search {spec.name} did not start: {exc}")
         except BaseException as exc:  # noqa: BLE001 - a thread in the scheduler must report, never die silently
@@ -108,8 +108,8 @@ class SearchPlugin(SchedulerPlugin):
 
 def detach(spec: Spec, *, extend: bool = False, quiet: bool = False) -> Any:
     """Register the search on the spec's remote scheduler and return without waiting for it."""
-    from forebear.controller import SearchResult
-    from forebear.dispatch import ClusterError, insecure_warning, security_for
+    from forebear.cluster.dispatch import ClusterError, insecure_warning, security_for
+    from forebear.loop.controller import SearchResult
 
     cl = spec.cluster
     if cl.kind != "address" or not cl.address:
@@ -128,16 +128,16 @@ def detach(spec: Spec, *, extend: bool = False, quiet: bool = False) -> Any:
         client.close()
     if not quiet:
         click.echo(f"detached: search {spec.name} runs inside the scheduler at {cl.address}", err=True)
-        click.echo(f"follow it with: forebear status {spec.journal}", err=True)
-    return SearchResult(best=None, trials=[], journal=spec.journal, closed="detached")
+        click.echo(f"follow it with: forebear status {spec.logbook}", err=True)
+    return SearchResult(best=None, trials=[], logbook=spec.logbook, closed="detached")
 
 
 @click.command()
 @click.option("--forebear-spec", "spec_path", required=True, type=click.Path(dir_okay=False), help="The search to run in this scheduler.")
-@click.option("--forebear-extend", "extend", is_flag=True, help="Allow a larger budget than the journal's search had.")
+@click.option("--forebear-extend", "extend", is_flag=True, help="Allow a larger budget than the logbook's search had.")
 def dask_setup(scheduler: Any, spec_path: str, extend: bool) -> None:
-    """``dask scheduler --preload forebear.plugin --forebear-spec search.yaml``."""
-    from forebear import spec as spec_mod
+    """``dask scheduler --preload forebear.cluster.plugin --forebear-spec search.yaml``."""
+    from forebear.core import spec as spec_mod
 
     try:
         spec = spec_mod.load(spec_path)

@@ -309,7 +309,7 @@ def main(argv: list[str] | None = None) -> int:
         elif flag == "--path":
             path = args.pop(0)
         else:
-            sys.stderr.write(f"forebear._child: unknown argument {flag!r}\n")
+            sys.stderr.write(f"forebear.cluster.child: unknown argument {flag!r}\n")
             return 2
     return serve(call, path)
 

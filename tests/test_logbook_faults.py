@@ -1,4 +1,4 @@
-"""Journal faults: a writer killed mid-record, a full disk, a failing fsync."""
+"""Logbook faults: a writer killed mid-record, a full disk, a failing fsync."""
 
 from __future__ import annotations
 
@@ -12,13 +12,13 @@ from pathlib import Path
 import pytest
 
 from forebear.bench.faults import fill_filesystem, tiny_filesystem
-from forebear.journal import Journal, JournalError, record
+from forebear.records.logbook import Logbook, LogbookError, record
 from tests.process_helpers import CTX
 
 
 def _die_mid_record(path: str, size: int) -> None:
     """Take the lock like a writer, write half of a large record, then SIGKILL ourselves."""
-    j = Journal(path)
+    j = Logbook(path)
     rec = json.dumps(record("scored", trial=0, attempt=1, score=1.0, metrics={"blob": "x" * size}, seconds=1.0)) + "\n"
     data = rec.encode()
     with j.lock.acquire(timeout=30):
@@ -30,7 +30,7 @@ def _die_mid_record(path: str, size: int) -> None:
 
 def test_writer_killed_mid_large_record(tmp_path: Path) -> None:
     path = tmp_path / "a.jsonl"
-    j = Journal(path)
+    j = Logbook(path)
     before = [record("proposed", trial=i, round=0, config={"x": i}, source="initial", model=None, acquisition=None) for i in range(20)]
     j.append_many(before)
     p = CTX.Process(target=_die_mid_record, args=(str(path), 400_000), daemon=True)
@@ -61,11 +61,11 @@ def tiny_fs(tmp_path: Path) -> Iterator[Path]:
 
 
 def test_full_disk_is_reported_and_nothing_lost(tiny_fs: Path) -> None:
-    j = Journal(tiny_fs / "runs" / "a.jsonl")
+    j = Logbook(tiny_fs / "runs" / "a.jsonl")
     kept = [record("proposed", trial=i, round=0, config={"x": i}, source="initial", model=None, acquisition=None) for i in range(50)]
     j.append_many(kept)
     filler = fill_filesystem(tiny_fs)
-    with pytest.raises(JournalError, match="No space left on device"):
+    with pytest.raises(LogbookError, match="No space left on device"):
         for i in range(1000):
             j.append(record("scored", trial=i, attempt=1, score=1.0, metrics={"pad": "y" * 2000}, seconds=1.0))
     recs, _ = j.read()
@@ -78,9 +78,9 @@ def test_full_disk_is_reported_and_nothing_lost(tiny_fs: Path) -> None:
 
 
 def test_failing_fsync_keeps_earlier_records(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
-    from forebear import journal as jmod
+    from forebear.records import logbook as jmod
 
-    j = Journal(tmp_path / "a.jsonl")
+    j = Logbook(tmp_path / "a.jsonl")
     kept = [record("proposed", trial=i, round=0, config={"x": i}, source="initial", model=None, acquisition=None) for i in range(5)]
     j.append_many(kept)
 
@@ -88,7 +88,7 @@ def test_failing_fsync_keeps_earlier_records(tmp_path: Path, monkeypatch: pytest
         raise OSError(5, "Input/output error")
 
     monkeypatch.setattr(jmod.os, "fsync", eio)
-    with pytest.raises(JournalError, match="write failed: Input/output error"):
+    with pytest.raises(LogbookError, match="write failed: Input/output error"):
         j.append(record("closed", reason="budget", best=None))
     monkeypatch.undo()
     assert j.read()[0][:5] == kept

@@ -26,9 +26,9 @@ from typing import Any
 
 import yaml
 
-from forebear._yaml import Doc as _Doc
-from forebear._yaml import read_yaml as _read_yaml
-from forebear.space import Param, Space
+from forebear.core._yaml import Doc as _Doc
+from forebear.core._yaml import read_yaml as _read_yaml
+from forebear.core.space import Param, Space
 
 MAX_SPEC_BYTES = 1 << 20  # a spec is a page of YAML; 1 MiB leaves room and stops runaway files
 
@@ -48,7 +48,7 @@ class SpecError(ValueError):
 
 
 def _defaults() -> dict[str, Any]:
-    text = resources.files("forebear").joinpath("defaults.yaml").read_text()
+    text = resources.files("forebear.core").joinpath("defaults.yaml").read_text()
     return yaml.safe_load(text)["forebear"]
 
 
@@ -66,16 +66,16 @@ class Objective:
     call: str | None
     command: tuple[str, ...] | None
     metric: str
-    direction: str  # "minimize" or "maximize"
+    sense: str  # "minimize" or "maximize"
 
     @property
     def sign(self) -> float:
         """+1 for minimize, -1 for maximize: ``sign * score`` is lower-is-better."""
-        return 1.0 if self.direction == "minimize" else -1.0
+        return 1.0 if self.sense == "minimize" else -1.0
 
     def to_dict(self) -> dict[str, Any]:
         out: dict[str, Any] = {"call": self.call} if self.call else {"command": list(self.command or ())}
-        out[self.direction] = self.metric
+        out[self.sense] = self.metric
         return out
 
 
@@ -94,9 +94,9 @@ class Budget:
 
 @dataclass(frozen=True)
 class HistorySource:
-    """One history entry: a journal glob, or a CSV table with task and score columns."""
+    """One history entry: a logbook glob, or a CSV table with task and score columns."""
 
-    journal: str | None = None
+    logbook: str | None = None
     csv: str | None = None
     task: str | None = None
     score: str | None = None
@@ -124,7 +124,7 @@ class Spec:
     history: tuple[HistorySource, ...]
     cluster: Cluster
     resources: Mapping[str, float]
-    journal: Path
+    logbook: Path
     lock: str
     lock_lifetime: float
     seed: int
@@ -150,19 +150,23 @@ class Spec:
 # validation helpers
 
 
-_TOP = ("name", "objective", "space", "budget", "history", "cluster", "resources", "journal", "lock", "lock_lifetime", "seed")
+_TOP = ("name", "objective", "space", "budget", "history", "cluster", "resources", "logbook", "lock", "lock_lifetime", "seed")
 _OBJECTIVE = ("call", "command", "minimize", "maximize")
 _BUDGET = tuple(DEFAULTS["budget"])
 _PARAM = ("float", "int", "categories", "log", "default")
-_HISTORY = ("csv", "task", "score", "journal")
+_HISTORY = ("csv", "task", "score", "logbook")
 _CLUSTER = ("local", "address", "tls", "allow_insecure", "slurm", "pbs")
 _LOCAL = ("workers", "threads", "memory_limit", "dashboard")
 _TLS = ("ca", "cert", "key")
+# Keys of earlier forebear versions: the error names the key that replaced them.
+_RENAMED = {"journal": "logbook"}
 
 
 def _check_keys(doc: _Doc, path: tuple[str, ...], data: Mapping[str, Any], allowed: tuple[str, ...]) -> None:
     for key in data:
-        if key not in allowed:
+        if key in _RENAMED and _RENAMED[key] in allowed:
+            doc.error((*path, key), f"renamed: the key is now {_RENAMED[key]!r} (same value)")
+        elif key not in allowed:
             near = difflib.get_close_matches(key, allowed, n=1, cutoff=0.5)
             hint = f"; did you mean {near[0]!r}?" if near else f"; valid keys: {', '.join(allowed)}"
             doc.error((*path, key), f"unknown key{hint}")
@@ -261,12 +265,12 @@ def _objective(doc: _Doc, data: Any) -> Objective | None:
     if has_min == has_max:
         doc.error(path, "give exactly one of minimize or maximize (the metric to optimise)")
         return None
-    direction = "minimize" if has_min else "maximize"
-    metric = data[direction]
+    sense = "minimize" if has_min else "maximize"
+    metric = data[sense]
     if not isinstance(metric, str) or not metric:
-        doc.error((*path, direction), f"must be a metric name, got {_describe(metric)}")
+        doc.error((*path, sense), f"must be a metric name, got {_describe(metric)}")
         return None
-    return Objective(call if ok and call else None, argv, metric, direction) if ok else None
+    return Objective(call if ok and call else None, argv, metric, sense) if ok else None
 
 
 def _param(doc: _Doc, name: str, body: Any) -> Param | None:
@@ -299,7 +303,7 @@ def _param(doc: _Doc, name: str, body: Any) -> Param | None:
             doc.error((*path, "log"), "log applies to float and int parameters only")
             return None
         try:
-            return Param(name, "categorical", choices=tuple(cats), default=default)
+            return Param(name, "categorical", categories=tuple(cats), default=default)
         except ValueError as exc:
             doc.error(path, str(exc).split(": ", 1)[-1])
             return None
@@ -394,23 +398,23 @@ def _history(doc: _Doc, data: Any, base: Path) -> tuple[HistorySource, ...] | No
     if isinstance(data, (str, dict)):
         data = [data]
     if not isinstance(data, list):
-        doc.error(path, f"must be a list of journal globs or {{csv, task, score}} tables, got {_describe(data)}")
+        doc.error(path, f"must be a list of logbook globs or {{csv, task, score}} tables, got {_describe(data)}")
         return None
     out = []
     for i, entry in enumerate(data):
         sub = (*path, str(i))
         if isinstance(entry, str) and entry:
-            out.append(HistorySource(journal=str(_resolve(base, entry))))
+            out.append(HistorySource(logbook=str(_resolve(base, entry))))
         elif isinstance(entry, dict):
             _check_keys(doc, sub, entry, _HISTORY)
-            if "journal" in entry and "csv" in entry:
-                doc.error(sub, "give either journal or csv, not both")
+            if "logbook" in entry and "csv" in entry:
+                doc.error(sub, "give either logbook or csv, not both")
                 continue
-            if "journal" in entry:
-                if not isinstance(entry["journal"], str):
-                    doc.error((*sub, "journal"), f"must be a path or glob, got {_describe(entry['journal'])}")
+            if "logbook" in entry:
+                if not isinstance(entry["logbook"], str):
+                    doc.error((*sub, "logbook"), f"must be a path or glob, got {_describe(entry['logbook'])}")
                     continue
-                out.append(HistorySource(journal=str(_resolve(base, entry["journal"]))))
+                out.append(HistorySource(logbook=str(_resolve(base, entry["logbook"]))))
                 continue
             missing = [k for k in ("csv", "task", "score") if k not in entry]
             if missing:
@@ -422,7 +426,7 @@ def _history(doc: _Doc, data: Any, base: Path) -> tuple[HistorySource, ...] | No
                 continue
             out.append(HistorySource(csv=str(_resolve(base, entry["csv"])), task=entry["task"], score=entry["score"]))
         else:
-            doc.error(sub, f"must be a journal glob or a {{csv, task, score}} mapping, got {_describe(entry)}")
+            doc.error(sub, f"must be a logbook glob or a {{csv, task, score}} mapping, got {_describe(entry)}")
     return tuple(out)
 
 
@@ -543,14 +547,14 @@ def _build(data: Any, doc: _Doc, base: Path, source: Path | None) -> Spec:
     if not isinstance(res, dict) or not all(isinstance(k, str) and _is_number(v) and v > 0 for k, v in res.items()):
         doc.error(("resources",), "must map resource names to positive numbers, e.g. {GPU: 1}")
         res = {}
-    journal = data.get("journal", DEFAULTS["journal"])
-    if journal is None:
-        journal_path = base / "runs" / f"{name}.jsonl"
-    elif isinstance(journal, str) and journal:
-        journal_path = _resolve(base, journal)
+    logbook = data.get("logbook", DEFAULTS["logbook"])
+    if logbook is None:
+        logbook_path = base / "runs" / f"{name}.jsonl"
+    elif isinstance(logbook, str) and logbook:
+        logbook_path = _resolve(base, logbook)
     else:
-        doc.error(("journal",), f"must be a file path, got {_describe(journal)}")
-        journal_path = base / "runs" / f"{name}.jsonl"
+        doc.error(("logbook",), f"must be a file path, got {_describe(logbook)}")
+        logbook_path = base / "runs" / f"{name}.jsonl"
     lock = data.get("lock", DEFAULTS["lock"])
     if lock not in ("strict", "soft"):
         doc.error(("lock",), f"must be strict or soft, got {_describe(lock)}")
@@ -572,7 +576,7 @@ def _build(data: Any, doc: _Doc, base: Path, source: Path | None) -> Spec:
         history=history,
         cluster=cluster,
         resources=dict(res),
-        journal=journal_path,
+        logbook=logbook_path,
         lock=lock,
         lock_lifetime=float(lifetime),
         seed=seed,

@@ -40,12 +40,12 @@ from typing import Any
 import numpy as np
 import torch
 
-from forebear import acquisition
-from forebear.space import Space
-from forebear.surrogate.deep_kernel import MetaModel, Settings, cache_key
-from forebear.surrogate.gp import Posterior, as_tensor, fit_gp
-from forebear.surrogate.select import Choice, choose
-from forebear.warmstart import initial_design
+from forebear.core.space import Space
+from forebear.engine import acquisition
+from forebear.engine.surrogate.deep_kernel import MetaModel, Settings, cache_key
+from forebear.engine.surrogate.gp import Posterior, as_tensor, fit_gp
+from forebear.engine.surrogate.select import Choice, choose
+from forebear.engine.warmstart import initial_design
 
 MODELS = ("auto", "gp", "deep-kernel")
 FAILED = ("impute", "classifier")
@@ -90,7 +90,7 @@ class Proposer:
     space
         The search space.
     history
-        Earlier searches aligned to ``space`` (``forebear.history.History``) or ``None``.
+        Earlier searches aligned to ``space`` (``forebear.records.history.History``) or ``None``.
     seed
         Seed for every random choice.
     warm_start
@@ -119,7 +119,7 @@ class Proposer:
     threads
         torch threads while proposing (restored afterwards); ``None`` leaves them alone.
     deep_kernel
-        :class:`forebear.surrogate.Settings` or a mapping of its fields.
+        :class:`forebear.engine.surrogate.Settings` or a mapping of its fields.
     n_candidates
         Quasi-random candidates per batch.
     history_share
@@ -227,7 +227,7 @@ class Proposer:
         h = getattr(self.history, "hash", None)
         if callable(h):
             return str(h())
-        from forebear.history import History  # a plain list of tasks hashes like a History
+        from forebear.records.history import History  # a plain list of tasks hashes like a History
 
         return History(list(self.tasks)).hash()
 
@@ -267,7 +267,7 @@ class Proposer:
             seen = set(acquisition.keys(self._encode([o.config for o in obs] + fail + pend)))
             out: list[Proposal] = []
             # The initial design covers the first k trials of a search; a search that already
-            # has k trials (say, one resumed from its journal) goes straight to the model.
+            # has k trials (say, one resumed from its logbook) goes straight to the model.
             k = self._initial_size(n)
             room = k - (len(obs) + len(fail) + len(pend))
             if self._initial is None and room > 0:

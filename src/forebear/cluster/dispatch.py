@@ -28,9 +28,9 @@ from distributed import Client, Future
 from distributed.diagnostics.plugin import SchedulerPlugin
 from distributed.security import Security
 
-from forebear.spec import Cluster, Spec
+from forebear.core.spec import Cluster, Spec
 
-log = logging.getLogger("forebear.dispatch")
+log = logging.getLogger("forebear.cluster.dispatch")
 
 KEY_PREFIX = "forebear-"
 CONNECT_TIMEOUT = "30s"

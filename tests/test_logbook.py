@@ -1,4 +1,4 @@
-"""Journal: write protocol, torn writes, contention, the fold, the controller lock."""
+"""Logbook: write protocol, torn writes, contention, the fold, the controller lock."""
 
 from __future__ import annotations
 
@@ -11,11 +11,11 @@ from pathlib import Path
 
 import pytest
 
-from forebear.journal import (
+from forebear.records.logbook import (
     ControllerLock,
-    Journal,
-    JournalBusy,
-    JournalMismatch,
+    Logbook,
+    LogbookBusy,
+    LogbookMismatch,
     check_header,
     fold,
     record,
@@ -32,7 +32,7 @@ def proposed(t: int, x: float = 0.5) -> dict:
 
 
 def test_append_and_read(tmp_path: Path) -> None:
-    j = Journal(tmp_path / "runs" / "a.jsonl")
+    j = Logbook(tmp_path / "runs" / "a.jsonl")
     j.append(header())
     j.append_many([proposed(0), proposed(1)])
     recs, skipped = j.read()
@@ -43,14 +43,14 @@ def test_append_and_read(tmp_path: Path) -> None:
 
 
 def test_file_modes(tmp_path: Path) -> None:
-    j = Journal(tmp_path / "new" / "deeper" / "a.jsonl")
+    j = Logbook(tmp_path / "new" / "deeper" / "a.jsonl")
     j.append(header())
     assert stat.S_IMODE(os.stat(j.path).st_mode) == 0o600
     assert stat.S_IMODE(os.stat(j.path.parent).st_mode) == 0o700
 
 
 def test_nan_is_refused(tmp_path: Path) -> None:
-    j = Journal(tmp_path / "a.jsonl")
+    j = Logbook(tmp_path / "a.jsonl")
     with pytest.raises(ValueError):
         j.append(record("scored", trial=0, attempt=1, score=float("nan"), metrics={}, seconds=1))
     assert not j.path.exists() or j.path.read_text() == ""
@@ -78,7 +78,7 @@ def test_fold_states_and_first_scored_wins() -> None:
     assert [a.outcome for a in t.trials[1].attempts] == ["lost", "scored"]
     assert t.trials[2].error == "ValueError: boom"
     assert t.best().trial == 1
-    assert t.metric == "loss" and t.direction == "minimize"
+    assert t.metric == "loss" and t.sense == "minimize"
 
 
 def test_fold_maximize_best() -> None:
@@ -104,7 +104,7 @@ def test_unknown_and_orphan_records_are_counted() -> None:
 
 def test_garbage_lines_are_skipped(tmp_path: Path) -> None:
     p = tmp_path / "a.jsonl"
-    j = Journal(p)
+    j = Logbook(p)
     j.append(header())
     with open(p, "ab") as fh:
         fh.write(b"not json\n\xff\xfe\x00\n[1, 2]\n")
@@ -115,7 +115,7 @@ def test_garbage_lines_are_skipped(tmp_path: Path) -> None:
 
 
 def test_torn_writes_at_random_offsets(tmp_path: Path) -> None:
-    src = Journal(tmp_path / "src.jsonl")
+    src = Logbook(tmp_path / "src.jsonl")
     src.append(header())
     src.append_many([proposed(i, i / 100) for i in range(40)])
     src.append_many([record("scored", trial=i, attempt=1, score=float(i), metrics={"m": "x" * (i % 7)}, seconds=0.1) for i in range(40)])
@@ -126,7 +126,7 @@ def test_torn_writes_at_random_offsets(tmp_path: Path) -> None:
         cut = rng.randrange(1, len(data))
         p = tmp_path / f"cut{k}.jsonl"
         p.write_bytes(data[:cut])
-        j = Journal(p)
+        j = Logbook(p)
         complete = sum(1 for e in line_ends if e <= cut)
         new = record("closed", reason="budget", best=None, marker=k)
         j.append(new)
@@ -144,13 +144,13 @@ def test_torn_writes_at_random_offsets(tmp_path: Path) -> None:
 def test_torn_write_with_whole_record_keeps_it(tmp_path: Path) -> None:
     p = tmp_path / "a.jsonl"
     p.write_text(json.dumps(header()) + "\n" + json.dumps(proposed(0)))
-    j = Journal(p)
+    j = Logbook(p)
     j.append(proposed(1))
     assert [r.get("trial") for r in j.read()[0]] == [None, 0, 1]
 
 
 def _writer(path: str, writer: int, n: int, ready: object, go: object) -> None:
-    j = Journal(path)
+    j = Logbook(path)
     ready.set()  # type: ignore[attr-defined]
     go.wait(30)  # type: ignore[attr-defined]
     for i in range(n):
@@ -158,7 +158,7 @@ def _writer(path: str, writer: int, n: int, ready: object, go: object) -> None:
 
 
 def _hold_controller_lock(path: str, hold: float, ready: object) -> None:
-    lock = ControllerLock(Journal(path))
+    lock = ControllerLock(Logbook(path))
     lock.acquire()
     ready.set()  # type: ignore[attr-defined]
     time.sleep(hold)
@@ -191,10 +191,10 @@ def test_second_controller_is_refused(tmp_path: Path) -> None:
     held = CTX.Event()
     with processes(_hold_controller_lock, [(path, 3.0, held)], deadline=30, name="holder") as procs:
         assert held.wait(60)
-        with pytest.raises(JournalBusy, match=rf"journal .*x.jsonl is driven by pid {procs[0].pid} on host .* since \d{{4}}-"):
-            ControllerLock(Journal(path)).acquire()
+        with pytest.raises(LogbookBusy, match=rf"logbook .*x.jsonl is driven by pid {procs[0].pid} on host .* since \d{{4}}-"):
+            ControllerLock(Logbook(path)).acquire()
     # Released when the holder is gone.
-    with ControllerLock(Journal(path)):
+    with ControllerLock(Logbook(path)):
         pass
 
 
@@ -207,7 +207,7 @@ def test_controller_lock_released_when_holder_is_killed(tmp_path: Path) -> None:
         assert held.wait(60)
         p.kill()
         p.join(10)
-        with ControllerLock(Journal(path)):
+        with ControllerLock(Logbook(path)):
             pass
     finally:
         if p.is_alive():
@@ -216,31 +216,31 @@ def test_controller_lock_released_when_holder_is_killed(tmp_path: Path) -> None:
 
 
 def test_soft_lock_mode(tmp_path: Path) -> None:
-    j = Journal(tmp_path / "s.jsonl", lock="soft", lifetime=5)
+    j = Logbook(tmp_path / "s.jsonl", lock="soft", lifetime=5)
     j.append(header())
     j.append(proposed(0))
     assert len(j.read()[0]) == 2
     with ControllerLock(j):
-        with pytest.raises(JournalBusy):
-            ControllerLock(Journal(j.path, lock="soft", lifetime=5)).acquire()
+        with pytest.raises(LogbookBusy):
+            ControllerLock(Logbook(j.path, lock="soft", lifetime=5)).acquire()
 
 
 def test_check_header(tmp_path: Path) -> None:
     p = tmp_path / "a.jsonl"
     check_header(fold([header()]), p, "abc")
-    with pytest.raises(JournalMismatch, match="belongs to another search"):
+    with pytest.raises(LogbookMismatch, match="belongs to another search"):
         check_header(fold([header()]), p, "other")
     future = dict(header(), v=99)
-    with pytest.raises(JournalMismatch, match="format version 99 is newer"):
+    with pytest.raises(LogbookMismatch, match="format version 99 is newer"):
         check_header(fold([future]), p)
-    with pytest.raises(JournalMismatch, match="no search record"):
+    with pytest.raises(LogbookMismatch, match="no search record"):
         check_header(fold([proposed(0)]), p)
 
 
 def test_write_failure_is_reported(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
-    from forebear import journal as jmod
+    from forebear.records import logbook as jmod
 
-    j = Journal(tmp_path / "a.jsonl")
+    j = Logbook(tmp_path / "a.jsonl")
     j.append(header())
     before = j.path.read_bytes()
 
@@ -248,7 +248,7 @@ def test_write_failure_is_reported(tmp_path: Path, monkeypatch: pytest.MonkeyPat
         raise OSError(28, "No space left on device")
 
     monkeypatch.setattr(jmod.os, "fsync", failing_fsync)
-    with pytest.raises(jmod.JournalError, match="write failed: No space left on device"):
+    with pytest.raises(jmod.LogbookError, match="write failed: No space left on device"):
         j.append(proposed(0))
     monkeypatch.undo()
     assert j.path.read_bytes().startswith(before)

@@ -1,9 +1,9 @@
-"""The journal: an append-only, file-locked event log of one search.
+"""The logbook: an append-only, file-locked event log of one search.
 
 One JSON object per line. Every record has ``v`` (format version), ``at``
 (unix seconds) and ``kind``; the kinds and their fields are in
 ``docs/architecture.md`` and DESIGN.md. Writers take a lock on
-``<journal>.lock``, open the file after locking, cut off a torn last line left
+``<logbook>.lock``, open the file after locking, cut off a torn last line left
 by a writer that died mid-write, write the record with one ``os.write``,
 ``fsync`` and release. Readers take no lock: they skip lines that do not
 parse and count them. :func:`fold` turns records into a trial table.
@@ -33,22 +33,22 @@ TERMINAL = ("scored", "failed")
 MAX_RECORD_BYTES = 1 << 20  # one record; error tails and metrics are trimmed well below this
 
 
-class JournalError(OSError):
-    """A journal that cannot be read or written (names the file)."""
+class LogbookError(OSError):
+    """A logbook that cannot be read or written (names the file)."""
 
     def __reduce__(self) -> tuple[Any, ...]:
         return (self.__class__, self.args)
 
 
-class JournalBusy(RuntimeError):
-    """Another controller drives this journal."""
+class LogbookBusy(RuntimeError):
+    """Another controller drives this logbook."""
 
     def __reduce__(self) -> tuple[Any, ...]:
         return (self.__class__, self.args)
 
 
-class JournalMismatch(ValueError):
-    """The journal belongs to another search, or to a newer format."""
+class LogbookMismatch(ValueError):
+    """The logbook belongs to another search, or to a newer format."""
 
     def __reduce__(self) -> tuple[Any, ...]:
         return (self.__class__, self.args)
@@ -84,7 +84,7 @@ def _soft_lock(lock_path: str, lifetime: float) -> filelock.BaseFileLock:
     renewing (a heartbeat), so a long-lived controller keeps its claim while a claim
     left by a dead process expires after ``lifetime`` seconds. The plain
     ``SoftFileLock(lifetime=...)`` expires by age alone and could hand a live
-    controller's journal to a second one.
+    controller's logbook to a second one.
     """
     return filelock.SoftFileLease(lock_path, lease_duration=lifetime, thread_local=False, mode=0o600)
 
@@ -100,7 +100,7 @@ def ensure_folder(folder: Path) -> None:
 
 
 def record(kind: str, **fields: Any) -> dict[str, Any]:
-    """A journal record of ``kind`` with the common fields filled in."""
+    """A logbook record of ``kind`` with the common fields filled in."""
     if kind not in KINDS:
         msg = f"record kind must be one of {KINDS}, got {kind!r}"
         raise ValueError(msg)
@@ -111,13 +111,13 @@ def _encode(rec: Mapping[str, Any]) -> bytes:
     line = json.dumps(rec, separators=(",", ":"), allow_nan=False, default=_jsonable)
     data = (line + "\n").encode("utf-8")
     if len(data) > MAX_RECORD_BYTES:
-        msg = f"journal record of {len(data)} bytes exceeds {MAX_RECORD_BYTES}"
+        msg = f"logbook record of {len(data)} bytes exceeds {MAX_RECORD_BYTES}"
         raise ValueError(msg)
     return data
 
 
 def _jsonable(value: Any) -> Any:
-    # numpy scalars reach the journal from the surrogate and from user objectives.
+    # numpy scalars reach the logbook from the surrogate and from user objectives.
     if hasattr(value, "item"):
         return value.item()
     if hasattr(value, "tolist"):
@@ -126,8 +126,8 @@ def _jsonable(value: Any) -> Any:
     raise TypeError(msg)
 
 
-class Journal:
-    """The journal file at ``path``.
+class Logbook:
+    """The logbook file at ``path``.
 
     Parameters
     ----------
@@ -145,7 +145,7 @@ class Journal:
         self._thread_guard = threading.Lock()
 
     def __repr__(self) -> str:
-        return f"Journal({str(self.path)!r})"
+        return f"Logbook({str(self.path)!r})"
 
     def __reduce__(self) -> tuple[Any, ...]:
         return (self.__class__, (str(self.path), self.lock_mode, self.lifetime))
@@ -186,13 +186,13 @@ class Journal:
             # append still returns only once its record is durable.
             os.fsync(fd)
         except filelock.Timeout:
-            msg = f"journal {self.path}: could not take its lock {self.lock.lock_file} within 120 s"
-            raise JournalError(msg) from None
+            msg = f"logbook {self.path}: could not take its lock {self.lock.lock_file} within 120 s"
+            raise LogbookError(msg) from None
         except OSError as exc:
-            if isinstance(exc, JournalError):
+            if isinstance(exc, LogbookError):
                 raise
-            msg = f"journal {self.path}: write failed: {exc.strerror or exc}"
-            raise JournalError(exc.errno or 0, msg) from exc
+            msg = f"logbook {self.path}: write failed: {exc.strerror or exc}"
+            raise LogbookError(exc.errno or 0, msg) from exc
         finally:
             if fd >= 0:
                 os.close(fd)
@@ -207,8 +207,8 @@ class Journal:
         except FileNotFoundError:
             return [], 0
         except OSError as exc:
-            msg = f"journal {self.path}: cannot read: {exc.strerror or exc}"
-            raise JournalError(exc.errno or 0, msg) from exc
+            msg = f"logbook {self.path}: cannot read: {exc.strerror or exc}"
+            raise LogbookError(exc.errno or 0, msg) from exc
         return parse(data)
 
     def records(self) -> list[dict[str, Any]]:
@@ -239,7 +239,7 @@ def _gc_paused() -> Iterator[None]:
 
 
 def parse(data: bytes) -> tuple[list[dict[str, Any]], int]:
-    """Parse journal bytes; returns records and the count of unparseable lines."""
+    """Parse logbook bytes; returns records and the count of unparseable lines."""
     with _gc_paused():
         return _parse(data)
 
@@ -250,7 +250,7 @@ def _parse(data: bytes) -> tuple[list[dict[str, Any]], int]:
     loads = json.loads
     lines = [line for line in data.split(b"\n") if line.strip()]
     try:
-        # Fast path: a healthy journal parses as one JSON array, twice as fast as line by line.
+        # Fast path: a healthy logbook parses as one JSON array, twice as fast as line by line.
         whole = loads(b"[" + b",".join(lines) + b"]")
     except ValueError:
         whole = None
@@ -368,7 +368,7 @@ class Trial:
 
 @dataclass
 class TrialTable:
-    """The state of a search folded from its journal."""
+    """The state of a search folded from its logbook."""
 
     trials: dict[int, Trial] = field(default_factory=dict)
     header: dict[str, Any] | None = None
@@ -380,14 +380,14 @@ class TrialTable:
     last_at: float | None = None
 
     @property
-    def direction(self) -> str:
+    def sense(self) -> str:
         obj = (self.header or {}).get("objective") or {}
         return "maximize" if "maximize" in obj else "minimize"
 
     @property
     def metric(self) -> str | None:
         obj = (self.header or {}).get("objective") or {}
-        return obj.get(self.direction)
+        return obj.get(self.sense)
 
     def by_state(self, state: str) -> list[Trial]:
         return [t for t in self.trials.values() if t.state == state]
@@ -406,15 +406,15 @@ class TrialTable:
         return [t for t in self.trials.values() if t.state == "scored"]
 
     def best(self) -> Trial | None:
-        """The best scored trial in the search's direction (lowest trial id on ties)."""
+        """The best scored trial in the search's sense (lowest trial id on ties)."""
         scored = self.scored()
         if not scored:
             return None
-        sign = -1.0 if self.direction == "maximize" else 1.0
+        sign = -1.0 if self.sense == "maximize" else 1.0
         return min(scored, key=lambda t: (sign * float(t.score), t.trial))  # type: ignore[arg-type]
 
     def ranked(self) -> list[Trial]:
-        sign = -1.0 if self.direction == "maximize" else 1.0
+        sign = -1.0 if self.sense == "maximize" else 1.0
         return sorted(self.scored(), key=lambda t: (sign * float(t.score), t.trial))  # type: ignore[arg-type]
 
     def __iter__(self) -> Iterator[Trial]:
@@ -524,28 +524,28 @@ def _attempt(t: Trial, n: int) -> Attempt:
 
 
 class ControllerLock:
-    """Exclusive right to drive a journal: ``<journal>.controller`` with pid, host and time.
+    """Exclusive right to drive a logbook: ``<logbook>.controller`` with pid, host and time.
 
-    A second controller gets :class:`JournalBusy` naming the holder. The lock
+    A second controller gets :class:`LogbookBusy` naming the holder. The lock
     is a ``FileLock`` (released by the OS when the holder dies), or a
     ``SoftFileLock`` with a lifetime for ``lock: soft``.
     """
 
-    def __init__(self, journal: Journal) -> None:
-        self.journal = journal
-        self.info_path = Path(str(journal.path) + ".controller")
-        lock_path = str(journal.path) + ".controller.lock"
-        if journal.lock_mode == "soft":
-            self._lock: filelock.BaseFileLock = _soft_lock(lock_path, journal.lifetime)
+    def __init__(self, logbook: Logbook) -> None:
+        self.logbook = logbook
+        self.info_path = Path(str(logbook.path) + ".controller")
+        lock_path = str(logbook.path) + ".controller.lock"
+        if logbook.lock_mode == "soft":
+            self._lock: filelock.BaseFileLock = _soft_lock(lock_path, logbook.lifetime)
         else:
             self._lock = filelock.FileLock(lock_path, thread_local=False, mode=0o600)
 
     def acquire(self) -> None:
-        ensure_folder(self.journal.path.parent)
+        ensure_folder(self.logbook.path.parent)
         try:
             self._lock.acquire(timeout=0)
         except filelock.Timeout:
-            raise JournalBusy(self.holder_message()) from None
+            raise LogbookBusy(self.holder_message()) from None
         info = {"pid": os.getpid(), "host": socket.gethostname(), "since": time.time()}
         fd = os.open(self.info_path, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o600)
         try:
@@ -557,9 +557,9 @@ class ControllerLock:
         try:
             info = json.loads(self.info_path.read_text())
             since = time.strftime("%Y-%m-%d %H:%M:%S", time.localtime(float(info["since"])))
-            return f"journal {self.journal.path} is driven by pid {info['pid']} on host {info['host']} since {since}"
+            return f"logbook {self.logbook.path} is driven by pid {info['pid']} on host {info['host']} since {since}"
         except (OSError, ValueError, KeyError, TypeError):
-            return f"journal {self.journal.path} is driven by another controller"
+            return f"logbook {self.logbook.path} is driven by another controller"
 
     def release(self) -> None:
         try:
@@ -576,36 +576,36 @@ class ControllerLock:
 
 
 def check_header(table: TrialTable, path: Path, spec_hash: str | None = None) -> None:
-    """Refuse a journal of a newer format, or of another search when ``spec_hash`` is given."""
+    """Refuse a logbook of a newer format, or of another search when ``spec_hash`` is given."""
     if table.header is None:
         if table.trials:
-            msg = f"journal {path}: has trial records but no search record; not a forebear journal"
-            raise JournalMismatch(msg)
+            msg = f"logbook {path}: has trial records but no search record; not a forebear logbook"
+            raise LogbookMismatch(msg)
         return
     v = table.header.get("v")
     if not isinstance(v, int) or v > VERSION:
-        msg = f"journal {path}: format version {v!r} is newer than this forebear reads ({VERSION}); upgrade forebear"
-        raise JournalMismatch(msg)
+        msg = f"logbook {path}: format version {v!r} is newer than this forebear reads ({VERSION}); upgrade forebear"
+        raise LogbookMismatch(msg)
     if spec_hash is not None and table.header.get("spec_hash") != spec_hash:
-        msg = f"journal {path}: belongs to another search (spec hash {table.header.get('spec_hash')}, this spec {spec_hash})"
-        raise JournalMismatch(msg)
+        msg = f"logbook {path}: belongs to another search (spec hash {table.header.get('spec_hash')}, this spec {spec_hash})"
+        raise LogbookMismatch(msg)
 
 
 def load(path: str | os.PathLike[str]) -> TrialTable:
-    """The trial table of the journal at ``path`` (``forebear.load``); ``.best()`` is the best trial.
+    """The trial table of the logbook at ``path`` (``forebear.load``); ``.best()`` is the best trial.
 
     Raises
     ------
-    JournalError
+    LogbookError
         When the file is missing or unreadable.
-    JournalMismatch
-        When it is not a forebear journal, or of a newer format.
+    LogbookMismatch
+        When it is not a forebear logbook, or of a newer format.
     """
     p = Path(path)
     if not p.is_file():
-        msg = f"journal {p}: no such file"
-        raise JournalError(2, msg)
-    table = Journal(p).fold()
+        msg = f"logbook {p}: no such file"
+        raise LogbookError(2, msg)
+    table = Logbook(p).fold()
     check_header(table, p)
     return table
 

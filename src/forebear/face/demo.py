@@ -1,15 +1,15 @@
 """``forebear demo``: a regional demand-forecasting fleet, tuned with and without history.
 
-The scenario (:mod:`forebear.demo_forecast`): a retailer retrains one
+The scenario (:mod:`forebear.face.demo_forecast`): a retailer retrains one
 gradient-boosted demand forecaster per region. The demo
 
 1. writes one spec per search into the demo folder,
 2. runs short searches for three earlier regions (north, south, west); their
-   journals are the history,
+   logbooks are the history,
 3. tunes a new region (coast) twice with the same budget and seed: once cold,
-   once with the earlier regions' journals as history,
+   once with the earlier regions' logbooks as history,
 4. prints the best configuration, the gain from history and where the
-   journals and the report are.
+   logbooks and the report are.
 
 Every trial really trains a model. All searches run on one loopback Dask
 cluster (scheduler and workers on 127.0.0.1) that the demo starts and stops,
@@ -60,7 +60,7 @@ class Outcome:
     best_config: dict[str, Any]
     default_score: float
     report: Path
-    journals: dict[str, Path] = field(default_factory=dict)
+    logbooks: dict[str, Path] = field(default_factory=dict)
     seconds: float = 0.0
 
 
@@ -68,18 +68,18 @@ def _say(text: str = "") -> None:
     print(text, file=sys.stderr, flush=True)
 
 
-def spec_for(region: str, plan: Plan, journal: str, history: list[str] | None, seed: int) -> dict[str, Any]:
+def spec_for(region: str, plan: Plan, logbook: str, history: list[str] | None, seed: int) -> dict[str, Any]:
     """The spec of one demo search (as written to the demo folder)."""
-    from forebear.demo_forecast import SPACE
+    from forebear.face.demo_forecast import SPACE
 
     trials = plan.trials if region == NEW_REGION else plan.history_trials
     spec: dict[str, Any] = {
         "name": f"region-{region}" + ("" if region != NEW_REGION else ("-history" if history else "-cold")),
-        "objective": {"call": f"forebear.demo_forecast:evaluate_{region}", "minimize": "val_mape"},
+        "objective": {"call": f"forebear.face.demo_forecast:evaluate_{region}", "minimize": "val_mape"},
         "space": SPACE,
         "budget": {"trials": trials, "batch": plan.batch, "concurrency": plan.workers, "trial_timeout": "2m", "retries": 1},
         "cluster": {"local": {"workers": plan.workers}},
-        "journal": journal,
+        "logbook": logbook,
         "seed": seed,
     }
     if history:
@@ -113,19 +113,19 @@ def _best_curve(trials: list[Any]) -> list[float]:
 
 def run_demo(folder: Path, plan: Plan = Plan(), quiet: bool = False) -> Outcome:
     """Run the whole demo in ``folder``; raises on failure (``main`` turns that into a message)."""
-    from forebear import spec as spec_mod
-    from forebear.controller import run
-    from forebear.demo_forecast import evaluate
-    from forebear.dispatch import connect
-    from forebear.journal import Journal
-    from forebear.report import write_report
+    from forebear.cluster.dispatch import connect
+    from forebear.core import spec as spec_mod
+    from forebear.face.demo_forecast import evaluate
+    from forebear.face.report import write_report
+    from forebear.loop.controller import run
+    from forebear.records.logbook import Logbook
 
     started = time.monotonic()
     folder = folder.resolve()
     _prepare(folder)
     specs = folder / "specs"
     specs.mkdir()
-    journals: dict[str, Path] = {}
+    logbooks: dict[str, Path] = {}
 
     def write_spec(name: str, spec: dict[str, Any]) -> Path:
         path = specs / f"{name}.yaml"
@@ -145,10 +145,10 @@ def run_demo(folder: Path, plan: Plan = Plan(), quiet: bool = False) -> Outcome:
             path = write_spec(name, spec)
             loaded = yaml.safe_load(path.read_text())
             loaded["cluster"] = {"address": address}
-            loaded["journal"] = str(specs / loaded["journal"])
+            loaded["logbook"] = str(specs / loaded["logbook"])
             if "history" in loaded:
                 loaded["history"] = [str(specs / h) for h in loaded["history"]]
-            journals[name] = Path(loaded["journal"]).resolve()
+            logbooks[name] = Path(loaded["logbook"]).resolve()
             return run(loaded, quiet=quiet)
 
         _say(f"forebear demo: regional demand forecasting, in {folder}")
@@ -165,11 +165,11 @@ def run_demo(folder: Path, plan: Plan = Plan(), quiet: bool = False) -> Outcome:
         warm = search(f"{NEW_REGION}-history", spec_for(NEW_REGION, plan, f"../runs/{NEW_REGION}-history.jsonl", ["../runs/history/region-*.jsonl"], seed))
 
     if cold.best is None or warm.best is None:
-        msg = "a coast search scored no trial; see the logs beside its journal in runs/"
+        msg = "a coast search scored no trial; see the logs beside its logbook in runs/"
         raise RuntimeError(msg)
     # scikit-learn's own defaults (l2_regularization 0 is below the searched range) as a yardstick.
     default_score = evaluate(NEW_REGION, {"learning_rate": 0.1, "max_leaf_nodes": 31, "min_samples_leaf": 20, "l2_regularization": 0.0})["val_mape"]
-    report = write_report(Journal(journals[f"{NEW_REGION}-history"]).fold(), folder / "report", journal=journals[f"{NEW_REGION}-history"])
+    report = write_report(Logbook(logbooks[f"{NEW_REGION}-history"]).fold(), folder / "report", logbook=logbooks[f"{NEW_REGION}-history"])
     best = warm.best if warm.best.score <= cold.best.score else cold.best
     return Outcome(
         folder=folder,
@@ -180,7 +180,7 @@ def run_demo(folder: Path, plan: Plan = Plan(), quiet: bool = False) -> Outcome:
         best_config=dict(best.config),
         default_score=float(default_score),
         report=report,
-        journals=journals,
+        logbooks=logbooks,
         seconds=time.monotonic() - started,
     )
 
@@ -208,10 +208,10 @@ def summary(out: Outcome, plan: Plan) -> list[str]:
     for k, v in out.best_config.items():
         lines.append(f"  {k}: {v:.6g}" if isinstance(v, float) else f"  {k}: {v}")
     lines.append("")
-    lines.append(f"journals:  {out.folder / 'runs'}")
+    lines.append(f"logbooks:  {out.folder / 'runs'}")
     lines.append(f"specs:     {out.folder / 'specs'}   (forebear run {out.folder / 'specs' / 'coast-history.yaml'} resumes that search)")
     lines.append(f"report:    {out.report}")
-    lines.append(f"next:      forebear best {out.journals.get(f'{NEW_REGION}-history', '')} --json")
+    lines.append(f"next:      forebear best {out.logbooks.get(f'{NEW_REGION}-history', '')} --json")
     lines.append(f"demo took {out.seconds:.0f} s")
     return lines
 

@@ -28,7 +28,7 @@ import torch
 from gpytorch.constraints import Interval
 from torch import nn
 
-from forebear.surrogate.gp import (
+from forebear.engine.surrogate.gp import (
     DTYPE,
     MAX_EXACT,
     NOISE_FLOOR,

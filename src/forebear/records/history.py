@@ -1,9 +1,9 @@
-"""Earlier searches (journals and CSV tables) aligned to the current space.
+"""Earlier searches (logbooks and CSV tables) aligned to the current space.
 
 Each earlier search becomes a :class:`Task`: its configurations encoded in
 the current space and its scores, lower is better. Scores follow the spec's
-own direction: a ``maximize`` spec negates every history score, whatever the
-earlier search's journal header says (a header that disagrees is noted in
+own sense: a ``maximize`` spec negates every history score, whatever the
+earlier search's logbook header says (a header that disagrees is noted in
 ``History.warnings``). Only JSON and CSV are read; nothing is unpickled.
 """
 
@@ -21,8 +21,8 @@ from typing import Any
 
 import numpy as np
 
-from forebear.journal import fold, parse
-from forebear.space import Param, Space
+from forebear.core.space import Param, Space
+from forebear.records.logbook import fold, parse
 
 
 class HistoryError(ValueError):
@@ -75,7 +75,7 @@ class History:
 def load(
     sources: Sequence[Any],
     space: Space,
-    direction: str,
+    sense: str,
     *,
     exclude: Sequence[str | Path] = (),
 ) -> History:
@@ -84,33 +84,33 @@ def load(
     Parameters
     ----------
     sources
-        ``HistorySource`` records (journal glob, or csv with task and score columns).
+        ``HistorySource`` records (logbook glob, or csv with task and score columns).
     space
         The current search space.
-    direction
-        The spec's direction, ``"minimize"`` or ``"maximize"``.
+    sense
+        The spec's sense, ``"minimize"`` or ``"maximize"``.
     exclude
-        Journals never to use as history (the search's own journal).
+        Logbooks never to use as history (the search's own logbook).
 
     Raises
     ------
     HistoryError
         A file that does not exist, does not parse, or lacks a column.
     """
-    if direction not in ("minimize", "maximize"):
-        msg = f"direction must be 'minimize' or 'maximize', got {direction!r}"
+    if sense not in ("minimize", "maximize"):
+        msg = f"sense must be 'minimize' or 'maximize', got {sense!r}"
         raise ValueError(msg)
-    sign = 1.0 if direction == "minimize" else -1.0
+    sign = 1.0 if sense == "minimize" else -1.0
     skip = {_resolved(p) for p in exclude}
     hist = History()
     names: set[str] = set()
     for src in sources:
-        if getattr(src, "journal", None):
-            raw = _journal_tasks(str(src.journal), skip, direction, hist.warnings)
+        if getattr(src, "logbook", None):
+            raw = _logbook_tasks(str(src.logbook), skip, sense, hist.warnings)
         elif getattr(src, "csv", None):
             raw = _csv_tasks(Path(src.csv), str(src.task), str(src.score), space)
         else:
-            msg = f"history source {src!r} names neither a journal nor a csv table"
+            msg = f"history source {src!r} names neither a logbook nor a csv table"
             raise HistoryError(msg)
         for name, rows, origin in raw:
             task = _align(name, rows, space, sign, origin, hist.warnings)
@@ -122,16 +122,16 @@ def load(
 
 
 # --------------------------------------------------------------------------
-# journals
+# logbooks
 
 
-def _journal_tasks(
-    pattern: str, skip: set[str], direction: str, warnings: list[str]
+def _logbook_tasks(
+    pattern: str, skip: set[str], sense: str, warnings: list[str]
 ) -> list[tuple[str, list[tuple[dict[str, Any], float]], str]]:
     paths = sorted(glob.glob(pattern, recursive=True))
     if not paths:
         if not any(ch in pattern for ch in "*?["):
-            msg = f"history journal {pattern}: no such file"
+            msg = f"history logbook {pattern}: no such file"
             raise HistoryError(msg)
         warnings.append(f"history pattern {pattern} matched no file")
         return []
@@ -143,16 +143,16 @@ def _journal_tasks(
         try:
             data = path.read_bytes()
         except OSError as exc:
-            msg = f"history journal {path}: cannot read: {exc.strerror or exc}"
+            msg = f"history logbook {path}: cannot read: {exc.strerror or exc}"
             raise HistoryError(msg) from None
         _check_lines(path, data)
         table = fold(parse(data)[0])
         if table.header is None:
-            msg = f"history journal {path}: line 1: no search record; not a forebear journal"
+            msg = f"history logbook {path}: line 1: no search record; not a forebear logbook"
             raise HistoryError(msg)
-        if table.direction != direction:
+        if table.sense != sense:
             warnings.append(
-                f"history journal {path}: recorded as {table.direction}, read as {direction} like this spec"
+                f"history logbook {path}: recorded as {table.sense}, read as {sense} like this spec"
             )
         name = str(table.header.get("name") or path.stem)
         rows = [(dict(t.config), t.score) for t in table if t.state == "scored"]
@@ -170,10 +170,10 @@ def _check_lines(path: Path, data: bytes) -> None:
         try:
             rec = json.loads(line)
         except ValueError:
-            msg = f"history journal {path}: line {i + 1}: not a JSON record"
+            msg = f"history logbook {path}: line {i + 1}: not a JSON record"
             raise HistoryError(msg) from None
         if not isinstance(rec, dict) or "kind" not in rec:
-            msg = f"history journal {path}: line {i + 1}: not a journal record (no kind)"
+            msg = f"history logbook {path}: line {i + 1}: not a logbook record (no kind)"
             raise HistoryError(msg)
 
 
@@ -237,7 +237,7 @@ def _cell(p: Param, cell: str, path: Path, line: int) -> Any:
     """A CSV cell as a value of ``p``; a category is matched by its text."""
     text = cell.strip()
     if p.kind == "categorical":
-        for c in p.choices:
+        for c in p.categories:
             if text == str(c) or (isinstance(c, bool) and text.lower() == str(c).lower()):
                 return c
         return _Unknown(text)

@@ -13,7 +13,7 @@ trained on the first 21 months and scored on the last 3 (``val_mape``, the
 mean absolute percentage error in percent, lower is better).
 
 ``evaluate_<region>(config)`` are the objectives a spec names, e.g.
-``call: forebear.demo_forecast:evaluate_coast``.
+``call: forebear.face.demo_forecast:evaluate_coast``.
 """
 
 from __future__ import annotations

@@ -20,8 +20,8 @@ import numpy as np
 import torch
 from scipy.stats import qmc
 
-from forebear.space import Space
-from forebear.surrogate.gp import DTYPE, Posterior, as_tensor
+from forebear.core.space import Space
+from forebear.engine.surrogate.gp import DTYPE, Posterior, as_tensor
 
 LIES = ("min", "mean", "max")
 DEFAULT_LIE = "min"  # chosen by `python -m forebear.bench.proposal lies` (docs/engine.md)

@@ -1,6 +1,6 @@
-"""The controller: fold the journal, propose, submit, collect, record.
+"""The controller: fold the logbook, propose, submit, collect, record.
 
-One controller drives a journal at a time (:class:`forebear.journal.ControllerLock`).
+One controller drives a logbook at a time (:class:`forebear.records.logbook.ControllerLock`).
 It keeps at most ``concurrency`` attempts in flight; when slots free up it
 asks the proposer for a round of up to ``batch`` configurations (running
 trials are its pending points), records them as ``proposed`` and submits one
@@ -9,10 +9,10 @@ attempt each. Results come back through ``as_completed``. A worker death
 retried up to ``retries`` times, then the trial is ``failed``; an objective
 error is retried only with ``retry_errors``.
 
-Resuming: a journal that already holds the search is continued. A spec that
+Resuming: a logbook that already holds the search is continued. A spec that
 changed is refused with the list of changes (``extend`` allows a larger
 ``trials`` or ``wall_time`` only). Attempts that were running when the last
-controller died and have no result in the journal become ``lost`` (reason
+controller died and have no result in the logbook become ``lost`` (reason
 ``restart``) and are resubmitted; results recorded meanwhile are kept.
 """
 
@@ -27,7 +27,7 @@ import signal
 import threading
 import time
 from collections import deque
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from concurrent.futures import Future, ProcessPoolExecutor, ThreadPoolExecutor
 from concurrent.futures.process import BrokenProcessPool
 from dataclasses import dataclass, field
@@ -38,13 +38,15 @@ from distributed import as_completed
 from distributed.client import FutureCancelledError
 from distributed.scheduler import KilledWorker
 
-from forebear import spec as spec_mod
-from forebear.dispatch import KEY_PREFIX, Dispatch, connect
-from forebear.journal import (
+from forebear.cluster.dispatch import KEY_PREFIX, Dispatch, connect
+from forebear.cluster.runner import PROBE_NAME, AttemptResult, AttemptTask, run_attempt
+from forebear.core.spec import Spec
+from forebear.engine.proposer import Observation, Proposer
+from forebear.records.logbook import (
     ControllerLock,
-    Journal,
-    JournalError,
-    JournalMismatch,
+    Logbook,
+    LogbookError,
+    LogbookMismatch,
     Trial,
     TrialTable,
     check_header,
@@ -52,12 +54,8 @@ from forebear.journal import (
     fold,
     record,
 )
-from forebear.progress import Progress
-from forebear.proposer import Observation, Proposer
-from forebear.runner import PROBE_NAME, AttemptResult, AttemptTask, run_attempt
-from forebear.spec import Spec
 
-log = logging.getLogger("forebear.controller")
+log = logging.getLogger("forebear.loop.controller")
 
 RETRY_REASONS = ("worker", "timeout")  # lost attempts that use up a retry; restarts and interrupts do not
 BUDGET_KEYS = ("trials", "batch", "concurrency", "trial_timeout", "retries", "retry_errors", "wall_time")
@@ -67,13 +65,13 @@ RESOURCE_CHECK_EVERY = 5.0  # seconds between checks that some worker still offe
 
 
 class SpecChanged(ValueError):
-    """The spec differs from the one the journal's search was started with."""
+    """The spec differs from the one the logbook's search was started with."""
 
     def __init__(self, path: str, changes: list[str]) -> None:
         self.path = path
         self.changes = list(changes)
         lines = "; ".join(self.changes)
-        super().__init__(f"journal {path} holds a search started from a different spec: {lines}")
+        super().__init__(f"logbook {path} holds a search started from a different spec: {lines}")
 
     def __reduce__(self) -> tuple[Any, ...]:
         return (self.__class__, (self.path, self.changes))
@@ -81,26 +79,29 @@ class SpecChanged(ValueError):
 
 @dataclass
 class SearchResult:
-    """What a search came to: the best trial, every trial, the journal and why it closed."""
+    """What a search came to: the best trial, every trial, the logbook and why it closed."""
 
     best: Trial | None
     trials: list[Trial]
-    journal: Path
+    logbook: Path
     closed: str
     counts: dict[str, int] = field(default_factory=dict)
+    sense: str = "minimize"  # the spec's objective: "minimize" or "maximize" ...
+    metric: str | None = None  # ... this metric
 
     def to_dict(self) -> dict[str, Any]:
         return {
+            self.sense: self.metric,
             "best": self.best.to_dict() if self.best else None,
             "closed": self.closed,
-            "journal": str(self.journal),
+            "logbook": str(self.logbook),
             "counts": self.counts,
             "trials": [t.to_dict() for t in self.trials],
         }
 
     @classmethod
-    def from_table(cls, table: TrialTable, journal: Path, closed: str) -> SearchResult:
-        return cls(table.best(), list(table), journal, closed, table.counts())
+    def from_table(cls, table: TrialTable, logbook: Path, closed: str) -> SearchResult:
+        return cls(table.best(), list(table), logbook, closed, table.counts(), table.sense, table.metric)
 
 
 # --------------------------------------------------------------------------
@@ -125,7 +126,7 @@ def search_record(spec: Spec) -> dict[str, Any]:
 
 
 def spec_changes(header: Mapping[str, Any], spec: Spec, extend: bool) -> tuple[list[str], bool]:
-    """Differences between the journal's search record and ``spec``: (refused changes, budget grew)."""
+    """Differences between the logbook's search record and ``spec``: (refused changes, budget grew)."""
     changes: list[str] = []
     if header.get("name") not in (None, spec.name):
         changes.append(f"name: {header.get('name')!r} -> {spec.name!r}")
@@ -334,7 +335,7 @@ class Controller:
     spec
         The validated spec.
     extend
-        Allow a larger ``trials`` / ``wall_time`` than the journal's search had.
+        Allow a larger ``trials`` / ``wall_time`` than the logbook's search had.
     quiet
         No progress display.
     cancel_running
@@ -346,6 +347,11 @@ class Controller:
     proposer
         A :class:`Proposer` to use instead of the default one for the spec (benchmarks
         configure the engine this way; the spec's history is then not loaded).
+    display
+        Makes the live progress display: called as ``display(trials, metric=..., quiet=...,
+        done=...)``, it returns an object with ``message``, ``update`` and ``close``
+        (:class:`forebear.face.progress.Progress`). Without it, messages go to stderr
+        unless ``quiet``.
     """
 
     def __init__(
@@ -358,21 +364,23 @@ class Controller:
         dispatch: Dispatch | None = None,
         handle_signals: bool = True,
         proposer: Proposer | None = None,
+        display: Callable[..., Any] | None = None,
     ) -> None:
         self.spec = spec
+        self._display = display
         self._proposer = proposer
         self.extend = extend
         self.quiet = quiet
         self.cancel_running = cancel_running
-        self.journal = Journal(spec.journal, spec.lock, spec.lock_lifetime)
-        self.logs = spec.journal.with_name(spec.journal.stem + ".logs")
+        self.logbook = Logbook(spec.logbook, spec.lock, spec.lock_lifetime)
+        self.logs = spec.logbook.with_name(spec.logbook.stem + ".logs")
         self._dispatch = dispatch
         self._own_dispatch = dispatch is None
         self.handle_signals = handle_signals and threading.current_thread() is threading.main_thread()
         self.stop = _Stop()
         self.session = secrets.token_hex(4)
         self.token = secrets.token_hex(16)
-        self.progress: Progress | None = None
+        self.progress: Any = None  # the live display, made by ``display`` when the loop starts
         self.book = _Book()
         self.inflight: dict[Any, tuple[int, int, dict[str, Any]]] = {}
         self.retry_queue: deque[int] = deque()
@@ -399,7 +407,7 @@ class Controller:
 
     def run(self) -> SearchResult:
         """Run or resume the search; returns the folded result when it closes."""
-        lock = ControllerLock(self.journal)
+        lock = ControllerLock(self.logbook)
         lock.acquire()
         try:
             return self._run_locked()
@@ -408,23 +416,23 @@ class Controller:
 
     def _run_locked(self) -> SearchResult:
         spec = self.spec
-        records, skipped = self.journal.read()
-        if skipped and not records and b"\n" in spec.journal.read_bytes():
+        records, skipped = self.logbook.read()
+        if skipped and not records and b"\n" in spec.logbook.read_bytes():
             # Whole lines and none of them ours: someone else's file. Writing would append to it and
             # cut its last line as a torn record. (A lone torn first record has no newline: resumable.)
-            raise JournalMismatch(
-                f"journal {spec.journal}: holds no forebear records ({skipped} unreadable line(s)); "
-                "not a forebear journal, so nothing is written to it"
+            raise LogbookMismatch(
+                f"logbook {spec.logbook}: holds no forebear records ({skipped} unreadable line(s)); "
+                "not a forebear logbook, so nothing is written to it"
             )
         table = fold(records)
         table.skipped = skipped
-        check_header(table, spec.journal)
+        check_header(table, spec.logbook)
         headers = [r for r in records if r.get("kind") == "search"]
         new_header: dict[str, Any] | None = None
         if headers:
             changes, grew = spec_changes(headers[-1], spec, self.extend)
             if changes:
-                raise SpecChanged(str(spec.journal), changes)
+                raise SpecChanged(str(spec.logbook), changes)
             if grew:
                 new_header = search_record(spec)
         else:
@@ -432,7 +440,7 @@ class Controller:
         self.book = _Book.from_table(table)
         if table.closed and self.book.finished >= spec.budget.trials and new_header is None:
             self.say(f"search {spec.name} is already complete ({self.book.finished} trials finished); nothing to do")
-            return SearchResult.from_table(table, spec.journal, str(table.closed.get("reason")))
+            return SearchResult.from_table(table, spec.logbook, str(table.closed.get("reason")))
         proposer = self._proposer or Proposer(spec.space, history=load_history(spec, self.say), seed=spec.seed)
         engine = _Engine(proposer, self.say)
         try:
@@ -440,7 +448,7 @@ class Controller:
                 self._dispatch = connect(spec, self.say)
             self._dispatch.check_resources(spec.resources)
             if new_header is not None:
-                self.journal.append(new_header)
+                self.logbook.append(new_header)
             return self._drive(engine, table)
         finally:
             engine.shutdown()
@@ -451,7 +459,7 @@ class Controller:
     # -- setup ----------------------------------------------------------------
 
     def _probe(self) -> None:
-        """Write the token workers look for to decide whether they share the journal's filesystem."""
+        """Write the token workers look for to decide whether they share the logbook's filesystem."""
         ensure_folder(self.logs)
         path = self.logs / PROBE_NAME
         fd = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o600)
@@ -461,7 +469,7 @@ class Controller:
             os.close(fd)
 
     def _check_shared(self) -> None:
-        from forebear.runner import reachable
+        from forebear.cluster.runner import reachable
 
         assert self._dispatch is not None
         fut = self._dispatch.client.submit(reachable, str(self.logs), self.token, pure=False, key=f"{KEY_PREFIX}probe-{self.session}")
@@ -498,8 +506,9 @@ class Controller:
         self._check_shared()
         recs = self._reconcile(table)
         if recs:
-            self.journal.append_many(recs)
-        self.progress = Progress(budget.trials, metric=spec.objective.metric, quiet=self.quiet, done=self.book.finished)
+            self.logbook.append_many(recs)
+        if self._display is not None:
+            self.progress = self._display(budget.trials, metric=spec.objective.metric, quiet=self.quiet, done=self.book.finished)
         deadline = None if budget.wall_time is None else time.monotonic() + budget.wall_time
         ac = as_completed(with_results=False)
         self._ac = ac
@@ -542,15 +551,15 @@ class Controller:
             self._cancel_all()
             self._close(closed)
             raise
-        except JournalError:
-            # The journal cannot be written: stop without writing more; what is recorded stays recorded.
+        except LogbookError:
+            # The logbook cannot be written: stop without writing more; what is recorded stays recorded.
             self._cancel_all(record_lost=False)
             raise
         except BaseException as exc:
             self._cancel_all(record_lost=False)
             try:
                 self._close("error", error=f"{type(exc).__name__}: {exc}")
-            except JournalError:
+            except LogbookError:
                 pass
             raise
         finally:
@@ -571,17 +580,17 @@ class Controller:
         self._dispatch.check_resources(self.spec.resources)
 
     def _close(self, reason: str, error: str | None = None) -> SearchResult:
-        table = self.journal.fold()
+        table = self.logbook.fold()
         best = table.best()
         fields: dict[str, Any] = {"reason": reason, "best": best.trial if best else None}
         if error:
             fields["error"] = error
-        self.journal.append(record("closed", **fields))
+        self.logbook.append(record("closed", **fields))
         self.say(
             f"search {self.spec.name} closed ({reason}): {table.counts()['scored']} scored, {table.counts()['failed']} failed"
             + (f"; best trial {best.trial}: {self.spec.objective.metric} = {best.score:.6g}" if best else "; nothing scored")
         )
-        return SearchResult.from_table(table, self.spec.journal, reason)
+        return SearchResult.from_table(table, self.spec.logbook, reason)
 
     def _on_sigint(self, signum: int, frame: Any) -> None:
         self.stop.presses += 1
@@ -655,7 +664,7 @@ class Controller:
         for i, p in enumerate(proposals):
             tid = first + i
             recs.append(record("proposed", trial=tid, round=round_no, config=p.config, source=p.source, model=p.model, acquisition=p.acquisition))
-        self.journal.append_many(recs)
+        self.logbook.append_many(recs)
         for rec in recs:
             tid = rec["trial"]
             self.book.configs[tid] = dict(rec["config"])
@@ -679,7 +688,7 @@ class Controller:
             call=spec.objective.call,
             command=spec.objective.command,
             timeout=spec.budget.trial_timeout,
-            journal=str(spec.journal),
+            logbook=str(spec.logbook),
             lock=spec.lock,
             lock_lifetime=spec.lock_lifetime,
             logs=str(self.logs),
@@ -703,7 +712,7 @@ class Controller:
             pass
         if record_lost:
             recs = [record("lost", trial=tid, attempt=att, reason="interrupted") for tid, att, _ in self.inflight.values()]
-            self.journal.append_many(recs)
+            self.logbook.append_many(recs)
             for tid, _, _ in self.inflight.values():
                 self.book.state[tid] = "queued"
         self.inflight.clear()
@@ -732,7 +741,7 @@ class Controller:
                 event = self._worker_died(tid, attempt)
             else:
                 error = f"the attempt could not run on the worker: {type(exc).__name__}: {exc}"
-                self.journal.append(record("failed", trial=tid, attempt=attempt, error=error, retryable=False))
+                self.logbook.append(record("failed", trial=tid, attempt=attempt, error=error, retryable=False))
                 self.book.state[tid] = "failed"
                 self.book.errors[tid] = error
                 event = f"trial {tid} failed: {error}"
@@ -742,7 +751,7 @@ class Controller:
         tid, attempt = res.trial, res.attempt
         if not res.written:
             if res.records:
-                self.journal.append_many(res.records)
+                self.logbook.append_many(res.records)
             if res.log_text is not None and res.log_name:
                 _write_private(self.logs / res.log_name, res.log_text)
         if res.outcome == "scored":
@@ -766,7 +775,7 @@ class Controller:
         return self._lost(tid, attempt, "interrupted", "cancelled")
 
     def _worker_died(self, tid: int, attempt: int) -> str:
-        """A KilledWorker: settle the attempt from what its runner already wrote to the shared journal.
+        """A KilledWorker: settle the attempt from what its runner already wrote to the shared logbook.
 
         The worker may die after appending the attempt's result but before Dask delivered it (then
         the result stands, and a retry would score the trial twice), or before the attempt started
@@ -774,8 +783,8 @@ class Controller:
         """
         why = "the worker running it died"
         if not self.shared:
-            return self._lost(tid, attempt, "worker", why)  # the journal cannot tell: charge the retry
-        mine = [r for r in self.journal.records() if r.get("trial") == tid and r.get("attempt") == attempt]
+            return self._lost(tid, attempt, "worker", why)  # the logbook cannot tell: charge the retry
+        mine = [r for r in self.logbook.records() if r.get("trial") == tid and r.get("attempt") == attempt]
         final = next((r for r in mine if r.get("kind") in ("scored", "failed")), None)
         if final is not None and final["kind"] == "scored":
             self.book.state[tid] = "scored"
@@ -795,11 +804,11 @@ class Controller:
         if charge and charged >= self.spec.budget.retries:
             error = f"{why}; no retries left after {attempt} attempt(s) (budget.retries: {self.spec.budget.retries})"
             recs.append(record("failed", trial=tid, attempt=attempt, error=error, retryable=False))
-            self.journal.append_many(recs)
+            self.logbook.append_many(recs)
             self.book.state[tid] = "failed"
             self.book.errors[tid] = error
             return f"trial {tid} failed: {error}"
-        self.journal.append_many(recs)
+        self.logbook.append_many(recs)
         if charge:
             self.book.charged[tid] = charged + 1
         self.book.state[tid] = "queued"
@@ -847,56 +856,18 @@ def _write_private(path: Path, text: str) -> None:
 
 
 def load_history(spec: Spec, say: Any) -> Any:
-    """The spec's history (``forebear.history.History``), or None for a cold start."""
+    """The spec's history (``forebear.records.history.History``), or None for a cold start."""
     if not spec.history:
         return None
     try:
-        from forebear import history as history_mod
+        from forebear.records import history as history_mod
     except ImportError:
-        say("warning: forebear.history is not available in this build; starting without history")
+        say("warning: forebear.records.history is not available in this build; starting without history")
         return None
-    hist = history_mod.load(spec.history, spec.space, spec.objective.direction, exclude=[spec.journal])
+    hist = history_mod.load(spec.history, spec.space, spec.objective.sense, exclude=[spec.logbook])
     for w in getattr(hist, "warnings", []) or []:
         say(f"history: {w}")
     say(f"history: {len(hist)} earlier search(es)")
     return hist if len(hist) else None
 
 
-# --------------------------------------------------------------------------
-# public entry points
-
-
-def _as_spec(spec: str | os.PathLike[str] | Mapping[str, Any] | Spec) -> Spec:
-    return spec if isinstance(spec, Spec) else spec_mod.load(spec)
-
-
-def run(
-    spec: str | os.PathLike[str] | Mapping[str, Any] | Spec,
-    *,
-    extend: bool = False,
-    quiet: bool = True,
-    cancel_running: bool = False,
-) -> SearchResult:
-    """Run (or resume) a search and return its result.
-
-    Parameters
-    ----------
-    spec
-        A spec file, a mapping with the same keys, or a loaded :class:`Spec`.
-    extend
-        Allow a larger ``trials`` / ``wall_time`` than the journal's search had.
-    quiet
-        No progress display on stderr.
-    cancel_running
-        On Ctrl-C, kill running attempts instead of waiting for them.
-    """
-    return Controller(_as_spec(spec), extend=extend, quiet=quiet, cancel_running=cancel_running).run()
-
-
-def run_cli(spec: Spec, *, extend: bool, cancel_running: bool, detach: bool, quiet: bool) -> SearchResult:
-    """``forebear run``: in this process, or detached into the remote scheduler."""
-    if detach:
-        from forebear.plugin import detach as detach_search
-
-        return detach_search(spec, extend=extend, quiet=quiet)
-    return Controller(spec, extend=extend, quiet=quiet, cancel_running=cancel_running).run()

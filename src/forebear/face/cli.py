@@ -18,11 +18,11 @@ from typing import Any
 
 import click
 
-from forebear.journal import (
-    Journal,
-    JournalBusy,
-    JournalError,
-    JournalMismatch,
+from forebear.records.logbook import (
+    Logbook,
+    LogbookBusy,
+    LogbookError,
+    LogbookMismatch,
     TrialTable,
     check_header,
 )
@@ -65,13 +65,13 @@ def guarded(fn: Callable[..., Any]) -> Callable[..., Any]:
         except Exception as exc:
             if debug:
                 raise
-            from forebear.spec import SpecError
+            from forebear.core.spec import SpecError
 
             if isinstance(exc, SpecError):
                 for line in exc.errors:
                     say(f"error: {line}")
                 say(f"forebear: the spec has {len(exc.errors)} error{'s' if len(exc.errors) != 1 else ''}; nothing was written")
-            elif isinstance(exc, (JournalBusy, JournalMismatch, JournalError)):
+            elif isinstance(exc, (LogbookBusy, LogbookMismatch, LogbookError)):
                 say(f"forebear: {exc.args[-1] if exc.args else exc}")
             elif isinstance(exc, (ValueError, TypeError, OSError, ImportError, LookupError)):
                 say(f"forebear: {type(exc).__name__}: {exc}".replace("\n", " "))
@@ -92,16 +92,16 @@ def _optional(module: str, what: str) -> Any:
         raise Exit(f"{what} needs the package {exc.name!r}; install it (e.g. pip install 'forebear[report]')") from None
 
 
-def _table(journal: str) -> TrialTable:
-    path = Path(journal)
+def _table(logbook: str) -> TrialTable:
+    path = Path(logbook)
     if not path.exists():
-        raise Exit(f"journal {journal} does not exist")
+        raise Exit(f"logbook {logbook} does not exist")
     if path.is_dir():
-        raise Exit(f"{journal} is a folder, not a journal file")
-    table = Journal(path).fold()
+        raise Exit(f"{logbook} is a folder, not a logbook file")
+    table = Logbook(path).fold()
     check_header(table, path)
     if table.header is None and not table.trials:
-        raise Exit(f"journal {journal} holds no forebear records ({table.skipped} unreadable lines)")
+        raise Exit(f"logbook {logbook} holds no forebear records ({table.skipped} unreadable lines)")
     return table
 
 
@@ -119,7 +119,7 @@ def main(ctx: click.Context, debug: bool) -> None:
 
 @main.command()
 @click.argument("spec", type=click.Path(dir_okay=False))
-@click.option("--extend", is_flag=True, help="Resume with a larger budget than the journal's search had.")
+@click.option("--extend", is_flag=True, help="Resume with a larger budget than the logbook's search had.")
 @click.option("--cancel-running", is_flag=True, help="On Ctrl-C, kill running attempts instead of waiting for them.")
 @click.option("--detach", is_flag=True, help="Run the controller inside the remote scheduler (needs cluster.address).")
 @click.option("--quiet", "-q", is_flag=True, help="No progress display.")
@@ -127,11 +127,17 @@ def main(ctx: click.Context, debug: bool) -> None:
 @guarded
 def run(spec: str, extend: bool, cancel_running: bool, detach: bool, quiet: bool, as_json: bool) -> None:
     """Run (or resume) the search defined by SPEC."""
-    from forebear import spec as spec_mod
+    from forebear.core import spec as spec_mod
 
     loaded = spec_mod.load(spec)
-    controller = _optional("forebear.controller", "forebear run")
-    result = controller.run_cli(loaded, extend=extend, cancel_running=cancel_running, detach=detach, quiet=quiet)
+    if detach:
+        # Detached: the controller runs inside the remote scheduler (the plugin), not here.
+        plugin = _optional("forebear.cluster.plugin", "forebear run --detach")
+        result = plugin.detach(loaded, extend=extend, quiet=quiet)
+    else:
+        controller = _optional("forebear.loop.controller", "forebear run")
+        from forebear.face.progress import Progress
+        result = controller.Controller(loaded, extend=extend, quiet=quiet, cancel_running=cancel_running, display=Progress).run()
     if as_json:
         emit_json(result.to_dict())
     if result.best is None and not detach:
@@ -143,18 +149,18 @@ def run(spec: str, extend: bool, cancel_running: bool, detach: bool, quiet: bool
 @guarded
 def check(spec: str) -> None:
     """Validate SPEC and print a short summary of its space and budget."""
-    from forebear import spec as spec_mod
+    from forebear.core import spec as spec_mod
 
     s = spec_mod.load(spec)
     b = s.budget
     obj = s.objective
     what = obj.call if obj.call else " ".join(obj.command or ())
     say(f"spec {spec}: ok - search {s.name!r}")
-    say(f"  objective  {what}  ({obj.direction} {obj.metric})")
+    say(f"  objective  {what}  ({obj.sense} {obj.metric})")
     say(f"  space      {len(s.space)} parameters, {s.space.dim} encoded dimensions")
     for p in s.space.params:
         if p.kind == "categorical":
-            rng = "{" + ", ".join(map(str, p.choices)) + "}"
+            rng = "{" + ", ".join(map(str, p.categories)) + "}"
         else:
             rng = f"[{p.low:g}, {p.high:g}]" + (" log" if p.log else "")
         dflt = f"  default {p.default}" if p.default is not None else ""
@@ -167,27 +173,28 @@ def check(spec: str) -> None:
     say(f"  budget     {', '.join(limits)}")
     say(f"  history    {len(s.history)} source{'s' if len(s.history) != 1 else ''}" + ("" if s.history else " (cold start)"))
     say(f"  cluster    {s.cluster.kind}" + (f" {s.cluster.address}" if s.cluster.address else ""))
-    say(f"  journal    {s.journal}")
+    say(f"  logbook    {s.logbook}")
     for note in s.notes:
         say(f"  note: {note}")
 
 
-# -- journal commands -------------------------------------------------------
+# -- logbook commands -------------------------------------------------------
 
 
 @main.command()
-@click.argument("journal", type=click.Path(dir_okay=False))
+@click.argument("logbook", type=click.Path(dir_okay=False))
 @click.option("--json", "as_json", is_flag=True, help="Print the status as JSON on stdout.")
 @guarded
-def status(journal: str, as_json: bool) -> None:
-    """Show the state of the search recorded in JOURNAL (also while it runs)."""
-    table = _table(journal)
+def status(logbook: str, as_json: bool) -> None:
+    """Show the state of the search recorded in LOGBOOK (also while it runs)."""
+    table = _table(logbook)
     counts = table.counts()
     best = table.best()
     header = table.header or {}
     payload = {
-        "journal": journal,
+        "logbook": logbook,
         "search": header.get("name"),
+        table.sense: table.metric,
         "trials": len(table),
         "counts": counts,
         "finished": table.finished,
@@ -199,7 +206,7 @@ def status(journal: str, as_json: bool) -> None:
     if as_json:
         emit_json(payload)
         return
-    say(f"search {header.get('name', '?')}  ({journal})")
+    say(f"search {header.get('name', '?')}  ({logbook})")
     say("  " + "  ".join(f"{k} {v}" for k, v in counts.items()) + f"  (finished {table.finished})")
     if best:
         say(f"  best: trial {best.trial}  {table.metric or 'score'} = {best.score:.6g}  {json.dumps(best.config)}")
@@ -221,40 +228,39 @@ def _best_payload(table: TrialTable) -> dict[str, Any]:
         "score": best.score,
         "config": best.config,
         "metrics": best.metrics,
-        "metric": table.metric,
-        "direction": table.direction,
+        table.sense: table.metric,
         "seconds": best.seconds,
         "attempts": len(best.attempts),
     }
 
 
 @main.command()
-@click.argument("journal", type=click.Path(dir_okay=False))
+@click.argument("logbook", type=click.Path(dir_okay=False))
 @click.option("--json", "as_json", is_flag=True, help="Print the best trial as JSON on stdout.")
 @guarded
-def best(journal: str, as_json: bool) -> None:
-    """Print the best configuration recorded in JOURNAL."""
-    table = _table(journal)
+def best(logbook: str, as_json: bool) -> None:
+    """Print the best configuration recorded in LOGBOOK."""
+    table = _table(logbook)
     if table.best() is None:
         if as_json:
             emit_json(None)
-        raise Exit(f"journal {journal}: no trial has scored yet", EXIT_NOTHING_SCORED)
+        raise Exit(f"logbook {logbook}: no trial has scored yet", EXIT_NOTHING_SCORED)
     payload = _best_payload(table)
     if as_json:
         emit_json(payload)
         return
-    say(f"best trial {payload['trial']}: {payload['metric'] or 'score'} = {payload['score']:.6g} ({payload['direction']})")
+    say(f"best trial {payload['trial']}: {table.metric or 'score'} = {payload['score']:.6g} ({table.sense})")
     for k, v in payload["config"].items():
         click.echo(f"{k}: {v}")
 
 
 @main.command()
-@click.argument("journal", type=click.Path(dir_okay=False))
+@click.argument("logbook", type=click.Path(dir_okay=False))
 @click.option("--csv", "csv_path", required=True, type=click.Path(dir_okay=False), help="The CSV file to write.")
 @guarded
-def export(journal: str, csv_path: str) -> None:
-    """Write the trial table of JOURNAL as a CSV file."""
-    table = _table(journal)
+def export(logbook: str, csv_path: str) -> None:
+    """Write the trial table of LOGBOOK as a CSV file."""
+    table = _table(logbook)
     params: list[str] = []
     metrics: list[str] = []
     for t in table:
@@ -278,14 +284,14 @@ def export(journal: str, csv_path: str) -> None:
 
 
 @main.command()
-@click.argument("journal", type=click.Path(dir_okay=False))
+@click.argument("logbook", type=click.Path(dir_okay=False))
 @click.option("-o", "--out", "out_dir", required=True, type=click.Path(file_okay=False), help="Folder for report.html and PNGs.")
 @guarded
-def report(journal: str, out_dir: str) -> None:
-    """Write report.html and plots for JOURNAL into a folder."""
-    table = _table(journal)
-    mod = _optional("forebear.report", "forebear report")
-    path = mod.write_report(table, Path(out_dir), journal=Path(journal))
+def report(logbook: str, out_dir: str) -> None:
+    """Write report.html and plots for LOGBOOK into a folder."""
+    table = _table(logbook)
+    mod = _optional("forebear.face.report", "forebear report")
+    path = mod.write_report(table, Path(out_dir), logbook=Path(logbook))
     say(f"report: {path}")
 
 
@@ -295,7 +301,7 @@ def report(journal: str, out_dir: str) -> None:
 @guarded
 def demo(folder: str, quiet: bool) -> None:
     """Run a self-contained demo search on the embedded cluster (a few minutes)."""
-    mod = _optional("forebear.demo", "forebear demo")
+    mod = _optional("forebear.face.demo", "forebear demo")
     code = mod.main(Path(folder), quiet=quiet)
     if code:
         raise Exit("", code)
@@ -303,7 +309,7 @@ def demo(folder: str, quiet: bool) -> None:
 
 @main.group()
 def bench() -> None:
-    """Benchmarks that print figures (quality, overhead, journal, proposal, faults)."""
+    """Benchmarks that print figures (quality, overhead, logbook, proposal, faults)."""
 
 
 def _bench_command(name: str, help_text: str, options: list[Callable[[Any], Any]]) -> None:
@@ -326,7 +332,7 @@ def _bench_command(name: str, help_text: str, options: list[Callable[[Any], Any]
     bench.command(name=name)(fn)
 
 
-_bench_command("journal", "Journal fold and append throughput.", [])
+_bench_command("logbook", "Logbook fold and append throughput.", [])
 _bench_command("proposal", "Proposal latency and meta-training time.", [])
 _bench_command("overhead", "Worker utilisation and per-trial overhead on a local cluster.", [])
 _bench_command("quality", "Regret on transfer task families (leave one task out).", [

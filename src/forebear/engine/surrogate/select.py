@@ -14,7 +14,7 @@ import math
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 
-from forebear.surrogate.gp import Posterior
+from forebear.engine.surrogate.gp import Posterior
 
 MIN_OBS = 5  # below this, leave-one-out scores are too noisy to overrule the history
 ALONE = 0.95  # a model with at least this weight is used alone

@@ -1,6 +1,6 @@
 """A search report: ``report.html`` and its PNG plots, drawn from a trial table.
 
-The report reads nothing but the journal's fold, so it works on the journal of
+The report reads nothing but the logbook's fold, so it works on the logbook of
 a search that is still running (attempts in flight are drawn up to the last
 record). Plots are made with matplotlib's object API (``Figure`` on the Agg
 canvas), which needs no display and keeps no global pyplot state, so it is
@@ -22,8 +22,8 @@ from typing import Any
 
 import numpy as np
 
-from forebear.journal import Attempt, Trial, TrialTable
-from forebear.space import Param, Space
+from forebear.core.space import Param, Space
+from forebear.records.logbook import Attempt, Trial, TrialTable
 
 try:
     from matplotlib.figure import Figure
@@ -40,17 +40,17 @@ OUTCOME_COLORS = {"scored": "#2e7d32", "failed": "#c62828", "lost": "#ef6c00", "
 SOURCE_COLORS = {"initial": "#6a1b9a", "model": "#00838f", "random": "#9e9d24"}
 
 
-def write_report(table: TrialTable, out_dir: Path, journal: Path | None = None) -> Path:
+def write_report(table: TrialTable, out_dir: Path, logbook: Path | None = None) -> Path:
     """Write ``report.html`` and the PNGs it shows into ``out_dir``.
 
     Parameters
     ----------
     table
-        The folded journal (``Journal(path).fold()``), finished or not.
+        The folded logbook (``Logbook(path).fold()``), finished or not.
     out_dir
         The folder to write into; created when missing.
-    journal
-        The journal's path, shown in the page.
+    logbook
+        The logbook's path, shown in the page.
 
     Returns
     -------
@@ -64,7 +64,7 @@ def write_report(table: TrialTable, out_dir: Path, journal: Path | None = None) 
     _save(_best_so_far(table), out_dir / PLOTS[0])
     _save(_timeline(table, now), out_dir / PLOTS[1])
     _save(_parameters(table, space), out_dir / PLOTS[2])
-    page = _page(table, space, journal, now)
+    page = _page(table, space, logbook, now)
     target = out_dir / "report.html"
     _atomic_write(target, page.encode("utf-8"))
     return target
@@ -75,7 +75,7 @@ def write_report(table: TrialTable, out_dir: Path, journal: Path | None = None) 
 
 
 def _space(table: TrialTable) -> Space:
-    """The search's space from the journal header, or one inferred from the configs."""
+    """The search's space from the logbook header, or one inferred from the configs."""
     header_space = (table.header or {}).get("space")
     if isinstance(header_space, dict) and header_space:
         try:
@@ -92,8 +92,8 @@ def _space(table: TrialTable) -> Space:
         if len(numeric) == len(values) and numeric and min(numeric) < max(numeric):
             params.append(Param(name, "float", min(numeric), max(numeric)))
         else:
-            choices = list(dict.fromkeys(map(str, values))) or ["?"]
-            params.append(Param(name, "categorical", choices=tuple(choices)))
+            categories = list(dict.fromkeys(map(str, values))) or ["?"]
+            params.append(Param(name, "categorical", categories=tuple(categories)))
     return Space(tuple(params)) if params else Space((Param("trial", "float", 0.0, 1.0),))
 
 
@@ -119,7 +119,7 @@ def _best_so_far(table: TrialTable) -> Figure:
     ax = fig.subplots()
     metric = table.metric or "score"
     done = _finished_in_order(table)
-    sign = -1.0 if table.direction == "maximize" else 1.0
+    sign = -1.0 if table.sense == "maximize" else 1.0
     best: float | None = None
     xs, curve = [], []
     for i, t in enumerate(done, start=1):
@@ -140,7 +140,7 @@ def _best_so_far(table: TrialTable) -> Figure:
             ax.scatter([], [], s=18, color=color, label=f"scored ({source})")
     ax.set_xlabel("finished trials")
     ax.xaxis.set_major_locator(MaxNLocator(integer=True))
-    ax.set_ylabel(f"{metric} ({table.direction})")
+    ax.set_ylabel(f"{metric} ({table.sense})")
     ax.set_title("Best so far")
     if not done:
         ax.text(0.5, 0.5, "no trial has finished yet", ha="center", va="center", transform=ax.transAxes)
@@ -208,7 +208,7 @@ def _parameters(table: TrialTable, space: Space) -> Figure:
     for ax, p in zip(axes, params, strict=False):  # axes may outnumber params
         pts = [(t.config[p.name], float(t.score), t) for t in scored if p.name in t.config]  # type: ignore[arg-type]
         if p.kind == "categorical":
-            labels = [str(c) for c in p.choices]
+            labels = [str(c) for c in p.categories]
             pos = {lab: i for i, lab in enumerate(labels)}
             x = np.array([pos.get(str(v), -1) for v, _, _ in pts], dtype=float)
             x = x + rng.uniform(-0.15, 0.15, size=len(x))
@@ -319,7 +319,7 @@ def _top_table(trials: Sequence[Trial], space: Space, metric: str) -> str:
     return "\n".join(out)
 
 
-def _page(table: TrialTable, space: Space, journal: Path | None, now: float) -> str:
+def _page(table: TrialTable, space: Space, logbook: Path | None, now: float) -> str:
     header = table.header or {}
     name = str(header.get("name") or "search")
     metric = table.metric or "score"
@@ -328,8 +328,8 @@ def _page(table: TrialTable, space: Space, journal: Path | None, now: float) -> 
     span = (now - table.first_at) if table.first_at is not None else 0.0
     state = f"closed ({table.closed.get('reason')})" if table.closed else "running, or stopped without closing"
     facts = [
-        ("journal", str(journal) if journal else "-"),
-        ("objective", f"{table.direction} {metric}"),
+        ("logbook", str(logbook) if logbook else "-"),
+        ("objective", f"{table.sense} {metric}"),
         ("trials", ", ".join(f"{k} {v}" for k, v in counts.items())),
         ("state", state),
         ("elapsed", f"{span:.1f} s (to the last record)"),
@@ -337,7 +337,7 @@ def _page(table: TrialTable, space: Space, journal: Path | None, now: float) -> 
         ("written", time.strftime("%Y-%m-%d %H:%M:%S", time.localtime())),
     ]
     if table.skipped:
-        facts.append(("note", f"{table.skipped} unreadable journal line(s) skipped"))
+        facts.append(("note", f"{table.skipped} unreadable logbook line(s) skipped"))
     rows = "\n".join(f"<tr><th>{html.escape(k)}</th><td>{html.escape(v)}</td></tr>" for k, v in facts)
     stamp = int(now * 1000)  # cache-buster: a refresh during a running search shows the new plots
     imgs = "\n".join(

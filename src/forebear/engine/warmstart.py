@@ -17,8 +17,8 @@ from typing import Any
 
 import numpy as np
 
-from forebear.acquisition import keys
-from forebear.space import Space
+from forebear.core.space import Space
+from forebear.engine.acquisition import keys
 
 # impute(task_index, X_query) -> task-normalised predicted scores in [0, 1]
 Imputer = Callable[[int, np.ndarray], np.ndarray]
@@ -41,7 +41,7 @@ def initial_design(
     Parameters
     ----------
     tasks
-        History tasks (``forebear.history.Task``); empty for a Latin hypercube.
+        History tasks (``forebear.records.history.Task``); empty for a Latin hypercube.
     impute
         Predicts a task's normalised scores where it has none.
     per_task

@@ -33,7 +33,7 @@ class Param:
         Inclusive bounds of a float or int parameter.
     log
         Sample and model on the log scale (bounds must be > 0).
-    choices
+    categories
         The categories of a categorical parameter.
     default
         The value used to align history that lacks this parameter, or ``None``.
@@ -44,7 +44,7 @@ class Param:
     low: float | None = None
     high: float | None = None
     log: bool = False
-    choices: tuple[Any, ...] = ()
+    categories: tuple[Any, ...] = ()
     default: Any = None
 
     def __post_init__(self) -> None:
@@ -52,11 +52,11 @@ class Param:
             msg = f"parameter {self.name!r}: kind must be one of {KINDS}, got {self.kind!r}"
             raise ValueError(msg)
         if self.kind == "categorical":
-            if not self.choices:
+            if not self.categories:
                 msg = f"parameter {self.name!r}: a categorical parameter needs at least one category"
                 raise ValueError(msg)
-            if len(set(map(_category_key, self.choices))) != len(self.choices):
-                msg = f"parameter {self.name!r}: categories must be distinct, got {list(self.choices)}"
+            if len(set(map(_category_key, self.categories))) != len(self.categories):
+                msg = f"parameter {self.name!r}: categories must be distinct, got {list(self.categories)}"
                 raise ValueError(msg)
         else:
             if self.low is None or self.high is None:
@@ -78,12 +78,12 @@ class Param:
     @property
     def width(self) -> int:
         """Number of unit-cube coordinates this parameter takes."""
-        return len(self.choices) if self.kind == "categorical" else 1
+        return len(self.categories) if self.kind == "categorical" else 1
 
     def contains(self, value: Any) -> bool:
         """Whether ``value`` is a valid value of this parameter."""
         if self.kind == "categorical":
-            return any(_same_category(value, c) for c in self.choices)
+            return any(_same_category(value, c) for c in self.categories)
         if isinstance(value, bool) or not isinstance(value, (int, float, np.integer, np.floating)):
             return False
         if not math.isfinite(float(value)):
@@ -96,7 +96,7 @@ class Param:
     def to_unit(self, value: Any) -> np.ndarray:
         """Encode one value into ``width`` unit-cube coordinates."""
         if self.kind == "categorical":
-            out = np.zeros(len(self.choices))
+            out = np.zeros(len(self.categories))
             out[self.index(value)] = 1.0
             return out
         lo, hi = self._scaled_bounds()
@@ -106,7 +106,7 @@ class Param:
     def from_unit(self, u: np.ndarray) -> Any:
         """Decode ``width`` coordinates into a valid value (argmax for categories)."""
         if self.kind == "categorical":
-            return self.choices[int(np.argmax(u))]
+            return self.categories[int(np.argmax(u))]
         assert self.low is not None and self.high is not None
         lo, hi = self._scaled_bounds()
         t = min(1.0, max(0.0, float(u[0])))
@@ -119,17 +119,17 @@ class Param:
         return float(min(self.high, max(self.low, v)))
 
     def index(self, value: Any) -> int:
-        """Position of a category in ``choices``."""
-        for i, c in enumerate(self.choices):
+        """Position of a category in ``categories``."""
+        for i, c in enumerate(self.categories):
             if _same_category(value, c):
                 return i
-        msg = f"parameter {self.name!r}: {value!r} is not one of {list(self.choices)}"
+        msg = f"parameter {self.name!r}: {value!r} is not one of {list(self.categories)}"
         raise ValueError(msg)
 
     def to_dict(self) -> dict[str, Any]:
         """The spec form of this parameter (JSON-safe)."""
         if self.kind == "categorical":
-            out: dict[str, Any] = {"categories": list(self.choices)}
+            out: dict[str, Any] = {"categories": list(self.categories)}
         else:
             bounds = [int(self.low), int(self.high)] if self.kind == "int" else [self.low, self.high]  # type: ignore[arg-type]
             out = {self.kind: bounds}
@@ -190,7 +190,7 @@ class Space:
             default = body.pop("default", None)
             log = bool(body.pop("log", False))
             if "categories" in body:
-                params.append(Param(name, "categorical", choices=tuple(body.pop("categories")), default=default))
+                params.append(Param(name, "categorical", categories=tuple(body.pop("categories")), default=default))
             elif "float" in body:
                 lo, hi = body.pop("float")
                 params.append(Param(name, "float", float(lo), float(hi), log=log, default=default))
@@ -313,7 +313,7 @@ class Space:
         out: dict[str, Any] = {}
         for p, t in zip(self.params, u, strict=True):
             if p.kind == "categorical":
-                out[p.name] = p.choices[min(len(p.choices) - 1, int(t * len(p.choices)))]
+                out[p.name] = p.categories[min(len(p.categories) - 1, int(t * len(p.categories)))]
             elif p.kind == "int":
                 # Equal mass for every integer on the linear scale: widen by half a step.
                 assert p.low is not None and p.high is not None
@@ -353,8 +353,8 @@ class Space:
             p = self.params[int(i)]
             old = config[p.name]
             if p.kind == "categorical":
-                if len(p.choices) > 1:
-                    others = [c for c in p.choices if not _same_category(c, old)]
+                if len(p.categories) > 1:
+                    others = [c for c in p.categories if not _same_category(c, old)]
                     out[p.name] = others[int(rng.integers(len(others)))]
                 continue
             u = p.to_unit(old)[0] + rng.normal(0.0, scale)

@@ -1,16 +1,16 @@
 """What runs on a worker: one attempt of one trial, isolated in a child process.
 
 :func:`run_attempt` is the function the controller submits to Dask. It hands
-the attempt to a per-worker fork server (:mod:`forebear._child`) that has
+the attempt to a per-worker fork server (:mod:`forebear.cluster.child`) that has
 already imported the objective, waits for the child with the attempt's
 timeout, and kills the child's whole process group on timeout or when the
 Dask task is cancelled. A crash of the user's code (segfault, ``os._exit``,
 MemoryError, a hang) ends the child, never the worker.
 
-When the journal's folder is reachable from the worker (a shared filesystem,
+When the logbook's folder is reachable from the worker (a shared filesystem,
 proven by a token file the controller wrote), the runner appends its own
 ``started`` and ``scored``/``failed`` records and writes the full log beside
-the journal; otherwise it returns the records and the log for the controller
+the logbook; otherwise it returns the records and the log for the controller
 to write. The runner never imports the surrogate.
 """
 
@@ -33,9 +33,9 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from forebear import _child
-from forebear._child import BadScore, score_of_stdout
-from forebear.journal import Journal, ensure_folder, record
+from forebear.cluster import child as _child
+from forebear.cluster.child import BadScore, score_of_stdout
+from forebear.records.logbook import Logbook, ensure_folder, record
 
 PROBE_NAME = ".probe"
 LOG_TAIL_LINES = 20
@@ -63,7 +63,7 @@ class AttemptTask:
     call: str | None = None
     command: tuple[str, ...] | None = None
     timeout: float | None = None
-    journal: str | None = None
+    logbook: str | None = None
     lock: str = "strict"
     lock_lifetime: float = 60.0
     logs: str | None = None
@@ -74,7 +74,7 @@ class AttemptTask:
 
 @dataclass
 class AttemptResult:
-    """What an attempt came to; ``records`` are already in the journal when ``written``."""
+    """What an attempt came to; ``records`` are already in the logbook when ``written``."""
 
     trial: int
     attempt: int
@@ -98,10 +98,10 @@ def log_name(trial: int, attempt: int) -> str:
 
 
 class _Server:
-    """A :mod:`forebear._child` server process and its protocol pipes."""
+    """A :mod:`forebear.cluster.child` server process and its protocol pipes."""
 
     def __init__(self, call: str | None, path: str | None, wait: float) -> None:
-        # Run the file, not ``-m forebear._child``: the package's imports (numpy, scipy, yaml) would
+        # Run the file, not ``-m forebear.cluster.child``: the package's imports (numpy, scipy, yaml) would
         # add seconds to every server start, and the server needs only the standard library.
         argv = [sys.executable, _child.__file__]
         if call:
@@ -211,7 +211,7 @@ _SHARED: dict[tuple[str, str], bool] = {}
 
 
 def reachable(logs: str | None, token: str | None) -> bool:
-    """True when the controller's token file is visible here: same filesystem as the journal."""
+    """True when the controller's token file is visible here: same filesystem as the logbook."""
     if not logs or not token:
         return False
     key = (logs, token)
@@ -257,17 +257,17 @@ def run_attempt(task: AttemptTask) -> AttemptResult:
     """Run one attempt of a trial in a child process and report it (the Dask task)."""
     worker, cancelled = _worker_identity()
     shared = reachable(task.logs, task.token)
-    journal = Journal(task.journal, task.lock, task.lock_lifetime) if shared and task.journal else None
+    logbook = Logbook(task.logbook, task.lock, task.lock_lifetime) if shared and task.logbook else None
     scratch = Path(tempfile.mkdtemp(prefix=f"forebear-t{task.trial}-"))
     try:
-        return _run(task, worker, cancelled, journal, scratch)
+        return _run(task, worker, cancelled, logbook, scratch)
     finally:
         shutil.rmtree(scratch, ignore_errors=True)
 
 
-def _run(task: AttemptTask, worker: str, cancelled: Callable[[], bool], journal: Journal | None, scratch: Path) -> AttemptResult:
+def _run(task: AttemptTask, worker: str, cancelled: Callable[[], bool], logbook: Logbook | None, scratch: Path) -> AttemptResult:
     name = log_name(task.trial, task.attempt)
-    if journal is not None and task.logs:
+    if logbook is not None and task.logs:
         ensure_folder(Path(task.logs))
         log = Path(task.logs) / name
     else:
@@ -308,32 +308,32 @@ def _run(task: AttemptTask, worker: str, cancelled: Callable[[], bool], journal:
     except RunnerError as exc:
         # The objective cannot be imported here: the attempt fails, it did not start anything.
         started = record("started", trial=task.trial, attempt=task.attempt, worker=worker, host=socket.gethostname(), pid=None)
-        if journal is not None:
-            journal.append(started)
-        return _finish(task, result, journal, started, None, str(exc), 0.0, log, out)
+        if logbook is not None:
+            logbook.append(started)
+        return _finish(task, result, logbook, started, None, str(exc), 0.0, log, out)
     try:
-        outcome, status, started, seconds = _supervise(server, request, task, worker, journal, cancelled)
+        outcome, status, started, seconds = _supervise(server, request, task, worker, logbook, cancelled)
     except RunnerError as exc:
         server.close()
         started = record("started", trial=task.trial, attempt=task.attempt, worker=worker, host=socket.gethostname(), pid=None)
-        return _finish(task, result, journal, started, None, str(exc), 0.0, log, out)
+        return _finish(task, result, logbook, started, None, str(exc), 0.0, log, out)
     finally:
         _release(server, key_call, task.cwd)
     if outcome in ("timeout", "cancelled"):
         result.outcome = outcome
         result.records = [started]
-        result.written = journal is not None
+        result.written = logbook is not None
         result.seconds = seconds
         what = f"the attempt timed out after {task.timeout:g} s" if outcome == "timeout" else "the attempt was cancelled"
         result.error = _with_tail(what, log, out)
-        if journal is None:
+        if logbook is None:
             result.log_text = _read_log(log, out)
         return result
-    return _finish(task, result, journal, started, status, None, seconds, log, out, scratch / "result.json")
+    return _finish(task, result, logbook, started, status, None, seconds, log, out, scratch / "result.json")
 
 
 def _supervise(
-    server: _Server, request: Mapping[str, Any], task: AttemptTask, worker: str, journal: Journal | None, cancelled: Callable[[], bool]
+    server: _Server, request: Mapping[str, Any], task: AttemptTask, worker: str, logbook: Logbook | None, cancelled: Callable[[], bool]
 ) -> tuple[str, int | None, dict[str, Any], float]:
     """Start the child, write ``started``, wait; returns (outcome, wait status, started record, seconds)."""
     server.send(request)
@@ -343,11 +343,11 @@ def _supervise(
     pid = int(hello["pid"])
     t0 = time.monotonic()
     started = record("started", trial=task.trial, attempt=task.attempt, worker=worker, host=socket.gethostname(), pid=pid)
-    if journal is not None:
+    if logbook is not None:
         try:
-            journal.append(started)
+            logbook.append(started)
         except BaseException:
-            # The journal cannot be written (a full disk): stop the child and retire this server, whose
+            # The logbook cannot be written (a full disk): stop the child and retire this server, whose
             # protocol would otherwise still owe the child's exit to the next attempt it is given.
             _killpg(pid)
             server.close()
@@ -426,7 +426,7 @@ def _with_tail(reason: str, log: Path, out: Path | None) -> str:
 def _finish(
     task: AttemptTask,
     result: AttemptResult,
-    journal: Journal | None,
+    logbook: Logbook | None,
     started: dict[str, Any],
     status: int | None,
     error: str | None,
@@ -469,8 +469,8 @@ def _finish(
         final = record("failed", trial=task.trial, attempt=task.attempt, error=result.error, retryable=task.retryable)
         result.outcome = "failed"
     result.seconds = seconds
-    if journal is not None:
-        journal.append(final)
+    if logbook is not None:
+        logbook.append(final)
         result.records = [started, final]
         result.written = True
     else:

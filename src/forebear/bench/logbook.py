@@ -1,4 +1,4 @@
-"""``forebear bench journal``: fold speed and durable append throughput.
+"""``forebear bench logbook``: fold speed and durable append throughput.
 
 Figures: the time to fold 100,000 records, appends per second with one writer
 and with eight writer processes (fsync on every record), and the records lost
@@ -14,7 +14,7 @@ import time
 from pathlib import Path
 from typing import Any
 
-from forebear.journal import Journal, fold, parse, record
+from forebear.records.logbook import Logbook, fold, parse, record
 
 
 def _synthetic(n: int) -> bytes:
@@ -31,7 +31,7 @@ def _synthetic(n: int) -> bytes:
 
 
 def _writer(path: str, writer: int, n: int, go: Any) -> None:
-    j = Journal(path)
+    j = Logbook(path)
     go.wait(60)
     for i in range(n):
         j.append(record("closed", reason="budget", best=None, writer=writer, seq=i))
@@ -56,14 +56,14 @@ def _appends(folder: Path, writers: int, per_writer: int) -> tuple[float, int]:
                 p.kill()
             p.join(5)
     elapsed = time.perf_counter() - t0
-    recs, _ = Journal(path).read()
+    recs, _ = Logbook(path).read()
     seen = {(r["writer"], r["seq"]) for r in recs}
     lost = writers * per_writer - len(seen)
     return writers * per_writer / elapsed, lost
 
 
 def main(records: int = 100_000, appends: int = 500) -> dict[str, Any]:
-    """Run the journal benchmark; returns the figures."""
+    """Run the logbook benchmark; returns the figures."""
     data = _synthetic(records)
     # The fastest of three, as the timeit module's documentation advises: slower runs measure
     # other processes on the machine, not the fold.
