@@ -39,3 +39,39 @@ def processes(target: Callable[..., Any], args: Sequence[tuple[Any, ...]], deadl
             if p.is_alive():
                 p.kill()
                 p.join(5)
+
+
+class DrivenSearch:
+    """A controller's ``run()`` in a daemon thread, with a way to wait for a marker file meanwhile.
+
+    ``wait_for(path, deadline)`` fails when the marker does not appear in time or the
+    controller raised; ``join(deadline)`` fails when the controller is still running or raised.
+    """
+
+    def __init__(self, controller: Any) -> None:
+        import threading
+
+        self.result: list[Any] = []
+        self.errors: list[BaseException] = []
+        self._controller = controller
+        self.thread = threading.Thread(target=self._drive, daemon=True)
+        self.thread.start()
+
+    def _drive(self) -> None:
+        try:
+            self.result.append(self._controller.run())
+        except BaseException as exc:  # noqa: BLE001 - surfaced by wait_for and join
+            self.errors.append(exc)
+
+    def wait_for(self, path: Any, deadline: float, what: str) -> None:
+        end = time.monotonic() + deadline
+        while not path.exists():
+            assert time.monotonic() < end, f"{what} did not happen within {deadline:.0f} s"
+            assert not self.errors, self.errors
+            time.sleep(0.05)
+
+    def join(self, deadline: float) -> Any:
+        self.thread.join(deadline)
+        assert not self.thread.is_alive(), "the controller did not finish"
+        assert not self.errors, self.errors
+        return self.result[0]

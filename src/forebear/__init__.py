@@ -4,13 +4,14 @@ from __future__ import annotations
 
 from typing import Any
 
+from forebear.cluster.child import Halted
 from forebear.core.space import Param, Space
 from forebear.core.spec import Spec, SpecError
 from forebear.records.logbook import Logbook, Trial, TrialTable, load
 
 __version__ = "0.1.0"
 
-__all__ = ["Logbook", "Param", "Space", "Spec", "SpecError", "Trial", "TrialTable", "__version__", "load", "run"]
+__all__ = ["Halted", "Logbook", "Param", "Space", "Spec", "SpecError", "Trial", "TrialTable", "__version__", "load", "run"]
 
 
 def __getattr__(name: str) -> Any:

@@ -20,6 +20,7 @@ from __future__ import annotations
 
 import ctypes
 import importlib
+import inspect
 import json
 import math
 import os
@@ -39,6 +40,21 @@ class BadScore(ValueError):
 
     def __reduce__(self) -> tuple[Any, ...]:
         return (self.__class__, self.args)
+
+
+class Halted(Exception):
+    """Raised by the note function once forebear has halted the trial (``forebear.Halted``).
+
+    An objective may catch it to clean up (close files, free a GPU); whatever it
+    does next, the trial ends halted with its last intermediate score.
+    """
+
+    def __init__(self, step: int | None = None) -> None:
+        self.step = step
+        super().__init__(f"forebear halted this trial after step {step}")
+
+    def __reduce__(self) -> tuple[Any, ...]:
+        return (self.__class__, (self.step,))
 
 
 # --------------------------------------------------------------------------
@@ -120,6 +136,51 @@ def score_of_stdout(text: str, metric: str) -> tuple[float, dict[str, Any]]:
 
 
 # --------------------------------------------------------------------------
+# intermediate scores of a callable objective
+
+
+class _Note:
+    """The second argument of a callable objective: ``note(step, value)`` records an intermediate score.
+
+    ``value`` is a number or a metrics mapping holding the spec's metric. The
+    score goes to a file the runner reads; once the runner has written the halt
+    file (forebear decided to stop the trial), the call raises :class:`Halted`.
+    """
+
+    def __init__(self, steps_path: str, halt_path: str, metric: str) -> None:
+        self._fd = os.open(steps_path, os.O_WRONLY | os.O_CREAT | os.O_APPEND, 0o600)
+        self._halt = halt_path
+        self._metric = metric
+        self.last: int | None = None
+        self.halted = False
+
+    def __call__(self, step: int, value: Any) -> None:
+        if isinstance(step, bool) or not hasattr(step, "__index__"):
+            raise TypeError(f"note: step must be a whole number, got {type(step).__name__} {_describe(step)}")
+        step = int(step.__index__())
+        if step < 0 or (self.last is not None and step <= self.last):
+            after = f" after step {self.last}" if self.last is not None else ""
+            raise ValueError(f"note: steps must be >= 0 and increasing, got {step}{after}")
+        score, metrics = score_of(value, self._metric)
+        os.write(self._fd, (json.dumps({"step": step, "score": score, "metrics": metrics}, default=str) + "\n").encode())
+        self.last = step
+        if self.halted or os.path.exists(self._halt):
+            self.halted = True
+            raise Halted(step)
+
+
+def takes_note(fn: Callable[..., Any]) -> bool:
+    """True when ``fn`` accepts a second positional argument (the note function)."""
+    try:
+        params = list(inspect.signature(fn).parameters.values())
+    except (TypeError, ValueError):
+        return False
+    if any(p.kind == p.VAR_POSITIONAL for p in params):
+        return True
+    return sum(1 for p in params if p.kind in (p.POSITIONAL_ONLY, p.POSITIONAL_OR_KEYWORD)) >= 2
+
+
+# --------------------------------------------------------------------------
 # the child
 
 
@@ -177,16 +238,15 @@ def _child(req: Mapping[str, Any], fn: Callable[..., Any] | None, ready_w: int, 
         else:
             os.environ.update(req.get("env", {}))
             assert fn is not None
+            note = _Note(req["steps"], req["halt"], req["metric"]) if req.get("steps") and takes_note(fn) else None
             try:
-                value = fn(dict(req["config"]))
+                value = fn(dict(req["config"]), note) if note is not None else fn(dict(req["config"]))
                 score, metrics = score_of(value, req["metric"])
                 payload: dict[str, Any] = {"ok": True, "score": score, "metrics": metrics}
-            except BadScore as exc:
-                payload = {"ok": False, "error": f"bad result: {exc}"}
-            except BaseException as exc:  # noqa: BLE001 - the user's code may raise anything, SystemExit included
-                tb = traceback.format_exception(type(exc), exc, exc.__traceback__)
-                sys.stderr.write("".join(tb))
-                payload = {"ok": False, "error": f"objective raised {type(exc).__name__}: {exc}"[:2000]}
+                if note is not None and note.halted:
+                    payload = {"ok": False, "halted": True, "error": "halted"}
+            except BaseException as exc:  # noqa: BLE001 - sorted out below; halted first
+                payload = _outcome_of(exc, note)
             _write_result(req["result"], payload)
     except BaseException:  # noqa: BLE001 - report and leave; a child must never return into the server
         try:
@@ -201,6 +261,19 @@ def _child(req: Mapping[str, Any], fn: Callable[..., Any] | None, ready_w: int, 
             except BaseException:  # noqa: BLE001
                 pass
         os._exit(code)
+
+
+def _outcome_of(exc: BaseException, note: _Note | None) -> dict[str, Any]:
+    """The result payload of an objective that raised ``exc``."""
+    if note is not None and note.halted:
+        # Halted itself, or whatever the objective's clean-up raised after it: the trial was halted.
+        return {"ok": False, "halted": True, "error": "halted"}
+    if isinstance(exc, BadScore):
+        return {"ok": False, "error": f"bad result: {exc}"}
+    # The user's code may raise anything, SystemExit included.
+    tb = traceback.format_exception(type(exc), exc, exc.__traceback__)
+    sys.stderr.write("".join(tb))
+    return {"ok": False, "error": f"objective raised {type(exc).__name__}: {exc}"[:2000]}
 
 
 # --------------------------------------------------------------------------
@@ -318,4 +391,6 @@ if __name__ == "__main__":
     # Started as a file: its folder (forebear's own modules) must not shadow the user's modules.
     _here = os.path.dirname(os.path.abspath(__file__))
     sys.path[:] = [p for p in sys.path if os.path.abspath(p or ".") != _here]
+    # An objective that imports forebear.Halted must get this module's class, the one note() raises.
+    sys.modules.setdefault("forebear.cluster.child", sys.modules[__name__])
     sys.exit(main())

@@ -35,6 +35,7 @@ from typing import Any
 
 from forebear.cluster import child as _child
 from forebear.cluster.child import BadScore, score_of_stdout
+from forebear.cluster.steps import StepWatcher, without_marks
 from forebear.records.logbook import Logbook, ensure_folder, record
 
 PROBE_NAME = ".probe"
@@ -42,6 +43,7 @@ LOG_TAIL_LINES = 20
 LOG_RETURN_BYTES = 1 << 20  # the log returned to the controller without a shared filesystem
 KILL_GRACE = 10.0  # seconds to wait for a killed child to be reaped
 POLL = 0.2  # how often a waiting runner checks whether its Dask task was cancelled
+HALT_GRACE = 5.0  # seconds a halted command has between SIGTERM and SIGKILL to clean up
 
 
 class RunnerError(RuntimeError):
@@ -70,6 +72,8 @@ class AttemptTask:
     token: str | None = None
     cwd: str | None = None
     retryable: bool = False  # the value of ``retryable`` in a ``failed`` record for an objective error
+    topic: str | None = None  # the Dask event topic intermediate scores are sent to
+    halt_event: str | None = None  # the distributed.Event that says "halt"; None when no rule halts trials
 
 
 @dataclass
@@ -78,7 +82,7 @@ class AttemptResult:
 
     trial: int
     attempt: int
-    outcome: str  # scored, failed, timeout, cancelled
+    outcome: str  # scored, failed, halted, timeout, cancelled
     records: list[dict[str, Any]] = field(default_factory=list)
     written: bool = False
     error: str | None = None
@@ -297,6 +301,9 @@ def _run(task: AttemptTask, worker: str, cancelled: Callable[[], bool], logbook:
         "metric": task.metric,
         "config": dict(task.config),
     }
+    watcher = StepWatcher(task, logbook, scratch, out, log)
+    if not task.command:
+        request.update(steps=str(watcher.source), halt=str(watcher.halt_file))
     if task.command:
         request.update(kind="exec", argv=[_substitute(a, task.config) for a in task.command])
     else:
@@ -312,7 +319,7 @@ def _run(task: AttemptTask, worker: str, cancelled: Callable[[], bool], logbook:
             logbook.append(started)
         return _finish(task, result, logbook, started, None, str(exc), 0.0, log, out)
     try:
-        outcome, status, started, seconds = _supervise(server, request, task, worker, logbook, cancelled)
+        outcome, status, started, seconds = _supervise(server, request, task, worker, logbook, cancelled, watcher)
     except RunnerError as exc:
         server.close()
         started = record("started", trial=task.trial, attempt=task.attempt, worker=worker, host=socket.gethostname(), pid=None)
@@ -320,8 +327,9 @@ def _run(task: AttemptTask, worker: str, cancelled: Callable[[], bool], logbook:
     finally:
         _release(server, key_call, task.cwd)
     if outcome in ("timeout", "cancelled"):
+        watcher.poll(final=True)
         result.outcome = outcome
-        result.records = [started]
+        result.records = [started] if logbook is not None else [started, *watcher.records]
         result.written = logbook is not None
         result.seconds = seconds
         what = f"the attempt timed out after {task.timeout:g} s" if outcome == "timeout" else "the attempt was cancelled"
@@ -329,11 +337,19 @@ def _run(task: AttemptTask, worker: str, cancelled: Callable[[], bool], logbook:
         if logbook is None:
             result.log_text = _read_log(log, out)
         return result
-    return _finish(task, result, logbook, started, status, None, seconds, log, out, scratch / "result.json")
+    watcher.poll(final=True)
+    result.outcome = outcome
+    return _finish(task, result, logbook, started, status, None, seconds, log, out, scratch / "result.json", watcher)
 
 
 def _supervise(
-    server: _Server, request: Mapping[str, Any], task: AttemptTask, worker: str, logbook: Logbook | None, cancelled: Callable[[], bool]
+    server: _Server,
+    request: Mapping[str, Any],
+    task: AttemptTask,
+    worker: str,
+    logbook: Logbook | None,
+    cancelled: Callable[[], bool],
+    watcher: StepWatcher,
 ) -> tuple[str, int | None, dict[str, Any], float]:
     """Start the child, write ``started``, wait; returns (outcome, wait status, started record, seconds)."""
     server.send(request)
@@ -355,6 +371,7 @@ def _supervise(
     deadline = None if task.timeout is None else t0 + task.timeout
     outcome = "done"
     killed_at: float | None = None
+    halted_at = 0.0
     while True:
         now = time.monotonic()
         wait = POLL if deadline is None or outcome != "done" else max(0.0, min(POLL, deadline - now))
@@ -362,13 +379,20 @@ def _supervise(
         if msg is not None and "exit" in msg:
             return outcome, int(msg["exit"]), started, time.monotonic() - t0
         now = time.monotonic()
-        if outcome == "done":
+        if outcome == "done" and watcher.poll() and task.command:
+            # A command is halted with SIGTERM, so it can clean up, then SIGKILL after HALT_GRACE.
+            outcome, halted_at = "halted", now
+            _killpg(pid, signal.SIGTERM)
+        if killed_at is None:
+            reason = None
             if deadline is not None and now >= deadline:
-                outcome = "timeout"
+                reason = "timeout"
             elif cancelled():
-                outcome = "cancelled"
-            if outcome != "done":
-                killed_at = now
+                reason = "cancelled"
+            elif outcome == "halted" and now - halted_at > HALT_GRACE:
+                reason = "halted"
+            if reason is not None:
+                outcome, killed_at = reason, now
                 _killpg(pid)
         elif killed_at is not None and now - killed_at > KILL_GRACE:
             # The child ignores SIGKILL only when stuck in the kernel (D state); give up on it.
@@ -376,9 +400,9 @@ def _supervise(
             return outcome, None, started, now - t0
 
 
-def _killpg(pid: int) -> None:
+def _killpg(pid: int, sig: int = signal.SIGKILL) -> None:
     try:
-        os.killpg(pid, signal.SIGKILL)
+        os.killpg(pid, sig)
     except (ProcessLookupError, PermissionError):
         pass
 
@@ -434,6 +458,7 @@ def _finish(
     log: Path,
     out: Path | None,
     result_file: Path | None = None,
+    watcher: StepWatcher | None = None,
 ) -> AttemptResult:
     score: float | None = None
     metrics: dict[str, Any] = {}
@@ -443,7 +468,10 @@ def _finish(
             payload = json.loads(result_file.read_text())
         except (OSError, ValueError):
             payload = None
-    if error is None:
+    halted = None
+    if watcher is not None and error is None and (result.outcome == "halted" or (payload or {}).get("halted")):
+        halted = watcher.halted_record(seconds)
+    if halted is None and error is None:
         if status is None:
             error = "the objective process could not be reaped after SIGKILL"
         elif payload is not None and not payload.get("ok"):
@@ -454,14 +482,18 @@ def _finish(
                 error = _exit_reason(status) if code < 0 else f"the command exited with status {code}"
             else:
                 try:
-                    score, metrics = score_of_stdout(_read_text(out), task.metric)
+                    score, metrics = score_of_stdout(without_marks(_read_text(out)), task.metric)
                 except BadScore as exc:
                     error = f"bad result: {exc}"
         elif payload is not None:
             score, metrics = float(payload["score"]), dict(payload.get("metrics") or {})
         else:
             error = _exit_reason(status)
-    if error is None and score is not None:
+    steps = watcher.records if watcher is not None else []
+    if halted is not None:
+        final = halted
+        result.outcome = "halted"
+    elif error is None and score is not None:
         final = record("scored", trial=task.trial, attempt=task.attempt, score=score, metrics=metrics, seconds=round(seconds, 6))
         result.outcome = "scored"
     else:
@@ -474,7 +506,7 @@ def _finish(
         result.records = [started, final]
         result.written = True
     else:
-        result.records = [started, final]
+        result.records = [started, *steps, final]
         result.log_text = _read_log(log, out)
     return result
 

@@ -28,6 +28,8 @@ import yaml
 
 from forebear.core._yaml import Doc as _Doc
 from forebear.core._yaml import read_yaml as _read_yaml
+from forebear.core.halting import KEYS as _STOPPING
+from forebear.core.halting import Stopping, parse_stopping
 from forebear.core.space import Param, Space
 
 MAX_SPEC_BYTES = 1 << 20  # a spec is a page of YAML; 1 MiB leaves room and stops runaway files
@@ -132,6 +134,7 @@ class Spec:
     root: Path | None = None  # the folder relative paths resolve against
     notes: tuple[str, ...] = ()
     raw: Mapping[str, Any] = field(default_factory=dict, repr=False, compare=False)
+    stopping: Stopping = field(default_factory=Stopping)
 
     @property
     def base_dir(self) -> Path:
@@ -150,7 +153,7 @@ class Spec:
 # validation helpers
 
 
-_TOP = ("name", "objective", "space", "budget", "history", "cluster", "resources", "logbook", "lock", "lock_lifetime", "seed")
+_TOP = ("name", "objective", "space", "budget", "history", "cluster", "resources", "logbook", "lock", "lock_lifetime", "seed", "stopping")
 _OBJECTIVE = ("call", "command", "minimize", "maximize")
 _BUDGET = tuple(DEFAULTS["budget"])
 _PARAM = ("float", "int", "categories", "log", "default")
@@ -543,6 +546,7 @@ def _build(data: Any, doc: _Doc, base: Path, source: Path | None) -> Spec:
     budget = _budget(doc, data.get("budget"), notes)
     history = _history(doc, data.get("history"), base)
     cluster = _cluster(doc, data.get("cluster"), base)
+    stopping = parse_stopping(doc, data.get("stopping"), DEFAULTS["stopping"])
     res = data.get("resources", DEFAULTS["resources"]) or {}
     if not isinstance(res, dict) or not all(isinstance(k, str) and _is_number(v) and v > 0 for k, v in res.items()):
         doc.error(("resources",), "must map resource names to positive numbers, e.g. {GPU: 1}")
@@ -566,7 +570,7 @@ def _build(data: Any, doc: _Doc, base: Path, source: Path | None) -> Spec:
     if not isinstance(seed, int) or isinstance(seed, bool) or seed < 0:
         doc.error(("seed",), f"must be a whole number >= 0, got {_describe(seed)}")
         seed = 0
-    if doc.errors or objective is None or space is None or budget is None or history is None or cluster is None:
+    if doc.errors or objective is None or space is None or budget is None or history is None or cluster is None or stopping is None:
         raise SpecError(doc.errors or ["spec: invalid"])
     return Spec(
         name=name,
@@ -584,6 +588,7 @@ def _build(data: Any, doc: _Doc, base: Path, source: Path | None) -> Spec:
         root=base,
         notes=tuple(notes),
         raw=data,
+        stopping=stopping,
     )
 
 
@@ -598,4 +603,5 @@ def accepted_keys() -> dict[str, tuple[str, ...]]:
         "cluster": _CLUSTER,
         "cluster.local": _LOCAL,
         "cluster.tls": _TLS,
+        "stopping": _STOPPING,
     }

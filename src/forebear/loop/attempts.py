@@ -41,6 +41,7 @@ class Attempts:
     logs: Path
     token: str
     session: str
+    halting: Any
     _dispatch: Any
 
     # -- submitting -----------------------------------------------------------
@@ -59,6 +60,7 @@ class Attempts:
         attempt = self.book.attempts.get(tid, 0) + 1
         self.book.attempts[tid] = attempt
         retry_left = self.book.charged.get(tid, 0) < spec.budget.retries
+        key = f"{KEY_PREFIX}{spec.name}-{self.session}-{tid}-{attempt}"
         task = AttemptTask(
             search=spec.name,
             trial=tid,
@@ -75,8 +77,8 @@ class Attempts:
             token=self.token,
             cwd=str(spec.base_dir),
             retryable=spec.budget.retry_errors and retry_left,
+            **self.halting.task_fields(key),
         )
-        key = f"{KEY_PREFIX}{spec.name}-{self.session}-{tid}-{attempt}"
         fut = self._dispatch.submit(run_attempt, task, key=key, resources=spec.resources)
         self.inflight[fut] = (tid, attempt, {"submitted": time.monotonic()})
         self.book.state[tid] = "running"
@@ -99,6 +101,12 @@ class Attempts:
 
     # -- collecting -----------------------------------------------------------
 
+    def _drain_steps(self) -> None:
+        """Hand the intermediate scores that arrived to the stopping rule (:mod:`forebear.loop.halting`)."""
+        running = {tid: (att, str(fut.key)) for fut, (tid, att, _) in self.inflight.items()}
+        for line in self.halting.drain(running):
+            self.say(line)  # type: ignore[attr-defined]
+
     def _collect(self, fut: Any) -> str | None:
         """Record what a finished future came to; returns a line for the progress display."""
         entry = self.inflight.pop(fut, None)
@@ -113,6 +121,7 @@ class Attempts:
                 event = self._lost(tid, attempt, "worker", "the attempt's task was cancelled by the cluster")
             else:
                 event = self._result(res)
+                self.halting.ended(str(fut.key), tid, res.outcome, self.book.scores.get(tid))
         elif fut.status == "cancelled":
             event = self._lost(tid, attempt, "worker", "the cluster dropped the attempt's task")
         else:
@@ -131,7 +140,7 @@ class Attempts:
         tid, attempt = res.trial, res.attempt
         if not res.written:
             if res.records:
-                self.logbook.append_many(res.records)
+                self.logbook.append_many(self.halting.unwritten(res.records))
             if res.log_text is not None and res.log_name:
                 _write_private(self.logs / res.log_name, res.log_text)
         if res.outcome == "scored":
@@ -139,6 +148,10 @@ class Attempts:
             self.book.state[tid] = "scored"
             self.book.scores[tid] = score
             return f"trial {tid} scored {score:.6g}"
+        if res.outcome == "halted":
+            final = res.records[-1]
+            self.book.state[tid] = "halted"
+            return f"trial {tid} halted at step {final.get('step')} with {float(final['score']):.6g}"
         if res.outcome == "failed":
             final = res.records[-1] if res.records else {}
             first_line = (res.error or "").split("\n", 1)[0]
@@ -165,7 +178,10 @@ class Attempts:
         if not self.shared:
             return self._lost(tid, attempt, "worker", why)  # the logbook cannot tell: charge the retry
         mine = [r for r in self.logbook.records() if r.get("trial") == tid and r.get("attempt") == attempt]
-        final = next((r for r in mine if r.get("kind") in ("scored", "failed")), None)
+        final = next((r for r in mine if r.get("kind") in ("scored", "failed", "halted")), None)
+        if final is not None and final["kind"] == "halted":
+            self.book.state[tid] = "halted"
+            return f"trial {tid} halted at step {final.get('step')} (its worker died after recording it)"
         if final is not None and final["kind"] == "scored":
             self.book.state[tid] = "scored"
             self.book.scores[tid] = float(final["score"])

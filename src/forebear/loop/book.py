@@ -73,4 +73,4 @@ class Book:
 
     @property
     def finished(self) -> int:
-        return sum(1 for s in self.state.values() if s in ("scored", "failed"))
+        return sum(1 for s in self.state.values() if s in ("scored", "failed", "halted"))

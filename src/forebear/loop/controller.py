@@ -37,6 +37,7 @@ from forebear.core.spec import Spec
 from forebear.engine.proposer import Observation, Proposer
 from forebear.loop.attempts import Attempts
 from forebear.loop.book import Book, SearchResult
+from forebear.loop.halting import Halting
 from forebear.loop.proposing import ProposalEngine
 from forebear.loop.resume import SpecChanged, search_record, spec_changes
 from forebear.loop.stopping import Stop, deadline
@@ -129,6 +130,7 @@ class Controller(Attempts):
         self._exhausted = False
         self._ac: as_completed | None = None
         self._next_resource_check = time.monotonic() + RESOURCE_CHECK_EVERY
+        self.halting = Halting(spec, self.logbook, self.session, self.say)
 
     # -- output ---------------------------------------------------------------
 
@@ -245,6 +247,9 @@ class Controller(Attempts):
         recs = self._reconcile(table)
         if recs:
             self.logbook.append_many(recs)
+        self.halting.replay(self.logbook.records())
+        assert self._dispatch is not None
+        self.halting.listen(self._dispatch.client, lambda: self._wake(None))
         if self._display is not None:
             self.progress = self._display(budget.trials, metric=spec.objective.metric, quiet=self.quiet, done=self.book.finished)
         ends = deadline(budget.wall_time)
@@ -262,6 +267,7 @@ class Controller(Attempts):
                     self.say(f"wall time {budget.wall_time:g} s reached: cancelling {len(self.inflight)} running attempt(s)")
                 if self.stop.cancel and self.inflight:
                     self._cancel_all()
+                self._drain_steps()
                 if self.stop.reason is None:
                     self._harvest()
                     self._fill(ac)
@@ -301,6 +307,7 @@ class Controller(Attempts):
                 pass
             raise
         finally:
+            self.halting.close()
             if self.handle_signals:
                 signal.signal(signal.SIGINT, previous)
             if self.progress is not None:
@@ -326,6 +333,7 @@ class Controller(Attempts):
         self.logbook.append(record("closed", **fields))
         self.say(
             f"search {self.spec.name} closed ({reason}): {table.counts()['scored']} scored, {table.counts()['failed']} failed"
+            + (f", {table.counts()['halted']} halted" if table.counts().get("halted") else "")
             + (f"; best trial {best.trial}: {self.spec.objective.metric} = {best.score:.6g}" if best else "; nothing scored")
         )
         return SearchResult.from_table(table, self.spec.logbook, reason)

@@ -35,6 +35,8 @@ def budget_dict(spec: Spec) -> dict[str, Any]:
 
 
 def search_record(spec: Spec) -> dict[str, Any]:
+    # The stopping section is an optional field, only present when a spec has one that does something.
+    extra = {"stopping": spec.stopping.to_dict()} if spec.stopping.active or spec.stopping.partial_counts else {}
     return record(
         "search",
         name=spec.name,
@@ -43,6 +45,7 @@ def search_record(spec: Spec) -> dict[str, Any]:
         objective=spec.objective.to_dict(),
         seed=spec.seed,
         budget=budget_dict(spec),
+        **extra,
     )
 
 
@@ -65,6 +68,11 @@ def spec_changes(header: Mapping[str, Any], spec: Spec, extend: bool) -> tuple[l
     for name in new_space:
         if name not in old_space:
             changes.append(f"space.{name}: added")
+    # The rule may change on resume (it decides only what comes next); whether partial scores count
+    # decides what ``best`` returns from the whole logbook, so it may not.
+    old_partial = bool((header.get("stopping") or {}).get("partial_counts"))
+    if old_partial != spec.stopping.partial_counts:
+        changes.append(f"stopping.partial_counts: {str(old_partial).lower()} -> {str(spec.stopping.partial_counts).lower()}")
     if not changes and header.get("spec_hash") not in (None, spec.hash()):
         changes.append(f"spec hash {header.get('spec_hash')} -> {spec.hash()}")
     grew = False

@@ -27,9 +27,11 @@ from typing import Any
 import filelock
 
 VERSION = 1
-KINDS = ("search", "proposed", "started", "scored", "failed", "lost", "closed")
-STATES = ("queued", "running", "scored", "failed")
-TERMINAL = ("scored", "failed")
+# ``step`` (an intermediate score) and ``halted`` (a trial stopped early) came with early stopping;
+# a reader that predates them counts them as unknown and loses nothing it knew how to read.
+KINDS = ("search", "proposed", "started", "scored", "failed", "lost", "closed", "step", "halted")
+STATES = ("queued", "running", "scored", "failed", "halted")
+TERMINAL = ("scored", "failed", "halted")
 MAX_RECORD_BYTES = 1 << 20  # one record; error tails and metrics are trimmed well below this
 
 
@@ -317,7 +319,7 @@ class Attempt:
     pid: int | None = None
     started_at: float | None = None
     ended_at: float | None = None
-    outcome: str = "running"  # running, scored, failed, lost
+    outcome: str = "running"  # running, scored, failed, lost, halted
     detail: str | None = None
 
 
@@ -341,6 +343,16 @@ class Trial:
     started_at: float | None = None
     finished_at: float | None = None
     attempts: list[Attempt] = field(default_factory=list)
+    curves: dict[int, list[tuple[int, float]]] = field(default_factory=dict)  # attempt -> [(step, score)]
+    step: int | None = None  # halted: the step of the last intermediate score (``score`` is that score)
+
+    @property
+    def curve(self) -> list[tuple[int, float]]:
+        """The intermediate scores of the attempt that went furthest (the last one on ties)."""
+        if not self.curves:
+            return []
+        best = max(self.curves, key=lambda a: (len(self.curves[a]), a))
+        return self.curves[best]
 
     @property
     def terminal(self) -> bool:
@@ -363,6 +375,7 @@ class Trial:
             "model": self.model,
             "attempts": len(self.attempts),
             "error": self.error,
+            **({"step": self.step} if self.state == "halted" else {}),
         }
 
 
@@ -393,9 +406,13 @@ class TrialTable:
         return [t for t in self.trials.values() if t.state == state]
 
     def counts(self) -> dict[str, int]:
+        """Trials by state; ``halted`` is listed when the search has a stopping rule or a halted trial."""
         out = dict.fromkeys(STATES, 0)
         for t in self.trials.values():
             out[t.state] += 1
+        stopping = (self.header or {}).get("stopping") or {}
+        if not out["halted"] and not (isinstance(stopping, Mapping) and stopping.get("rule", "none") != "none"):
+            del out["halted"]  # a search without early stopping reads as it did before the state existed
         return out
 
     @property
@@ -405,17 +422,25 @@ class TrialTable:
     def scored(self) -> list[Trial]:
         return [t for t in self.trials.values() if t.state == "scored"]
 
+    @property
+    def partial_counts(self) -> bool:
+        """True when the search's spec lets a halted trial's last intermediate score count as its score."""
+        stopping = (self.header or {}).get("stopping") or {}
+        return bool(stopping.get("partial_counts")) if isinstance(stopping, Mapping) else False
+
+    def rankable(self) -> list[Trial]:
+        """Scored trials, and halted ones when partial scores count."""
+        states = ("scored", "halted") if self.partial_counts else ("scored",)
+        return [t for t in self.trials.values() if t.state in states and finite(t.score)]
+
     def best(self) -> Trial | None:
-        """The best scored trial in the search's sense (lowest trial id on ties)."""
-        scored = self.scored()
-        if not scored:
-            return None
-        sign = -1.0 if self.sense == "maximize" else 1.0
-        return min(scored, key=lambda t: (sign * float(t.score), t.trial))  # type: ignore[arg-type]
+        """The best scored trial in the search's sense (lowest trial id on ties); never a halted one unless partial scores count."""
+        ranked = self.ranked()
+        return ranked[0] if ranked else None
 
     def ranked(self) -> list[Trial]:
         sign = -1.0 if self.sense == "maximize" else 1.0
-        return sorted(self.scored(), key=lambda t: (sign * float(t.score), t.trial))  # type: ignore[arg-type]
+        return sorted(self.rankable(), key=lambda t: (sign * float(t.score), t.trial))  # type: ignore[arg-type]
 
     def __iter__(self) -> Iterator[Trial]:
         return iter(sorted(self.trials.values(), key=lambda t: t.trial))
@@ -501,6 +526,19 @@ def _fold(records: Iterable[Mapping[str, Any]]) -> TrialTable:
             else:
                 t.state = "failed"
                 t.finished_at = at
+        elif kind == "step":
+            _step(t, attempt_no, rec, table)
+        elif kind == "halted":
+            if t.terminal:
+                table.duplicates += 1
+                continue
+            att.outcome, att.ended_at = "halted", at
+            t.state = "halted"
+            t.score, t.step = rec.get("score"), rec.get("step")
+            t.metrics = dict(rec.get("metrics") or {})
+            t.seconds = rec.get("seconds")
+            t.finished_at = at
+            t.error = None
         elif kind == "lost":
             if att.outcome == "running":
                 att.outcome, att.ended_at, att.detail = "lost", at, rec.get("reason")
@@ -508,6 +546,21 @@ def _fold(records: Iterable[Mapping[str, Any]]) -> TrialTable:
                 t.state = "queued"
                 t.error = f"attempt {attempt_no} lost ({rec.get('reason')})"
     return table
+
+
+def _step(t: Trial, attempt: int, rec: Mapping[str, Any], table: TrialTable) -> None:
+    """Add one intermediate score to the attempt's curve; a step already recorded is a duplicate."""
+    step, score = rec.get("step"), rec.get("score")
+    if not isinstance(step, int) or isinstance(step, bool) or not finite(score):
+        table.unknown += 1
+        return
+    curve = t.curves.setdefault(attempt, [])
+    if any(s == step for s, _ in curve):
+        table.duplicates += 1
+        return
+    curve.append((step, float(score)))
+    if len(curve) > 1 and curve[-2][0] > step:
+        curve.sort()
 
 
 def _attempt(t: Trial, n: int) -> Attempt:

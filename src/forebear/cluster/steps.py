@@ -1,0 +1,217 @@
+"""The attempt side of early stopping: read intermediate scores, record them, learn of a halt.
+
+A callable objective's note function appends its scores to a file in the
+attempt's scratch folder; a command objective prints marked lines on stdout::
+
+    forebear-step: 12 0.4187
+    forebear-step: 12 {"val_loss": 0.4187, "val_acc": 0.871}
+
+(the mark, the step, then a number or a JSON object with the spec's metric;
+the last line of stdout is still the final score). The runner polls a
+:class:`StepWatcher` while the attempt runs. Each new score becomes a ``step``
+record: appended to the logbook here when the worker shares its filesystem,
+kept for the attempt's result otherwise, and sent to the controller as a Dask
+event either way, since the controller decides from every trial's curve. Its
+decision comes back as a ``distributed.Event`` named for the attempt, which
+the watcher checks while scores arrive.
+"""
+
+from __future__ import annotations
+
+import json
+import time
+from pathlib import Path
+from typing import Any
+
+from forebear.cluster.child import BadScore, score_of
+from forebear.records.logbook import Logbook, record
+
+STEP_MARK = "forebear-step:"
+CHECK_EVERY = 0.5  # seconds between checks of the attempt's halt event while scores arrive
+CHECK_FOR = 30.0  # ... for this long after the last score: a decision takes a round trip to the controller
+READ_LIMIT = 1 << 20  # bytes of new output read per poll
+
+
+def parse_mark(line: str, metric: str) -> tuple[int, float, dict[str, Any]]:
+    """(step, score, metrics) of one marked stdout line (without its newline).
+
+    Raises
+    ------
+    BadScore
+        When the step is not a whole number >= 0 or the value is not a usable score.
+    """
+    body = line.strip()[len(STEP_MARK) :].strip()
+    head, _, rest = body.partition(" ")
+    try:
+        step = int(head)
+    except ValueError:
+        raise BadScore(f"{STEP_MARK} line: step {head!r} is not a whole number") from None
+    if step < 0:
+        raise BadScore(f"{STEP_MARK} line: step {step} is negative")
+    rest = rest.strip()
+    try:
+        value: Any = json.loads(rest)
+    except ValueError:
+        raise BadScore(f"{STEP_MARK} line: {rest[:60]!r} is not a number or a JSON object") from None
+    score, metrics = score_of(value, metric)
+    return step, score, metrics
+
+
+def without_marks(text: str) -> str:
+    """stdout without its marked lines, so the final score stays the last other line."""
+    return "\n".join(ln for ln in text.splitlines() if not ln.strip().startswith(STEP_MARK))
+
+
+class StepWatcher:
+    """Follows one attempt's intermediate scores (see the module docstring).
+
+    Parameters
+    ----------
+    task
+        The :class:`forebear.cluster.runner.AttemptTask`.
+    logbook
+        The shared logbook, or None when the controller writes the records.
+    scratch
+        The attempt's scratch folder (the callable's score file and halt file live there).
+    out
+        A command's stdout file, None for a callable.
+    log
+        The attempt's log; problems with marked lines are noted there.
+    """
+
+    def __init__(self, task: Any, logbook: Logbook | None, scratch: Path, out: Path | None, log: Path) -> None:
+        self.task = task
+        self.logbook = logbook
+        self.source = out if out is not None else scratch / "steps.jsonl"
+        self.halt_file = scratch / "halt"
+        self.log = log
+        self.records: list[dict[str, Any]] = []  # step records (all of them, written or not)
+        self.last: dict[str, Any] | None = None
+        self.halted = False
+        self._command = out is not None
+        self._offset = 0
+        self._buf = b""
+        self._last_step: int | None = None
+        self._last_seen = 0.0
+        self._next_check = 0.0
+        self._event: Any = None
+
+    # -- reading ------------------------------------------------------------
+
+    def _new_lines(self) -> list[str]:
+        try:
+            with open(self.source, "rb") as fh:
+                fh.seek(self._offset)
+                chunk = fh.read(READ_LIMIT)
+        except OSError:
+            return []
+        self._offset += len(chunk)
+        data = self._buf + chunk
+        lines = data.split(b"\n")
+        self._buf = lines.pop()
+        return [ln.decode("utf-8", errors="replace") for ln in lines]
+
+    def _parse(self, line: str) -> tuple[int, float, dict[str, Any]] | None:
+        if self._command:
+            if not line.strip().startswith(STEP_MARK):
+                return None
+            try:
+                step, score, metrics = parse_mark(line, self.task.metric)
+            except BadScore as exc:
+                self._note_problem(str(exc))
+                return None
+        else:
+            try:
+                entry = json.loads(line)
+                step, score, metrics = int(entry["step"]), float(entry["score"]), dict(entry.get("metrics") or {})
+            except (ValueError, KeyError, TypeError):
+                return None
+        if self._last_step is not None and step <= self._last_step:
+            self._note_problem(f"step {step} ignored: steps must increase (last was {self._last_step})")
+            return None
+        return step, score, metrics
+
+    def _note_problem(self, text: str) -> None:
+        try:
+            with open(self.log, "a", encoding="utf-8") as fh:
+                fh.write(f"forebear: {text}\n")
+        except OSError:
+            pass
+
+    # -- one poll -----------------------------------------------------------
+
+    def poll(self, final: bool = False) -> bool:
+        """Take in new scores; True when forebear has just decided to halt the attempt."""
+        lines = self._new_lines()
+        if final and self._buf:
+            lines.append(self._buf.decode("utf-8", errors="replace"))
+            self._buf = b""
+        fresh = []
+        for line in lines:
+            parsed = self._parse(line)
+            if parsed is None:
+                continue
+            step, score, metrics = parsed
+            self._last_step = step
+            rec = record("step", trial=self.task.trial, attempt=self.task.attempt, step=step, score=score, metrics=metrics)
+            fresh.append(rec)
+        if fresh:
+            self._last_seen = time.monotonic()
+            self.last = fresh[-1]
+            self.records.extend(fresh)
+            if self.logbook is not None:
+                self.logbook.append_many(fresh)
+            self._publish(fresh)
+        if final or self.halted or not self.task.halt_event or self.last is None:
+            return False
+        now = time.monotonic()
+        if now < self._next_check or now - self._last_seen > CHECK_FOR:
+            return False
+        self._next_check = now + CHECK_EVERY
+        if not self._halt_decided():
+            return False
+        self.halted = True
+        if not self._command:
+            self.halt_file.touch()  # the next note() call raises Halted
+        return True
+
+    def _publish(self, recs: list[dict[str, Any]]) -> None:
+        if not self.task.topic:
+            return
+        try:
+            from distributed.worker import get_worker
+
+            worker = get_worker()
+        except (ImportError, ValueError):
+            return  # not on a Dask worker (a direct call): nobody to tell
+        written = self.logbook is not None
+        for rec in recs:
+            worker.log_event(self.task.topic, {**rec, "written": written})
+
+    def _halt_decided(self) -> bool:
+        try:
+            if self._event is None:
+                from distributed import Event
+
+                self._event = Event(self.task.halt_event)
+            return bool(self._event.is_set())
+        except Exception:  # noqa: BLE001 - no scheduler to ask (a direct call, a lost connection): run on
+            return False
+
+    # -- the end ------------------------------------------------------------
+
+    def halted_record(self, seconds: float) -> dict[str, Any] | None:
+        """The attempt's ``halted`` record (its last intermediate score and step)."""
+        if self.last is None:
+            return None
+        t = self.task
+        return record(
+            "halted",
+            trial=t.trial,
+            attempt=t.attempt,
+            step=self.last["step"],
+            score=self.last["score"],
+            metrics=self.last["metrics"],
+            seconds=round(seconds, 6),
+        )
+
