@@ -42,24 +42,24 @@ def processes(target: Callable[..., Any], args: Sequence[tuple[Any, ...]], deadl
 
 
 class DrivenSearch:
-    """A controller's ``run()`` in a daemon thread, with a way to wait for a marker file meanwhile.
+    """``make().run()`` in a daemon thread (a controller made there installs no signal handlers).
 
     ``wait_for(path, deadline)`` fails when the marker does not appear in time or the
     controller raised; ``join(deadline)`` fails when the controller is still running or raised.
     """
 
-    def __init__(self, controller: Any) -> None:
+    def __init__(self, make: Callable[[], Any]) -> None:
         import threading
 
         self.result: list[Any] = []
         self.errors: list[BaseException] = []
-        self._controller = controller
+        self._make = make
         self.thread = threading.Thread(target=self._drive, daemon=True)
         self.thread.start()
 
     def _drive(self) -> None:
         try:
-            self.result.append(self._controller.run())
+            self.result.append(self._make().run())
         except BaseException as exc:  # noqa: BLE001 - surfaced by wait_for and join
             self.errors.append(exc)
 

@@ -112,7 +112,7 @@ def test_a_worker_killed_mid_curve_keeps_the_recorded_steps(tmp_path: Path, loop
     spec_dict = make_spec(tmp_path, loopback, {"call": "curve_objectives:slow_curve"}, steps=12)
     spec_dict["budget"]["trials"] = 1
     spec = load(spec_dict)
-    search = DrivenSearch(Controller(spec))
+    search = DrivenSearch(lambda: Controller(spec))
     mark = Path(loopback.env["FOREBEAR_TEST_SIGNAL"]) / "step-0-1-3"
     search.wait_for(mark, DEADLINE, "attempt 1 reaching step 3")
     time.sleep(0.5)  # the runner polls the score file every 0.2 s
