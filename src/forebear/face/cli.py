@@ -309,7 +309,7 @@ def demo(folder: str, quiet: bool) -> None:
 
 @main.group()
 def bench() -> None:
-    """Benchmarks that print figures (quality, overhead, logbook, proposal, faults)."""
+    """Benchmarks that print figures (quality, overhead, logbook, proposal, faults, stopping)."""
 
 
 def _bench_command(name: str, help_text: str, options: list[Callable[[Any], Any]]) -> None:
@@ -338,6 +338,12 @@ _bench_command("overhead", "Worker utilisation and per-trial overhead on a local
 _bench_command("quality", "Regret on transfer task families (leave one task out).", [
     click.option("--smoke", is_flag=True, help="One family, 3 held-out tasks, 2 seeds, 15 trials."),
     click.option("--out", "out_dir", default=None, type=click.Path(file_okay=False), help="Folder for plots and tables."),
+])
+_bench_command("stopping", "Worker time the stopping rules save on learning-curve families.", [
+    click.option("--families", default="mlp,pow3", show_default=True, help="Comma-separated: mlp (real training), pow3 (analytic)."),
+    click.option("--runs", default=10, show_default=True, type=click.IntRange(1, 1000), help="Held-out tasks (runs) per family."),
+    click.option("--trials", default=32, show_default=True, type=click.IntRange(2, 10000), help="Trials of the no-stopping search."),
+    click.option("--out", default=None, type=click.Path(dir_okay=False), help="Also write the figures to this JSON file."),
 ])
 _bench_command("faults", "Fault-injection campaign against a loopback cluster.", [
     click.option("--short", is_flag=True, help="The short version that CI runs."),

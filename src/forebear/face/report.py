@@ -64,7 +64,9 @@ def write_report(table: TrialTable, out_dir: Path, logbook: Path | None = None) 
     _save(_best_so_far(table), out_dir / PLOTS[0])
     _save(_timeline(table, now), out_dir / PLOTS[1])
     _save(_parameters(table, space), out_dir / PLOTS[2])
-    page = _page(table, space, logbook, now)
+    from forebear.face import curves
+
+    page = _page(table, space, logbook, now, curves.section(table, out_dir, _save, int(now * 1000)))
     target = out_dir / "report.html"
     _atomic_write(target, page.encode("utf-8"))
     return target
@@ -319,7 +321,7 @@ def _top_table(trials: Sequence[Trial], space: Space, metric: str) -> str:
     return "\n".join(out)
 
 
-def _page(table: TrialTable, space: Space, logbook: Path | None, now: float) -> str:
+def _page(table: TrialTable, space: Space, logbook: Path | None, now: float, extra: str = "") -> str:
     header = table.header or {}
     name = str(header.get("name") or "search")
     metric = table.metric or "score"
@@ -355,5 +357,6 @@ def _page(table: TrialTable, space: Space, logbook: Path | None, now: float) -> 
 <h2>The {TOP_N} best configurations</h2>
 {_top_table(table.ranked()[:TOP_N], space, metric)}
 {imgs}
+{extra}
 </body></html>
 """

@@ -1,0 +1,313 @@
+"""`forebear bench stopping`: worker time saved by the stopping rules, and how often they stop the best.
+
+Two learning-curve families, each a set of tasks of our own:
+
+* ``mlp`` (real training): scikit-learn's ``MLPClassifier`` (one hidden
+  layer) on the bundled digits, one ``partial_fit`` pass (an epoch of
+  minibatches) over the training rows per step, scored by the validation
+  log-loss after each step. A task is a data slice and a preprocessing of
+  our own: its own 900/500 train/validation rows, a subset of 48 of the 64
+  pixels and Gaussian noise of its own level on the training features.
+  Space: ``learning_rate_init`` (log), ``alpha`` (log), ``hidden`` units.
+* ``pow3`` (analytic): curves ``y(t) = c + a * t**(-alpha)`` (the pow3 form of
+  Domhan, Springenberg and Hutter, IJCAI 2015) whose asymptote ``c`` is a
+  shifted Branin surface over two parameters and whose rate ``alpha`` is set
+  by a third, so slow learners with good asymptotes exist; noise 0.01.
+
+Protocol of one run: a held-out task and a stream of random configurations
+(the run's seed). The reference search runs the first ``trials`` of them to
+the end on ``workers`` simulated workers; its best final score is the target.
+The same stream then runs under each rule (configurations after the first
+``trials`` are used only when needed) until a trial that ran to the end
+reaches the target. Worker time is counted in steps (every step of a family
+costs the same: one pass over the same data), so the ratio is
+"worker time to the reference's final regret / reference worker time". The
+rules are the ones the controller uses (:mod:`forebear.engine.halting`),
+applied as each simulated step finishes; the history rule's curves are
+full runs of 30 random configurations on each of 4 other tasks.
+"""
+
+from __future__ import annotations
+
+import json
+import statistics
+import time
+import warnings
+import zlib
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from forebear.bench.functions import branin
+from forebear.core.halting import Stopping
+from forebear.engine.halting import HalvingRule, make_rule
+from forebear.records.curves import CurveSet
+
+HISTORY_TASKS = 4
+HISTORY_CONFIGS = 30
+EVAL_TASK_BASE = 1000
+PIXELS = 48  # pixels of 64 a task keeps
+TRAIN_ROWS, VAL_ROWS = 900, 500  # of the 1797 digits
+BATCH = 300  # minibatch rows: three updates per pass  # evaluation tasks are seeded apart from the history tasks
+
+
+def _stable_seed(task: int, config: dict[str, Any]) -> int:
+    """A seed of (task, configuration) that is the same in every process (``hash`` of a str is not)."""
+    return zlib.crc32(json.dumps([task, config], sort_keys=True).encode())
+
+
+# --------------------------------------------------------------------------
+# families: config sampler, and curve(task, config) -> list of values for steps 1..steps
+
+
+@dataclass
+class Family:
+    name: str
+    steps: int
+    sample: Callable[[np.random.Generator], dict[str, Any]]
+    curve: Callable[[int, dict[str, Any]], Sequence[float]]
+
+
+def _mlp_family(steps: int = 27) -> Family:
+    from sklearn.datasets import load_digits
+    from sklearn.neural_network import MLPClassifier
+    from sklearn.preprocessing import StandardScaler
+
+    digits = load_digits()
+    X_all, y_all = digits.data.astype(float), digits.target
+    classes = np.arange(10)
+    tasks: dict[int, tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]] = {}
+
+    def task_data(task: int) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        if task not in tasks:
+            rng = np.random.default_rng(task)
+            order = rng.permutation(len(y_all))
+            train, val = order[:TRAIN_ROWS], order[TRAIN_ROWS : TRAIN_ROWS + VAL_ROWS]
+            pixels = np.sort(rng.choice(64, size=PIXELS, replace=False))
+            scaler = StandardScaler().fit(X_all[train][:, pixels])
+            Xt = scaler.transform(X_all[train][:, pixels])
+            Xt = Xt + rng.normal(0.0, rng.uniform(0.0, 0.8), size=Xt.shape)
+            Xv = scaler.transform(X_all[val][:, pixels])
+            tasks[task] = (Xt, y_all[train], Xv, y_all[val])
+        return tasks[task]
+
+    def sample(rng: np.random.Generator) -> dict[str, Any]:
+        return {
+            "learning_rate_init": float(10 ** rng.uniform(-4, -1)),
+            "alpha": float(10 ** rng.uniform(-5, 0)),
+            "hidden": int(round(2 ** rng.uniform(3, 6))),
+        }
+
+    def curve(task: int, config: dict[str, Any]) -> Sequence[float]:
+        Xt, yt, Xv, yv = task_data(task)
+        seed = _stable_seed(task, config) % 10_000
+        model = MLPClassifier(
+            hidden_layer_sizes=(config["hidden"],),
+            learning_rate_init=config["learning_rate_init"],
+            alpha=config["alpha"],
+            batch_size=BATCH,
+            random_state=seed,
+        )
+
+        def one_pass() -> float:
+            model.partial_fit(Xt, yt, classes=classes)  # one epoch of minibatches
+            return float(1.0 - model.score(Xv, yv))  # validation error
+
+        return Trained(steps, one_pass)
+
+    return Family("mlp", steps, sample, curve)
+
+
+class Trained(Sequence[float]):
+    """A curve trained step by step as the simulation asks for it (a halted trial trains no further)."""
+
+    def __init__(self, steps: int, one_pass: Callable[[], float]) -> None:
+        self.steps = steps
+        self._one_pass = one_pass
+        self._values: list[float] = []
+
+    def __len__(self) -> int:
+        return self.steps
+
+    def __getitem__(self, i: Any) -> Any:
+        if isinstance(i, slice):
+            return [self[j] for j in range(*i.indices(self.steps))]
+        if i < 0:
+            i += self.steps
+        while len(self._values) <= i:
+            self._values.append(self._one_pass())
+        return self._values[i]
+
+
+def _pow3_family(steps: int = 27) -> Family:
+    def sample(rng: np.random.Generator) -> dict[str, Any]:
+        return {f"x{i}": float(rng.uniform()) for i in range(3)}
+
+    def curve(task: int, config: dict[str, Any]) -> list[float]:
+        trng = np.random.default_rng(task)
+        shift = trng.uniform(-0.15, 0.15, size=2)
+        x = np.clip(np.array([config["x0"], config["x1"]]) - shift, 0.0, 1.0)
+        c = branin(x) / 300.0  # Branin on the unit square spans about 0.4 to 308: c is in about 0..1
+        alpha = 0.3 + 1.2 * config["x2"]
+        a = 1.0 + 0.5 * (1.0 - config["x2"])
+        noise = np.random.default_rng(_stable_seed(task, config))
+        t = np.arange(1, steps + 1, dtype=float)
+        return [float(v) for v in c + a * t**-alpha + 0.01 * noise.normal(size=steps)]
+
+    return Family("pow3", steps, sample, curve)
+
+
+FAMILIES: dict[str, Callable[[], Family]] = {"mlp": _mlp_family, "pow3": _pow3_family}
+_MADE: dict[str, tuple[Family, dict[tuple[int, int], Sequence[float]]]] = {}
+
+
+# --------------------------------------------------------------------------
+# the simulated search
+
+
+@dataclass
+class Outcome:
+    time: float  # worker steps until a finished trial reached the target (or until the stream ran out)
+    reached: bool
+    best_halted: bool  # the reference's best configuration was halted
+    halted: int
+
+
+def simulate(
+    curves: Callable[[int], Sequence[float]], n_stream: int, workers: int, rule: HalvingRule | None, target: float | None, best_index: int | None
+) -> tuple[Outcome, float]:
+    """Run configurations 0, 1, ... of the stream on ``workers``; returns the outcome and the best final score."""
+    nxt = 0
+    running: list[tuple[int, int] | None] = [None] * workers  # (config index, steps done)
+    used = 0
+    best = float("inf")
+    halted = 0
+    best_halted = False
+    while True:
+        for w in range(workers):
+            if running[w] is None and nxt < n_stream:
+                running[w] = (nxt, 0)
+                nxt += 1
+        if all(r is None for r in running):
+            break
+        for w in range(workers):
+            slot = running[w]
+            if slot is None:
+                continue
+            i, done = slot
+            values = curves(i)
+            done += 1
+            used += 1
+            value = values[done - 1]
+            if done == len(values):
+                running[w] = None
+                best = min(best, value)
+                if rule is not None:
+                    rule.finished(i, value)
+                if target is not None and value <= target:
+                    return Outcome(used, True, best_halted, halted), best
+                continue
+            if rule is not None and rule.observe(i, done, value) is not None:
+                running[w] = None
+                halted += 1
+                best_halted = best_halted or i == best_index
+                continue
+            running[w] = (i, done)
+    return Outcome(used, target is None, best_halted, halted), best
+
+
+def _history(family: Family, cache: dict[tuple[int, int], Sequence[float]]) -> list[CurveSet]:
+    sets = []
+    for h in range(HISTORY_TASKS):
+        rng = np.random.default_rng(10_000 + h)
+        cs = CurveSet(f"history-{h}", family.steps)
+        for j in range(HISTORY_CONFIGS):
+            key = (h, j)
+            if key not in cache:
+                cache[key] = family.curve(h, family.sample(rng))
+            else:
+                family.sample(rng)
+            cs.curves.append(list(enumerate(cache[key][:], start=1)))
+            cs.complete.append(True)
+        sets.append(cs)
+    return sets
+
+
+def run_family(name: str, runs: int, trials: int, workers: int, stopping: dict[str, Any]) -> dict[str, Any]:
+    """The protocol of the module docstring on one family; figures per rule."""
+    if name not in _MADE:
+        _MADE[name] = (FAMILIES[name](), {})
+    family, cache = _MADE[name]  # curves are kept between calls in one process: settings compare on the same runs
+    t0 = time.perf_counter()
+    sets = _history(family, cache)
+    rules = {r: Stopping(r, steps=family.steps, **stopping) for r in ("halving", "history")}
+    per_rule: dict[str, list[Outcome]] = {r: [] for r in rules}
+    stream = 3 * trials
+    for run in range(runs):
+        task = EVAL_TASK_BASE + run
+        rng = np.random.default_rng(run)
+        configs = [family.sample(rng) for _ in range(stream)]
+
+        def curves(i: int, task: int = task, configs: list[dict[str, Any]] = configs) -> Sequence[float]:
+            key = (task, i)
+            if key not in cache:
+                cache[key] = family.curve(task, configs[i])
+            return cache[key]
+
+        finals = [curves(i)[-1] for i in range(trials)]
+        best_index = int(np.argmin(finals))
+        reference, target = simulate(curves, trials, workers, None, None, None)
+        for r, st in rules.items():
+            outcome, _ = simulate(curves, stream, workers, make_rule(st, sets), target, best_index)
+            outcome.time = outcome.time / reference.time if outcome.reached else max(1.0, outcome.time / reference.time)
+            per_rule[r].append(outcome)
+    out: dict[str, Any] = {"family": name, "runs": runs, "trials": trials, "workers": workers, "steps": family.steps}
+    for r, outs in per_rule.items():
+        out[r] = {
+            "time_ratio_mean": round(statistics.fmean(o.time for o in outs), 3),
+            "time_ratio_max": round(max(o.time for o in outs), 3),
+            "reached": sum(o.reached for o in outs),
+            "best_stopped_runs": sum(o.best_halted for o in outs),
+            "best_stopped_share": round(sum(o.best_halted for o in outs) / len(outs), 3),
+            "halted_mean": round(statistics.fmean(o.halted for o in outs), 1),
+        }
+    out["seconds"] = round(time.perf_counter() - t0, 1)
+    return out
+
+
+def main(
+    families: Sequence[str] | str = ("mlp", "pow3"),
+    runs: int = 10,
+    trials: int = 32,
+    workers: int = 4,
+    min_step: int = 3,
+    eta: float = 3.0,
+    threshold: float = 0.05,
+    out: str | None = None,
+) -> dict[str, Any]:
+    """Figures for docs/benchmarks.md; with ``out``, also written there as JSON."""
+    if isinstance(families, str):
+        families = [f.strip() for f in families.split(",") if f.strip()]
+    unknown = [f for f in families if f not in FAMILIES]
+    if unknown:
+        msg = f"unknown family {unknown[0]!r}; families: {', '.join(FAMILIES)}"
+        raise ValueError(msg)
+    stopping = {"min_step": min_step, "eta": eta, "threshold": threshold}
+    result: dict[str, Any] = {"stopping": stopping}
+    from threadpoolctl import threadpool_limits
+
+    # One BLAS thread: the minibatches are small, and threads only fight over shared cores.
+    with threadpool_limits(limits=1), warnings.catch_warnings():
+        warnings.simplefilter("ignore", category=UserWarning)  # scikit-learn's notes on tiny minibatch fits
+        for name in families:
+            result[name] = run_family(name, runs, trials, workers, stopping)
+    if out:
+        Path(out).write_text(json.dumps(result, indent=2) + "\n")
+    return result
+
+
+if __name__ == "__main__":
+    print(json.dumps(main(), indent=2))
