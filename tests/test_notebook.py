@@ -1,0 +1,179 @@
+"""A Dask user's day: the caller's Client, a function of the notebook as the objective, a background search.
+
+The functions given as objectives are defined inside the tests, so no import
+path reaches them: they travel to the workers by value (cloudpickle), as a
+notebook's functions do.
+"""
+
+from __future__ import annotations
+
+import json
+import operator
+import threading
+import time
+import urllib.request
+from collections.abc import Iterator
+from pathlib import Path
+from typing import Any
+
+import pytest
+
+import forebear
+from forebear.cluster.shipping import ObjectiveError, name_of, why_unsure
+from forebear.core import spec as spec_mod
+from forebear.core.spec import SpecError
+from forebear.loop.resume import SpecChanged
+from forebear.records.logbook import ControllerLock, Logbook
+
+DEADLINE = 90.0  # seconds for a search step on a busy 2-core machine
+
+
+@pytest.fixture(scope="module")
+def client() -> Iterator[Any]:
+    """The caller's own client: a LocalCluster of two worker processes on loopback."""
+    from distributed import Client, LocalCluster
+
+    cluster = LocalCluster(
+        n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
+        dashboard_address="127.0.0.1:0", worker_dashboard_address=None,
+    )
+    c = Client(cluster)
+    try:
+        yield c
+    finally:
+        c.close()
+        cluster.close()
+
+
+def _spec(tmp_path: Path, name: str, trials: int, **extra: Any) -> dict[str, Any]:
+    return {
+        "name": name,
+        "objective": {"minimize": "loss"},
+        "space": {"x": {"float": [0.0, 1.0]}, "depth": {"int": [1, 4]}},
+        "budget": {"trials": trials, "batch": 2, "concurrency": 2},
+        "logbook": str(tmp_path / f"{name}.jsonl"),
+        "seed": 3,
+        **extra,
+    }
+
+
+def _until(check: Any, what: str, timeout: float = DEADLINE) -> None:
+    deadline = time.monotonic() + timeout
+    while not check():
+        if time.monotonic() > deadline:
+            raise AssertionError(f"not within {timeout:g} s: {what}")
+        time.sleep(0.1)
+
+
+# --------------------------------------------------------------------------
+# the spec and the name, without a cluster
+
+
+def test_an_objective_without_call_needs_a_function(tmp_path: Path) -> None:
+    data = _spec(tmp_path, "bare", 2)
+    with pytest.raises(SpecError, match=r"objective=fn\) needs only minimize or maximize"):
+        spec_mod.load(data)
+    loaded = spec_mod.load(data, function="mymod:train")
+    assert loaded.objective.to_dict() == {"function": "mymod:train", "minimize": "loss"}
+    data["objective"]["call"] = "mymod:train"
+    with pytest.raises(SpecError, match=r"objective.call: the objective is the function passed to forebear.run"):
+        spec_mod.load(data, function="mymod:train")
+
+
+def test_names_tell_what_they_can() -> None:
+    def inner(config: dict[str, Any]) -> float:
+        return 0.0
+
+    assert name_of(inner) == f"{__name__}:test_names_tell_what_they_can.<locals>.inner"
+    assert why_unsure(name_of(inner)) == "it is defined inside another function"
+    assert why_unsure("__main__:train") == "it is defined in a notebook or a script's __main__"
+    assert why_unsure(name_of(lambda c: 0.0)) == "it is a lambda"
+    assert why_unsure("mypkg.train:evaluate") is None
+    lock = threading.Lock()
+    with pytest.raises(ObjectiveError, match="cannot be shipped to the workers"):
+        forebear.run(_spec(Path("/nonexistent"), "unpicklable", 2), objective=lambda c: lock.locked())
+    with pytest.raises(ObjectiveError, match="must be a callable"):
+        forebear.run(_spec(Path("/nonexistent"), "not-callable", 2), objective=42)
+
+
+# --------------------------------------------------------------------------
+# on the caller's client
+
+
+def test_a_search_runs_on_the_callers_client_with_a_local_function(client: Any, tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    def evaluate(config: dict[str, Any]) -> dict[str, float]:
+        return {"loss": (config["x"] - 0.3) ** 2 + 0.01 * config["depth"], "depth": float(config["depth"])}
+
+    spec = _spec(tmp_path, "on-client", 4, cluster={"local": {"workers": 7}})
+    result = forebear.run(spec, client=client, objective=evaluate, quiet=False)
+    err = capsys.readouterr().err
+    assert result.counts["scored"] == 4 and result.best is not None
+    assert "the spec's cluster section is ignored" in err
+    # forebear left the caller's client and cluster as it found them.
+    assert client.status == "running" and client.submit(operator.add, 1, 2).result() == 3
+    assert len(client.scheduler_info()["workers"]) == 2
+    records = Logbook(tmp_path / "on-client.jsonl").records()
+    assert records[0]["objective"] == {"function": f"{__name__}:{evaluate.__qualname__}", "minimize": "loss"}
+    workers = set(client.scheduler_info()["workers"])
+    assert {r["worker"] for r in records if r["kind"] == "started"} <= workers
+    assert all(r["pid"] for r in records if r["kind"] == "started")  # each attempt ran in its own child process
+    # The search's page on the caller's dashboard, added to its running scheduler.
+    link = next(line.split("dashboard: ", 1)[1] for line in err.splitlines() if line.startswith("dashboard: "))
+    with urllib.request.urlopen(link.replace("/forebear/?", "/forebear/status.json?"), timeout=30) as resp:
+        assert json.load(resp)["counts"]["scored"] == 4
+    # Resuming with the same function says what the name cannot tell; another function is refused.
+    forebear.run(spec, client=client, objective=evaluate, quiet=False)
+    err = capsys.readouterr().err
+    assert "forebear cannot tell whether its code is the same (it is defined inside another function)" in err
+    assert "already complete" in err
+
+    def other(config: dict[str, Any]) -> float:
+        return 1.0
+
+    with pytest.raises(SpecChanged, match=r"evaluated the function .*evaluate, this run passes .*other"):
+        forebear.run(spec, client=client, objective=other)
+
+
+def test_a_failing_function_is_recorded_as_for_call(client: Any, tmp_path: Path) -> None:
+    def broken(config: dict[str, Any]) -> float:
+        if config["depth"] > 0:
+            raise RuntimeError("no data for this depth")
+        return 0.0
+
+    spec = _spec(tmp_path, "broken", 2)
+    spec["budget"]["trial_timeout"] = "60s"
+    result = forebear.run(spec, client=client, objective=broken)
+    assert result.counts["failed"] == 2 and result.best is None
+    failed = [r for r in Logbook(tmp_path / "broken.jsonl").records() if r["kind"] == "failed"]
+    assert failed and all("objective raised RuntimeError: no data for this depth" in r["error"] for r in failed)
+
+
+def test_the_background_handle_stops_a_search_cleanly(client: Any, tmp_path: Path) -> None:
+    def slow(config: dict[str, Any]) -> float:
+        import time as t
+
+        t.sleep(0.4)
+        return config["x"]
+
+    handle = forebear.start(_spec(tmp_path, "background", 40), client=client, objective=slow)
+    try:
+        assert isinstance(handle, forebear.RunningSearch)
+        _until(lambda: handle.status()["counts"]["scored"] >= 2, "two trials scored")
+        assert handle.state == "running" and not handle.done()
+        assert handle.best() is not None
+        shown = handle._repr_html_()
+        assert "<table" in shown and "running" in shown
+    finally:
+        result = handle.stop(timeout=DEADLINE)
+    assert result.closed == "interrupted"
+    table = forebear.load(tmp_path / "background.jsonl")
+    assert table.closed is not None and table.closed["reason"] == "interrupted"
+    assert Logbook(tmp_path / "background.jsonl").records()[-1]["kind"] == "closed"
+    assert not table.by_state("running")  # the running attempts finished before it closed
+    assert 2 <= table.counts()["scored"] < 40
+    assert handle.done() and handle.status()["state"] == "closed"
+    with ControllerLock(Logbook(tmp_path / "background.jsonl")):
+        pass  # the controller let go of the logbook
+    assert client.submit(operator.mul, 3, 4).result() == 12
+    assert "search result" in result._repr_html_() and "closed (interrupted)" in result._repr_html_()
+    assert "<strong>background</strong>" in table._repr_html_() and "closed (interrupted)" in table._repr_html_()
