@@ -229,13 +229,38 @@ routes: list[tuple[str, type, dict[str, Any]]] = [
 
 
 def page_link(client: Any, search: str) -> str | None:
-    """The search's page on the dashboard the client's scheduler serves, or None without one."""
+    """The search's page on the dashboard the client's scheduler serves, or None without one.
+
+    For a scheduler in this process (a LocalCluster) the address its HTTP server is bound
+    to; otherwise Dask's own dashboard link, which names the scheduler's host.
+    """
+    local = getattr(getattr(client, "cluster", None), "scheduler", None)
+    link = local_link(local, search) if local is not None else None
+    if link:
+        return link
     try:
         base = client.dashboard_link
     except Exception:  # noqa: BLE001 - no dashboard service, or the client cannot say
         return None
-    if not base:
+    return _link(base, search) if base else None
+
+
+def local_link(scheduler: Any, search: str) -> str | None:
+    """The search's page on a scheduler of this process, from the address its HTTP server is bound to."""
+    http = getattr(scheduler, "http_server", None)
+    host, port = getattr(http, "address", None), getattr(http, "port", None)
+    if not port:
         return None
+    if not host or host in ("0.0.0.0", "::"):
+        # Bound to every interface: name the host the scheduler itself is reached at.
+        from distributed.comm import get_address_host
+
+        host = get_address_host(scheduler.address)
+    host = f"[{host}]" if ":" in str(host) else host
+    return _link(f"http://{host}:{port}/status", search)
+
+
+def _link(base: str, search: str) -> str:
     url = urlsplit(base)
     path = url.path[: -len("status")] if url.path.endswith("/status") else url.path.rstrip("/") + "/"
     return urlunsplit((url.scheme, url.netloc, path + "forebear/", urlencode({"search": search}), ""))

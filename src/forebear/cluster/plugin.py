@@ -78,7 +78,7 @@ class SearchPlugin(SchedulerPlugin):
             self.controller.request_stop(cancel=True)
 
     def _main(self, scheduler: Any) -> None:
-        from forebear.cluster.dashboard import page_link
+        from forebear.cluster.dashboard import local_link
         from forebear.cluster.dispatch import Dispatch, install_fail_fast, security_for
         from forebear.loop.controller import Controller
         from forebear.loop.resume import SpecChanged
@@ -94,7 +94,7 @@ class SearchPlugin(SchedulerPlugin):
             client = Client(scheduler.address, security=security_for(spec.cluster) or scheduler.security, timeout="30s")
             dispatch = Dispatch(client, "scheduler", fail_fast=install_fail_fast(client, log.warning))
             log.warning("forebear: search %s started inside the scheduler; logbook %s", spec.name, spec.logbook)
-            link = page_link(client, spec.name)
+            link = local_link(scheduler, spec.name)
             if link:
                 log.warning("forebear: search %s: live page %s", spec.name, link)
             try:
