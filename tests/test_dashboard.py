@@ -13,7 +13,6 @@ import re
 import shutil
 import socket
 import subprocess
-import time
 import urllib.error
 import urllib.request
 from pathlib import Path
@@ -28,17 +27,14 @@ import forebear
 from forebear.cluster.page import live, page
 from forebear.face.cli import main
 from forebear.records.logbook import Logbook, fold, record
+from tests.process_helpers import until
 
 DEADLINE = 90.0
 CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser") or shutil.which("google-chrome")
 
 
 def _until(check: Any, what: str, timeout: float = DEADLINE) -> None:
-    deadline = time.monotonic() + timeout
-    while not check():
-        if time.monotonic() > deadline:
-            raise AssertionError(f"not within {timeout:g} s: {what}")
-        time.sleep(0.1)
+    until(check, what, timeout)
 
 
 def _dom(url: str, profile: Path, budget_ms: int = 500) -> str:

@@ -10,7 +10,6 @@ from __future__ import annotations
 import json
 import operator
 import threading
-import time
 import urllib.request
 from collections.abc import Iterator
 from pathlib import Path
@@ -24,6 +23,7 @@ from forebear.core import spec as spec_mod
 from forebear.core.spec import SpecError
 from forebear.loop.resume import SpecChanged
 from forebear.records.logbook import ControllerLock, Logbook
+from tests.process_helpers import until
 
 DEADLINE = 90.0  # seconds for a search step on a busy 2-core machine
 
@@ -58,11 +58,7 @@ def _spec(tmp_path: Path, name: str, trials: int, **extra: Any) -> dict[str, Any
 
 
 def _until(check: Any, what: str, timeout: float = DEADLINE) -> None:
-    deadline = time.monotonic() + timeout
-    while not check():
-        if time.monotonic() > deadline:
-            raise AssertionError(f"not within {timeout:g} s: {what}")
-        time.sleep(0.1)
+    until(check, what, timeout)
 
 
 # --------------------------------------------------------------------------
