@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import json
 import operator
+import sys
 import threading
 import urllib.request
 from collections.abc import Iterator
@@ -173,3 +174,27 @@ def test_the_background_handle_stops_a_search_cleanly(client: Any, tmp_path: Pat
     assert client.submit(operator.mul, 3, 4).result() == 12
     assert "search result" in result._repr_html_() and "closed (interrupted)" in result._repr_html_()
     assert "<strong>background</strong>" in table._repr_html_() and "closed (interrupted)" in table._repr_html_()
+
+
+def test_the_notebook_example_runs_on_the_callers_client(client: Any, tmp_path: Path) -> None:
+    import importlib.util
+
+    import cloudpickle
+
+    path = Path(__file__).resolve().parents[1] / "examples" / "notebook_client" / "greenhouse.py"
+    spec = importlib.util.spec_from_file_location("example_greenhouse", path)
+    assert spec is not None and spec.loader is not None
+    mod = importlib.util.module_from_spec(spec)
+    sys.modules["example_greenhouse"] = mod
+    try:
+        spec.loader.exec_module(mod)
+        # Loaded from a file path, the module is importable nowhere else: ship its functions by value,
+        # as a notebook's are (the documented cloudpickle switch for such modules).
+        cloudpickle.register_pickle_by_value(mod)
+        result = mod.main(client, trials=4, folder=tmp_path)
+    finally:
+        cloudpickle.unregister_pickle_by_value(mod)
+        del sys.modules["example_greenhouse"]
+    assert result.closed == "budget" and result.counts["scored"] == 4
+    assert 0.5 < result.best.score < 30.0  # litres per hour; the invented water use varies by about 40
+    assert client.status == "running"
