@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import json
 import operator
+import subprocess
 import sys
 import threading
 import urllib.request
@@ -198,3 +199,42 @@ def test_the_notebook_example_runs_on_the_callers_client(client: Any, tmp_path: 
     assert result.closed == "budget" and result.counts["scored"] == 4
     assert 0.5 < result.best.score < 30.0  # litres per hour; the invented water use varies by about 40
     assert client.status == "running"
+
+
+EXITING_KERNEL = """
+import sys, time
+import forebear
+from distributed import Client, LocalCluster
+
+def slow(config):
+    import time
+    time.sleep(0.5)
+    return config["x"]
+
+if __name__ == "__main__":
+    # Threads, not worker processes: quick to start; each attempt still runs in its own child process.
+    cluster = LocalCluster(n_workers=1, threads_per_worker=1, processes=False, dashboard_address="127.0.0.1:0")
+    client = Client(cluster)
+    spec = {"name": "exiting", "objective": {"minimize": "x"}, "space": {"x": {"float": [0, 1]}},
+            "budget": {"trials": 50, "batch": 1, "concurrency": 1}, "logbook": sys.argv[1]}
+    search = forebear.start(spec, client=client, objective=slow)
+    while search.status()["counts"]["scored"] < 1:
+        time.sleep(0.1)
+    # The script ends here with the search running, as a kernel that is shut down.
+"""
+
+
+def test_an_exiting_interpreter_closes_the_logbook_of_a_running_search(tmp_path: Path) -> None:
+    from tests.conftest import child_env
+
+    script = tmp_path / "kernel.py"
+    script.write_text(EXITING_KERNEL)
+    logbook = tmp_path / "exiting.jsonl"
+    done = subprocess.run([sys.executable, str(script), str(logbook)], env=child_env(), capture_output=True, text=True, timeout=180)
+    assert done.returncode == 0, done.stderr[-3000:]
+    records = Logbook(logbook).records()
+    closed = [i for i, r in enumerate(records) if r["kind"] == "closed"]
+    assert closed and records[closed[-1]]["reason"] == "interrupted", records[-3:]
+    # Only the cancelled attempt's own runner may still have written after the close (it ended as it was cancelled).
+    lost = {r["trial"] for r in records if r["kind"] == "lost" and r["reason"] == "interrupted"}
+    assert all(r.get("trial") in lost for r in records[closed[-1] + 1:]), records[closed[-1]:]

@@ -150,7 +150,6 @@ def start(
     return RunningSearch(ctl)
 
 
-@atexit.register
 def _stop_at_exit() -> None:
     # A notebook kernel that exits with a search running: stop it so the logbook gets its closed record.
     for search in list(_LIVE):
@@ -158,3 +157,14 @@ def _stop_at_exit() -> None:
             search._controller.request_stop(cancel=True)
     for search in list(_LIVE):
         search._done.wait(EXIT_WAIT)
+
+
+# Stop searches while the interpreter still runs threads' work: plain atexit callbacks run only
+# after threading's shutdown, by which time concurrent.futures executors (the proposer's, Dask's)
+# refuse new work and the search would end in an error instead of a closed record.
+# threading._register_atexit is the hook concurrent.futures itself uses for that stage.
+_register = getattr(threading, "_register_atexit", None)
+if _register is not None:
+    _register(_stop_at_exit)
+else:  # pragma: no cover - other Python implementations
+    atexit.register(_stop_at_exit)
