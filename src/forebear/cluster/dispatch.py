@@ -3,7 +3,9 @@
 Four kinds: ``local`` (an embedded LocalCluster whose every listener is on
 127.0.0.1), ``address`` (an existing scheduler, with mutual TLS through
 ``distributed.security.Security``), and ``slurm`` / ``pbs`` through
-dask-jobqueue. forebear's tasks must fail on the first worker death rather
+dask-jobqueue. :func:`wrap` takes a client the caller made instead
+(``forebear.run(spec, client=client)``), which forebear never closes.
+forebear's tasks must fail on the first worker death rather
 than be rerun silently by Dask (the controller records a ``lost`` attempt and
 retries it itself): on an embedded scheduler ``allowed-failures`` is 0; on a
 scheduler forebear does not own, a small scheduler plugin gives forebear's
