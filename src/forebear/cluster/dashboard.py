@@ -24,6 +24,7 @@ import os
 import threading
 import time
 from collections.abc import Callable
+from pathlib import Path
 from typing import Any
 from urllib.parse import urlencode, urlsplit, urlunsplit
 
@@ -32,12 +33,12 @@ from distributed.http.utils import RequestHandler, get_handlers
 from tornado.ioloop import IOLoop
 
 from forebear.cluster import page as page_mod
+from forebear.cluster.dispatch import KEY_PREFIX
 from forebear.records.logbook import Logbook, TrialTable, check_header
 from forebear.records.status import status_payload
 
 ROUTES_MODULE = "forebear.cluster.dashboard"
 PLUGIN_PREFIX = "forebear-page-"
-KEY_PREFIX = "forebear-"  # the controller's task keys: forebear-<search>-<session>-<trial>-<attempt>
 
 
 class SearchPage(SchedulerPlugin):
@@ -78,7 +79,7 @@ class SearchPage(SchedulerPlugin):
             if self._cache is not None and self._cache[0] == stamp:
                 return self._cache[1]
         table = Logbook(self.logbook).fold()
-        check_header(table, Logbook(self.logbook).path)
+        check_header(table, Path(self.logbook))
         with self._guard:
             self._cache = (stamp, table)
         return table
@@ -88,7 +89,7 @@ class SearchPage(SchedulerPlugin):
         out: dict[tuple[int, int], str] = {}
         if self.scheduler is None:
             return out
-        prefix = f"{KEY_PREFIX}{self.search}-"
+        prefix = f"{KEY_PREFIX}{self.search}-"  # keys: forebear-<search>-<session>-<trial>-<attempt>
         for ws in list(self.scheduler.workers.values()):
             for ts in list(ws.processing):
                 key = ts.key
