@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import json
 import operator
+import os
 import subprocess
 import sys
 import threading
@@ -144,6 +145,31 @@ def test_a_failing_function_is_recorded_as_for_call(client: Any, tmp_path: Path)
     assert result.counts["failed"] == 2 and result.best is None
     failed = [r for r in Logbook(tmp_path / "broken.jsonl").records() if r["kind"] == "failed"]
     assert failed and all("objective raised RuntimeError: no data for this depth" in r["error"] for r in failed)
+
+
+def test_a_function_is_isolated_and_timed_out_as_call_is(client: Any, tmp_path: Path) -> None:
+    def unruly(config: dict[str, Any]) -> float:
+        import os as o
+        import time as t
+
+        if o.environ["FOREBEAR_TRIAL"] == "0":
+            t.sleep(120)  # hangs past the trial timeout
+        o._exit(3)  # ends its own process, never the worker
+
+    spec = _spec(tmp_path, "unruly", 2)
+    spec["budget"].update(trial_timeout="2s", retries=0)
+    result = forebear.run(spec, client=client, objective=unruly)
+    assert result.counts["failed"] == 2
+    records = Logbook(tmp_path / "unruly.jsonl").records()
+    lost = [r for r in records if r["kind"] == "lost"]
+    assert [(r["trial"], r["reason"]) for r in lost] == [(0, "timeout")]
+    failed = {r["trial"]: r["error"] for r in records if r["kind"] == "failed"}
+    assert "no retries left" in failed[0] and "exited with status 3" in failed[1]
+    assert len(client.scheduler_info()["workers"]) == 2  # both workers survived
+    for r in records:
+        if r["kind"] == "started":
+            with pytest.raises(ProcessLookupError):
+                os.kill(r["pid"], 0)  # the attempt's child is gone
 
 
 def test_the_background_handle_stops_a_search_cleanly(client: Any, tmp_path: Path) -> None:
