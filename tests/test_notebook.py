@@ -133,6 +133,14 @@ def test_a_search_runs_on_the_callers_client_with_a_local_function(client: Any, 
         forebear.run(spec, client=client, objective=other)
 
 
+def test_a_call_objective_runs_on_the_callers_client_too(client: Any, tmp_path: Path) -> None:
+    spec = _spec(tmp_path, "call-on-client", 2)
+    spec["objective"] = {"call": "objectives:quadratic", "minimize": "loss"}
+    spec["space"] = {"x": {"float": [0.0, 1.0]}, "y": {"float": [-1.0, 1.0]}}
+    result = forebear.run(spec, client=client)
+    assert result.counts["scored"] == 2 and client.status == "running"
+
+
 def test_a_failing_function_is_recorded_as_for_call(client: Any, tmp_path: Path) -> None:
     def broken(config: dict[str, Any]) -> float:
         if config["depth"] > 0:
