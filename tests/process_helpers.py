@@ -75,3 +75,12 @@ class DrivenSearch:
         assert not self.thread.is_alive(), "the controller did not finish"
         assert not self.errors, self.errors
         return self.result[0]
+
+
+def until(check: Callable[[], Any], what: str, timeout: float) -> None:
+    """Poll ``check`` every 0.1 s until it is true; fail naming ``what`` after ``timeout`` seconds."""
+    deadline = time.monotonic() + timeout
+    while not check():
+        if time.monotonic() > deadline:
+            raise AssertionError(f"not within {timeout:g} s: {what}")
+        time.sleep(0.1)

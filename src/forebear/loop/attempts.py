@@ -27,7 +27,7 @@ class Attempts:
 
     It uses the controller's ``spec``, ``book``, ``logbook``, ``inflight``,
     ``retry_queue``, ``ready``, ``stop``, ``shared``, ``logs``, ``token``,
-    ``session`` and ``_dispatch``.
+    ``session``, ``function`` and ``_dispatch``.
     """
 
     spec: Any
@@ -42,6 +42,7 @@ class Attempts:
     token: str
     session: str
     halting: Any
+    function: bytes | None
     _dispatch: Any
 
     # -- submitting -----------------------------------------------------------
@@ -77,6 +78,8 @@ class Attempts:
             token=self.token,
             cwd=str(spec.base_dir),
             retryable=spec.budget.retry_errors and retry_left,
+            function=self.function,
+            function_name=spec.objective.function,
             **self.halting.task_fields(key),
         )
         fut = self._dispatch.submit(run_attempt, task, key=key, resources=spec.resources)
