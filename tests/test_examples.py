@@ -22,7 +22,7 @@ from forebear.records import history as history_mod
 
 ROOT = Path(__file__).resolve().parents[1]
 EXAMPLES = ROOT / "examples"
-FOLDERS = ("churn_history", "script_csv_history", "cluster_gpu")
+FOLDERS = ("churn_history", "script_csv_history", "cluster_gpu", "early_stopping")
 
 
 def _import_from(folder: Path, module: str):  # noqa: ANN202 - returns a module
