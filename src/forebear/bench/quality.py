@@ -29,7 +29,7 @@ from typing import Any
 
 import numpy as np
 
-from forebear.bench.families import Family, held_out, make_family
+from forebear.bench.families import HISTORY_KINDS, Family, held_out, make_family
 
 CHECKPOINTS = (5, 10, 25, 50)
 
@@ -39,7 +39,7 @@ class Method:
     """One compared method: how to propose, with which batch size."""
 
     name: str
-    kind: str  # "random", "lhs-random" or "proposer"
+    kind: str  # "random", "lhs-random", "proposer" or "peer" (bench/peers, built by its name)
     q: int = 1
     history: bool = False
     settings: Mapping[str, Any] = field(default_factory=dict)
@@ -60,6 +60,10 @@ METHODS: dict[str, Method] = {m.name: m for m in (
     Method("no-augment", "proposer", history=True, settings={"augment": False}),
     Method("no-fine-tune", "proposer", history=True, settings={"fine_tune": False}),
     Method("no-guard", "proposer", history=True, settings={"guard": False}),
+    # Peers from their papers (bench/peers): history warm start then plain GP, RGPE, and cold TPE.
+    Method("warmstart-gp", "peer", history=True),
+    Method("rgpe", "peer", history=True),
+    Method("tpe", "peer"),
 )}
 SMOKE_METHODS = ("random", "gp", "forebear-cold", "forebear-full")
 #: Size of the Latin hypercube before random search in ``lhs-random``.
@@ -81,6 +85,10 @@ class Protocol:
     first_seed: int = 0
     #: Extra Proposer settings for every proposer method (the default run uses none).
     proposer: Mapping[str, Any] = field(default_factory=dict)
+    #: What a history task holds: "sobol" (its design) or "searches" (a plain-GP search of it, families.py).
+    history_kind: str = "sobol"
+    #: History tasks per held-out task; None: every other task of the family.
+    history_tasks: int | None = None
 
     def __post_init__(self) -> None:
         unknown = [m for m in self.methods if m not in METHODS]
@@ -98,6 +106,12 @@ class Protocol:
             if getattr(self, name) < 1:
                 msg = f"{name} must be >= 1, got {getattr(self, name)}"
                 raise ValueError(msg)
+        if self.history_kind not in HISTORY_KINDS:
+            msg = f"history_kind must be one of {', '.join(HISTORY_KINDS)}, got {self.history_kind!r}"
+            raise ValueError(msg)
+        if self.history_tasks is not None and self.history_tasks < 1:
+            msg = f"history_tasks must be >= 1, got {self.history_tasks}"
+            raise ValueError(msg)
         if self.family_size < 2:
             msg = f"family_size must be >= 2 (one held out, at least one as history), got {self.family_size}"
             raise ValueError(msg)
@@ -110,14 +124,14 @@ SMOKE = Protocol(families=("branin",), tasks=3, seeds=2, trials=15, methods=SMOK
 # running one search
 
 
-_FAMILIES: dict[tuple[str, int, int], Family] = {}
+_FAMILIES: dict[tuple[Any, ...], Family] = {}
 
 
-def _family(name: str, size: int, points: int) -> Family:
-    # Built once per process: the tasks are deterministic in (name, size, points).
-    key = (name, size, points)
+def _family(name: str, size: int, points: int, kind: str = "sobol", history: int | None = None) -> Family:
+    # Built once per process: the tasks are deterministic in these arguments.
+    key = (name, size, points, kind, history)
     if key not in _FAMILIES:
-        _FAMILIES[key] = make_family(name, n_tasks=size, n_points=points)
+        _FAMILIES[key] = make_family(name, n_tasks=size, n_points=points, history_kind=kind, history_tasks=history)
     return _FAMILIES[key]
 
 
@@ -154,7 +168,12 @@ def search(
     else:
         history = family.history_for(index) if method.history else None
         kwargs = {**dict(settings or {}), **dict(method.settings)}
-        proposer = Proposer(space, history, seed=seed, cache_dir=cache_dir, **kwargs)
+        if method.kind == "peer":
+            from forebear.bench import peers
+
+            proposer = peers.make(method.name, space, history, seed=seed)
+        else:
+            proposer = Proposer(space, history, seed=seed, cache_dir=cache_dir, **kwargs)
         observed: list[Any] = []
         while len(observed) < trials:
             batch = proposer.propose(min(method.q, trials - len(observed)), observed)
@@ -201,7 +220,7 @@ def _job(args: tuple[str, int, int, int, Protocol, str | None]) -> dict[str, Any
         torch.set_num_threads(1)
     except ImportError:  # pragma: no cover - torch is a hard dependency
         pass
-    family = _family(fam_name, proto.family_size, proto.history_points)
+    family = _family(fam_name, proto.family_size, proto.history_points, proto.history_kind, proto.history_tasks)
     # Meta-training depends on the history and the deep-kernel settings only (its seed is
     # fixed), so jobs of one run may share a cache folder; entries are written atomically.
     cache = shared_cache or tempfile.mkdtemp(prefix="forebear-bench-")
@@ -227,7 +246,8 @@ def run(proto: Protocol, progress: bool = False, partial: Path | None = None) ->
     each finished job is also appended to that JSON-lines file, so a run cut short
     still leaves its finished jobs behind.
     """
-    families = {f: _family(f, proto.family_size, proto.history_points) for f in proto.families}
+    families = {f: _family(f, proto.family_size, proto.history_points, proto.history_kind, proto.history_tasks)
+                for f in proto.families}
     cache = tempfile.mkdtemp(prefix="forebear-bench-")
     jobs = [(f, i, s, proto.trials, proto, cache)
             for s in range(proto.first_seed, proto.first_seed + proto.seeds)
@@ -536,7 +556,8 @@ def merge(dirs: Sequence[str | Path], out_dir: str | Path) -> dict[str, Any]:
     tasks = max(len({r["task"] for r in results if r["family"] == f}) for f in families)
     proto = Protocol(families, tasks, seeds,
                      min(p["trials"] for p in protos), methods, first["family_size"], first["history_points"],
-                     first["workers"], first.get("first_seed", 0), first.get("proposer", {}))
+                     first["workers"], first.get("first_seed", 0), first.get("proposer", {}),
+                     first.get("history_kind", "sobol"), first.get("history_tasks"))
     return {"protocol": {"families": families, "methods": methods}, **write(results, proto, out_dir)}
 
 
@@ -575,6 +596,10 @@ def _cli(argv: Sequence[str] | None = None) -> None:
     ap.add_argument("--methods", nargs="+", default=list(d.methods))
     ap.add_argument("--family-size", type=int, default=d.family_size, help="Tasks per analytic family.")
     ap.add_argument("--history-points", type=int, default=d.history_points, help="Design points per history task.")
+    ap.add_argument("--history-kind", choices=HISTORY_KINDS, default=d.history_kind,
+                    help="History tasks as Sobol designs or as plain-GP searches of 20-50 trials (cached).")
+    ap.add_argument("--history-tasks", type=int, default=d.history_tasks,
+                    help="History tasks per held-out task (e.g. 3, 10, 30); default: every other task of the family.")
     ap.add_argument("--workers", type=int, default=d.workers, help="Processes.")
     ap.add_argument("--first-seed", type=int, default=d.first_seed, help="Seeds are first-seed .. first-seed + seeds - 1.")
     ap.add_argument("--out", default=None, help="Folder for curves.json, results.md and PNGs.")
@@ -608,7 +633,8 @@ def _cli(argv: Sequence[str] | None = None) -> None:
         return
     try:
         proto = SMOKE if ns.smoke else Protocol(tuple(ns.families), ns.tasks, ns.seeds, ns.trials, tuple(ns.methods),
-                                                  ns.family_size, ns.history_points, ns.workers, ns.first_seed, settings)
+                                                  ns.family_size, ns.history_points, ns.workers, ns.first_seed, settings,
+                                                  ns.history_kind, ns.history_tasks)
     except ValueError as exc:
         ap.error(str(exc))
     print(json.dumps(main(out_dir=ns.out, proto=proto, progress=True), indent=1))
