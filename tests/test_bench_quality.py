@@ -112,3 +112,21 @@ def test_cli_set_passes_proposer_settings_and_refuses_unknown_ones(capsys: pytes
                   "--family-size", "3", "--history-points", "16", "--set", "n_initial=3"])
     out = json.loads(capsys.readouterr().out)
     assert out["protocol"]["proposer"] == {"n_initial": 3}
+
+
+def test_peers_are_registered_and_history_options_reach_the_run(capsys: pytest.CaptureFixture[str]) -> None:
+    fam = analytic_family("branin", n_tasks=3, n_points=32, seed=0)
+    for name in ("warmstart-gp", "rgpe", "tpe"):
+        out = search(fam, 0, METHODS[name], seed=1, trials=5)
+        r = np.asarray(out["regret"])
+        assert r.shape == (5,) and np.all(np.diff(r) <= 0) and sum(out["sources"].values()) == 5
+        assert not quality._same_as_gp(METHODS[name], None)
+    assert METHODS["rgpe"].history and not METHODS["tpe"].history
+    with pytest.raises(ValueError, match="history_kind must be one of sobol, searches"):
+        Protocol(history_kind="grid")
+    with pytest.raises(ValueError, match="history_tasks must be >= 1"):
+        Protocol(history_tasks=0)
+    quality._cli(["--families", "branin", "--tasks", "1", "--seeds", "1", "--trials", "3", "--methods", "warmstart-gp",
+                  "--family-size", "3", "--history-points", "16", "--history-tasks", "1"])
+    proto = json.loads(capsys.readouterr().out)["protocol"]
+    assert proto["history_tasks"] == 1 and proto["history_kind"] == "sobol"

@@ -10,8 +10,11 @@ from forebear.bench.families import (
     ANALYTIC,
     DATA,
     analytic_family,
+    held_out,
     hgb_family,
+    make_family,
     read_table,
+    searched,
     unit_space,
 )
 from forebear.bench.metadata import COLUMNS, TASKS, design, hgb_space, score
@@ -77,6 +80,39 @@ def test_bad_family_arguments_name_the_problem() -> None:
         analytic_family("rosen")
     with pytest.raises(ValueError, match="n_tasks >= 2"):
         analytic_family("branin", n_tasks=1)
+
+
+def test_history_size_grows_the_family_but_keeps_the_held_out_tasks() -> None:
+    small = make_family("branin", n_tasks=3, n_points=16)
+    big = make_family("branin", n_tasks=3, n_points=16, history_tasks=4)
+    assert len(big.tasks) == 5 and held_out(big, 10) == [0, 1, 2]
+    # Task k is the same whatever the family's size, so runs with 3, 10 and 30 history tasks
+    # search the same held-out tasks.
+    assert [t.notes for t in big.tasks[:3]] == [t.notes for t in small.tasks]
+    assert [t.name for t in big.history_for(2).tasks] == [f"branin-{i}" for i in (0, 1, 3, 4)]
+    big.history_tasks = 2
+    assert [t.name for t in big.history_for(0).tasks] == ["branin-1", "branin-2"]
+    with pytest.raises(ValueError, match="history_kind must be one of sobol, searches"):
+        make_family("branin", history_kind="grid")
+    with pytest.raises(ValueError, match="family hgb has 24 tasks: at most 23 history tasks, got 30"):
+        make_family("hgb", history_tasks=30)
+
+
+def test_searched_history_is_a_cached_gp_search_near_each_optimum(tmp_path) -> None:
+    fam = make_family("branin", n_tasks=3, n_points=64, history_kind="searches")
+    fam.search_trials, fam.cache_dir = (10, 10), tmp_path
+    hist = fam.history_for(0)
+    assert [len(t.y) for t in hist.tasks] == [10, 10]
+    for t, j in zip(hist.tasks, (1, 2), strict=True):
+        task = fam.tasks[j]
+        assert np.allclose(t.y, [task.objective(c) for c in t.configs])
+        # A search's points sit nearer the optimum than the Sobol design's (median regret).
+        assert np.median(task.regret(t.y)) < np.median(task.regret(task.y))
+    assert len(list(tmp_path.glob("branin-branin-*.json"))) == 2
+    # The second time it is read from the cache: the objective is not called again.
+    fam.tasks[1].objective = None  # type: ignore[assignment]
+    configs, y = searched(fam, 1)
+    assert configs == hist.tasks[0].configs and np.array_equal(y, hist.tasks[0].y)
 
 
 def test_unit_space_is_identity_encoded() -> None:

@@ -15,13 +15,21 @@ rules below from memory of the paper):
   in which model ``i`` has the lowest loss, ties broken uniformly at random;
 * weight dilution: a history model whose median loss exceeds the 95th
   percentile of the target model's losses is dropped (weight 0);
-* EI on the ensemble, below the best observed (standardised) target score.
+* EI on the ensemble.
 
 Our choices where the paper leaves room: the target model needs two scores;
 before that the ensemble is the history models with equal weights (every
 loss is zero when there are no pairs to rank, so the paper's tie rule gives
-equal weights too) and the incumbent is the lowest ensemble mean over a
-quasi-random set. Leave-one-out keeps the hyperparameters of the fit on all
+equal weights too). EI's incumbent is the ensemble's own lowest mean at the
+observed points (the plug-in incumbent used for EI on models that do not
+interpolate the data; Picheny, Wagner & Ginsbourger 2013, from memory), over
+a quasi-random set before any point is observed. Against the lowest observed
+score instead, EI stayed highest beside a point already observed (a history
+model is standardised on its own task's data, the target on a few clustered
+points, so the ensemble mean there sits far below the target's best): on
+hartmann3's first held-out task (seed 0) that search re-proposed one point
+for 20 trials, regret 0.22 at trial 25 against 0.041 with the plug-in
+incumbent. Leave-one-out keeps the hyperparameters of the fit on all
 target points (no refit per fold). Pending trials and points earlier in a
 batch enter by the kriging believer (``_gp.py``). History fits are kept per
 process (keyed by the task's data), so jobs that share history fit it once.
@@ -162,12 +170,10 @@ class RGPE(Peer):
         models = [*base, target] if target is not None else base
         weights = list(w) if target is not None else list(w[:-1])
         scorer = _gp.Ensemble(models, weights, 0.0)
-        if target is not None:
-            scorer.best = float(z.min())
-        else:
-            probe = qmc.Sobol(d=self.space.dim, scramble=True, seed=self._rng).random(1024)
-            with torch.no_grad():
-                scorer.best = float(scorer.moments(as_tensor(self.space.round_trip(probe)))[0].min())
+        # The plug-in incumbent: the ensemble's own lowest mean at the observed points (see above).
+        at = X if len(X) else self.space.round_trip(qmc.Sobol(d=self.space.dim, scramble=True, seed=self._rng).random(1024))
+        with torch.no_grad():
+            scorer.best = float(scorer.moments(as_tensor(at))[0].min())
         if pending:
             scorer = scorer.condition(as_tensor(self.encode(pending)))
         taken = np.vstack([X, self.encode(pending)]) if pending else X
