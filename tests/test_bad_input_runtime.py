@@ -258,7 +258,7 @@ def test_logbook_path_is_a_folder(tmp_path: Path) -> None:
 def test_logbook_with_garbage_lines_resumes_and_keeps_them(tmp_path: Path, shared_loopback: LoopbackCluster) -> None:
     """One run covers two rows: a logbook with garbage lines resumes, and a history of another space is noted."""
     from forebear.core.spec import load
-    from forebear.loop.controller import search_record
+    from forebear.loop.resume import search_record
 
     _earlier_logbook(tmp_path / "past" / "churn-3.jsonl", {"depth": {"int": [2, 12]}})
     spec = _spec_with(tmp_path, shared_loopback.address, history=["past/*.jsonl"], budget={"trials": 4, "batch": 2, "concurrency": 2})

@@ -13,7 +13,8 @@ import pytest
 import forebear
 from forebear.core.spec import load
 from forebear.face.progress import Progress
-from forebear.loop.controller import Controller, SpecChanged, spec_changes
+from forebear.loop.controller import Controller
+from forebear.loop.resume import SpecChanged, spec_changes
 from forebear.records.logbook import Logbook, LogbookBusy
 
 from .conftest import LoopbackCluster
@@ -115,7 +116,7 @@ def test_changed_spec_is_refused_with_the_changes(tmp_path: Path, shared_loopbac
 def test_spec_changes_rules(tmp_path: Path) -> None:
     base = {"objective": {"call": "m:f", "minimize": "loss"}, "space": {"x": {"float": [0, 1]}}, "budget": {"trials": 5, "batch": 2, "concurrency": 2}}
     s = load(base, base_dir=tmp_path)
-    from forebear.loop.controller import search_record
+    from forebear.loop.resume import search_record
 
     header = search_record(s)
     assert spec_changes(header, s, extend=False) == ([], False)

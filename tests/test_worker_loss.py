@@ -11,7 +11,8 @@ import psutil
 import pytest
 
 from forebear.core.spec import load
-from forebear.loop.controller import Controller, SearchResult
+from forebear.loop.book import SearchResult
+from forebear.loop.controller import Controller
 from forebear.records.logbook import Logbook
 
 from .conftest import LoopbackCluster

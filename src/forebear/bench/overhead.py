@@ -51,7 +51,7 @@ def timed_sleep(config: dict[str, Any]) -> float:
 
 def _search(folder: Path, name: str, trials: int, workers: int, median: float, sigma: float) -> dict[str, Any]:
     from forebear.cluster.runner import shutdown_servers
-    from forebear.loop.controller import run
+    from forebear.face.api import run
     from forebear.records.logbook import Logbook
 
     spec = {

@@ -77,7 +77,8 @@ class SearchPlugin(SchedulerPlugin):
 
     def _main(self, scheduler: Any) -> None:
         from forebear.cluster.dispatch import Dispatch, install_fail_fast, security_for
-        from forebear.loop.controller import Controller, SpecChanged
+        from forebear.loop.controller import Controller
+        from forebear.loop.resume import SpecChanged
         from forebear.records.logbook import LogbookBusy, LogbookMismatch
 
         spec = self.spec
@@ -109,7 +110,7 @@ class SearchPlugin(SchedulerPlugin):
 def detach(spec: Spec, *, extend: bool = False, quiet: bool = False) -> Any:
     """Register the search on the spec's remote scheduler and return without waiting for it."""
     from forebear.cluster.dispatch import ClusterError, insecure_warning, security_for
-    from forebear.loop.controller import SearchResult
+    from forebear.loop.book import SearchResult
 
     cl = spec.cluster
     if cl.kind != "address" or not cl.address:

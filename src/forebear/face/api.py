@@ -8,7 +8,8 @@ from collections.abc import Mapping
 from forebear.core import spec as spec_mod
 from forebear.core.spec import Spec
 from forebear.face.progress import Progress
-from forebear.loop.controller import Controller, SearchResult
+from forebear.loop.book import SearchResult
+from forebear.loop.controller import Controller
 
 
 def as_spec(spec: str | os.PathLike[str] | Mapping[str, object] | Spec) -> Spec:

@@ -115,9 +115,9 @@ def run_demo(folder: Path, plan: Plan = Plan(), quiet: bool = False) -> Outcome:
     """Run the whole demo in ``folder``; raises on failure (``main`` turns that into a message)."""
     from forebear.cluster.dispatch import connect
     from forebear.core import spec as spec_mod
+    from forebear.face.api import run
     from forebear.face.demo_forecast import evaluate
     from forebear.face.report import write_report
-    from forebear.loop.controller import run
     from forebear.records.logbook import Logbook
 
     started = time.monotonic()
