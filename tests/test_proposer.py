@@ -31,8 +31,8 @@ def mixed_score(c: dict) -> float:
 
 def test_cold_search_initial_then_model_and_never_repeats() -> None:
     p = Proposer(MIXED, seed=1)
-    first = p.propose(4, [])
-    assert [x.source for x in first] == ["initial"] * 4 and all(x.model is None for x in first)
+    first = p.propose(5, [])  # min(dim + 1, 10) with dim 4 (the categorical takes two coordinates)
+    assert [x.source for x in first] == ["initial"] * 5 and all(x.model is None for x in first)
     obs = [Observation(x.config, mixed_score(x.config)) for x in first]
     pending = [MIXED.sample(1, 7)[0]]
     nxt = p.propose(6, obs, pending=pending)

@@ -11,18 +11,19 @@ def test_waits_when_a_refit_is_short_next_to_a_trial() -> None:
     # Concurrency 1, a 60 s trial and a 1 s refit: waiting costs under 2% of the wall time.
     assert ahead(1, 60.0, 1.0) == 0
     assert ahead(1, 10.0, 10.0 * WAIT_WITHIN) == 0
-    # A refit a quarter of a trial: one configuration ready ahead keeps the worker busy.
-    assert ahead(1, 4.0, 1.0) == 1
+    # A refit half a trial: one configuration ready ahead keeps the worker busy.
+    assert ahead(1, 2.0, 1.0) == 1
 
 
 def test_waits_when_trials_are_short_next_to_a_refit() -> None:
-    # Proposing ahead would save at most a trial's time per round, under 10% here.
+    # Proposing ahead would save at most a trial's time per round, under 3% here.
     assert ahead(4, 0.05, 2.0) == 0
 
 
 def test_leads_by_the_completions_expected_during_one_refit() -> None:
-    assert ahead(8, 4.0, 1.0) == 2  # 8 workers, a refit a quarter of a trial: 2 finish meanwhile
+    assert ahead(8, 2.0, 1.0) == 4  # 8 workers, a refit half a trial: 4 finish meanwhile
     assert ahead(4, 1.0, 0.5) == 2
+    assert ahead(4, 4.0, 1.0) == 0  # a refit a quarter of a trial: waiting costs at most 25%
     assert ahead(4, 1.0, 3.0) == 4  # never more than the concurrency
 
 

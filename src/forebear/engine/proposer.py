@@ -276,7 +276,7 @@ class Proposer:
                 self._initial = self._design(k)
             out += self._fresh(self._initial or (), seen, min(n, room), "initial")
             scored = [o for o in obs if _finite(o.score)]
-            if len(out) < n and len(scored) >= (1 if self.use_meta else 2):
+            if len(out) < n and len(scored) >= self._enough(k):
                 out += self._model_batch(n - len(out), scored, fail, pend + [p.config for p in out], seen)
             elif len(out) < n:
                 # Too few scores for the model: more of the design, never random points.
@@ -288,6 +288,15 @@ class Proposer:
                     break
                 out += self._fresh(self.space.sample(n - len(out), self._rng), seen, n - len(out), "random")
         return out
+
+    def _enough(self, k: int) -> int:
+        """Scores the model needs before it proposes: one with a meta-trained model (its prior
+        carries the rest); without, the design's ``min(dim + 1, 10)`` (at least 2, at most ``k``),
+        so that design points still running are replaced by more of the design, not by a GP
+        fitted on two or three scores (docs/engine.md, "The asynchronous path")."""
+        if self.use_meta:
+            return 1
+        return max(2, min(k, self.space.dim + 1, 10))
 
     def _fresh(self, configs: Any, seen: set[bytes], limit: int, source: str) -> list[Proposal]:
         """Up to ``limit`` of ``configs`` not in ``seen`` (which they join), as proposals of ``source``."""
