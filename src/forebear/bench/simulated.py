@@ -150,10 +150,11 @@ def run(
 # the comparison that chose the lies and the schedule (docs/engine.md)
 
 VARIANTS: dict[str, dict[str, Any]] = {
-    # name: Proposer settings, plus "lead" (a forced schedule lead) and "sync" (synchronous rounds)
-    "posterior": {"pending_lie": "posterior"},
-    "max": {"pending_lie": "max"},
-    "min": {"pending_lie": "min"},
+    # name: Proposer settings, plus "lead" (a forced schedule lead; "ahead": ceil(concurrency * R / T),
+    # the lead the schedule takes when waiting would cost more than WAIT_WITHIN) and "sync"
+    "posterior": {"pending_lie": "posterior", "lead": "ahead"},
+    "max": {"pending_lie": "max", "lead": "ahead"},
+    "min": {"pending_lie": "min", "lead": "ahead"},
     "posterior-wait": {"pending_lie": "posterior", "lead": 0},
     "min-wait": {"pending_lie": "min", "lead": 0},
     "sync-batch-min": {"lie": "min", "sync": True},
@@ -178,6 +179,8 @@ def compare(families: Sequence[str], tasks: int, seeds: int, trials: int, concur
             for v in variants:
                 spec = dict(VARIANTS[v])
                 sync, lead = spec.pop("sync", False), spec.pop("lead", None)
+                if lead == "ahead":
+                    lead = max(1, math.ceil(c * (clock.refit_seconds or 0.0) / clock.trial_seconds))
                 rows = [search(fam, i, method, s, trials, cache_dir=None, settings=spec,
                                clock=None if sync else replace(clock, lead=lead))
                         for s in range(seeds) for i in range(tasks)]
