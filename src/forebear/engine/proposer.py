@@ -16,10 +16,8 @@ How a call is answered (docs/engine.md has the reasons and the figures):
    observed score. Pending configurations (running trials) enter under the
    ``pending_lie``, earlier points of the same round under the ``lie``.
    Source ``model``.
-3. While the model has too few scores and the design is used up, more of the
-   design (space-filling points far from everything proposed), source
-   ``initial``; uniform random points (source ``random``) only when neither
-   can offer a new configuration.
+3. While the model has too few scores: more of the design, source
+   ``initial``; random points (``random``) only when neither has a new one.
 
 The meta-trained state is cached on disk (``cache_dir``, default
 ``$FOREBEAR_CACHE`` or ``~/.cache/forebear``) as a ``state_dict`` of tensors,
@@ -29,12 +27,11 @@ loaded with ``torch.load(weights_only=True)``.
 
 from __future__ import annotations
 
-import contextlib
 import math
 import os
 import pickle
 import time
-from collections.abc import Iterator, Mapping, Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
@@ -45,6 +42,8 @@ import torch
 from forebear.core.space import Space
 from forebear.engine import acquisition
 from forebear.engine.cache import default_cache_dir, save_state
+from forebear.engine.runtime import finite as _finite
+from forebear.engine.runtime import threads as _threads
 from forebear.engine.surrogate.deep_kernel import MetaModel, Settings, cache_key
 from forebear.engine.surrogate.gp import Posterior, as_tensor, fit_gp
 from forebear.engine.surrogate.select import Choice, choose
@@ -406,25 +405,3 @@ class Proposer:
         Xl = np.vstack([X_ok, X_bad])
         labels = np.concatenate([np.ones(len(X_ok)), -np.ones(len(X_bad))])
         return fit_gp(Xl, labels, restarts=1, seed=self.seed, device=self.device).posterior
-
-
-@contextlib.contextmanager
-def _threads(n: int | None) -> Iterator[None]:
-    """Run with ``n`` torch threads, restoring the process-wide setting afterwards.
-
-    Small GP matrices gain nothing from more threads, and on a shared machine
-    extra threads spin and slow everything down.
-    """
-    old = torch.get_num_threads()
-    if n is None or n == old:
-        yield
-        return
-    torch.set_num_threads(n)
-    try:
-        yield
-    finally:
-        torch.set_num_threads(old)
-
-
-def _finite(x: Any) -> bool:
-    return isinstance(x, (int, float, np.floating)) and not isinstance(x, bool) and math.isfinite(float(x))
