@@ -16,6 +16,7 @@ to write. The runner never imports the surrogate.
 
 from __future__ import annotations
 
+import hashlib
 import json
 import os
 import re
@@ -70,6 +71,8 @@ class AttemptTask:
     token: str | None = None
     cwd: str | None = None
     retryable: bool = False  # the value of ``retryable`` in a ``failed`` record for an objective error
+    function: bytes | None = None  # a callable objective, cloudpickled (forebear.cluster.shipping)
+    function_name: str | None = None  # its module:qualified.name, for messages
 
 
 @dataclass
@@ -100,7 +103,7 @@ def log_name(trial: int, attempt: int) -> str:
 class _Server:
     """A :mod:`forebear.cluster.child` server process and its protocol pipes."""
 
-    def __init__(self, call: str | None, path: str | None, wait: float) -> None:
+    def __init__(self, call: str | None, path: str | None, wait: float, function: tuple[str, bytes] | None = None) -> None:
         # Run the file, not ``-m forebear.cluster.child``: the package's imports (numpy, scipy, yaml) would
         # add seconds to every server start, and the server needs only the standard library.
         argv = [sys.executable, _child.__file__]
@@ -108,12 +111,27 @@ class _Server:
             argv += ["--call", call]
         if path:
             argv += ["--path", path]
+        shipped = None
+        if function is not None:
+            # The callable's bytes go through a private file the server reads once at start.
+            shipped = Path(tempfile.mkdtemp(prefix="forebear-fn-")) / "objective.pkl"
+            fd = os.open(shipped, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o600)
+            try:
+                os.write(fd, function[1])
+            finally:
+                os.close(fd)
+            argv += ["--function", str(shipped), "--name", function[0]]
+            call = function[0]
         self.proc = subprocess.Popen(argv, stdin=subprocess.PIPE, stdout=subprocess.PIPE, close_fds=True)
         assert self.proc.stdin is not None and self.proc.stdout is not None
         self._in = self.proc.stdin
         self._out = self.proc.stdout.fileno()
         self._buf = b""
-        hello = self.read(wait)
+        try:
+            hello = self.read(wait)
+        finally:
+            if shipped is not None:
+                shutil.rmtree(shipped.parent, ignore_errors=True)
         if hello is None:
             self.close()
             raise RunnerError(f"the attempt process for {call or 'commands'} did not start within {wait:g} s")
@@ -160,14 +178,24 @@ _POOL: dict[tuple[str | None, str | None], list[_Server]] = {}
 _POOL_LOCK = threading.Lock()
 
 
-def _acquire(call: str | None, path: str | None, wait: float) -> _Server:
+def _acquire(call: str | None, path: str | None, wait: float, function: tuple[str, bytes] | None = None) -> _Server:
     with _POOL_LOCK:
         idle = _POOL.setdefault((call, path), [])
         while idle:
             server = idle.pop()
             if server.alive:
                 return server
-    return _Server(call, path, wait)
+    return _Server(None if function else call, path, wait, function)
+
+
+def _server_key(task: AttemptTask) -> tuple[str | None, tuple[str, bytes] | None]:
+    """The pool key of the server an attempt needs, and the shipped function it loads (if any)."""
+    if task.command:
+        return None, None
+    if task.function is not None:
+        name = task.function_name or "objective"
+        return f"function {name} {hashlib.sha256(task.function).hexdigest()[:16]}", (name, task.function)
+    return task.call, None
 
 
 def _release(server: _Server, call: str | None, path: str | None) -> None:
@@ -302,9 +330,9 @@ def _run(task: AttemptTask, worker: str, cancelled: Callable[[], bool], logbook:
     else:
         request.update(kind="call")
     result = AttemptResult(task.trial, task.attempt, "failed", worker=worker, log_name=name)
-    key_call = task.call if not task.command else None
+    key_call, function = _server_key(task)
     try:
-        server = _acquire(key_call, task.cwd, max(60.0, task.timeout or 0.0))
+        server = _acquire(key_call, task.cwd, max(60.0, task.timeout or 0.0), function)
     except RunnerError as exc:
         # The objective cannot be imported here: the attempt fails, it did not start anything.
         started = record("started", trial=task.trial, attempt=task.attempt, worker=worker, host=socket.gethostname(), pid=None)
