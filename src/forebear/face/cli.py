@@ -319,6 +319,7 @@ _bench_command("proposal", "Proposal latency and meta-training time.", [])
 _bench_command("overhead", "Worker utilisation and per-trial overhead on a local cluster.", [])
 _bench_command("quality", "Regret on transfer task families (leave one task out).", [
     click.option("--smoke", is_flag=True, help="One family, 3 held-out tasks, 2 seeds, 15 trials."),
+    click.option("--sync", is_flag=True, help="Synchronous rounds instead of the asynchronous mode (the default)."),
     click.option("--out", "out_dir", default=None, type=click.Path(file_okay=False), help="Folder for plots and tables."),
 ])
 _bench_command("faults", "Fault-injection campaign against a loopback cluster.", [

@@ -36,11 +36,12 @@ from forebear.cluster.dispatch import KEY_PREFIX, Dispatch, connect
 from forebear.cluster.runner import PROBE_NAME
 from forebear.cluster.shipping import ObjectiveError, pack
 from forebear.core.spec import Spec
-from forebear.engine.proposer import Observation, Proposer
+from forebear.engine.proposer import Proposer
 from forebear.loop.attempts import Attempts
 from forebear.loop.book import Book, SearchResult
-from forebear.loop.proposing import ProposalEngine
+from forebear.loop.proposing import ProposalEngine, Rounds
 from forebear.loop.resume import SpecChanged, function_note, search_record, spec_changes
+from forebear.loop.schedule import Timing
 from forebear.loop.stopping import Stop, deadline
 from forebear.records.logbook import (
     ControllerLock,
@@ -59,7 +60,6 @@ log = logging.getLogger("forebear.loop.controller")
 RETRY_REASONS = ("worker", "timeout")  # lost attempts that use up a retry; restarts and interrupts do not
 BUDGET_KEYS = ("trials", "batch", "concurrency", "trial_timeout", "retries", "retry_errors", "wall_time")
 EXTENDABLE = ("trials", "wall_time")
-LOOKAHEAD = 2  # a new round starts when fewer proposals than free slots + this are ready
 RESOURCE_CHECK_EVERY = 5.0  # seconds between checks that some worker still offers the trials' resources
 
 
@@ -67,7 +67,7 @@ RESOURCE_CHECK_EVERY = 5.0  # seconds between checks that some worker still offe
 # the loop
 
 
-class Controller(Attempts):
+class Controller(Attempts, Rounds):
     """Drives one search to its budget (see the module docstring).
 
     Parameters
@@ -136,6 +136,8 @@ class Controller(Attempts):
         self.ready: deque[int] = deque()  # proposed, recorded, not yet submitted
         self._job: Future[list[Any]] | None = None
         self._job_size = 0
+        self._job_started = 0.0
+        self.timing = Timing()  # trial and refit durations: how far to propose ahead (loop/schedule.py)
         self._exhausted = False
         self._ac: as_completed | None = None
         self._next_resource_check = time.monotonic() + RESOURCE_CHECK_EVERY
@@ -290,7 +292,7 @@ class Controller(Attempts):
                         break
                 self._watch_resources()
                 wait = 0.5 if ends is None else max(0.0, min(0.5, ends - time.monotonic()))
-                events = [self._collect(fut) for fut in _ready(ac, wait, self)]
+                events = [self._collect(self._timed(fut)) for fut in _ready(ac, wait, self)]
                 if events and self.stop.reason is None:
                     self._harvest()
                     self._fill(ac)  # refill before showing, so "running" counts the new attempts
@@ -359,63 +361,6 @@ class Controller(Attempts):
         """Stop proposing (and cancel running attempts with ``cancel``), as the first Ctrl-C does."""
         self.stop.reason = "interrupted"
         self.stop.cancel = cancel
-
-    # -- proposing ------------------------------------------------------------
-
-    def _propose_ahead(self, engine: ProposalEngine) -> None:
-        """Start a round of up to ``batch`` proposals off the loop when few are ready.
-
-        The round is computed while the workers run and starts while proposals are still
-        ready (``LOOKAHEAD``), so a worker that finishes gets its next trial without waiting
-        for a refit; a refit has about ``LOOKAHEAD`` trial completions' time to finish.
-        """
-        if self._job is not None or self._exhausted:
-            return
-        budget = self.spec.budget
-        free = budget.concurrency - len(self.inflight) - len(self.retry_queue)
-        left = budget.trials - len(self.book.configs)
-        if left <= 0 or len(self.ready) >= max(0, free) + LOOKAHEAD:
-            return
-        n = min(budget.batch, left)
-        sign = self.spec.objective.sign
-        observed = [Observation(self.book.configs[t], sign * s) for t, s in self.book.scores.items()]
-        failed = [self.book.configs[t] for t, s in self.book.state.items() if s == "failed"]
-        pending = [self.book.configs[t] for t, s in self.book.state.items() if s in ("queued", "running")]
-        self._job = engine.submit(n, observed, failed, pending)
-        self._job_size = n
-        self._job.add_done_callback(self._wake)
-
-    def _wake(self, _job: Any) -> None:
-        ac = self._ac
-        if ac is not None:
-            with ac.thread_condition:
-                ac.thread_condition.notify_all()
-
-    def _harvest(self) -> None:
-        """Record a finished round as ``proposed`` and queue its trials."""
-        job = self._job
-        if job is None or not job.done():
-            return
-        self._job = None
-        proposals = job.result()[: self._job_size]
-        if not proposals:
-            self._exhausted = True
-            return
-        round_no = self.book.rounds
-        self.book.rounds += 1
-        first = max(self.book.configs, default=-1) + 1
-        recs = []
-        for i, p in enumerate(proposals):
-            tid = first + i
-            recs.append(record("proposed", trial=tid, round=round_no, config=p.config, source=p.source, model=p.model, acquisition=p.acquisition))
-        self.logbook.append_many(recs)
-        for rec in recs:
-            tid = rec["trial"]
-            self.book.configs[tid] = dict(rec["config"])
-            self.book.state[tid] = "queued"
-            self.book.attempts[tid] = 0
-            self.book.charged[tid] = 0
-            self.ready.append(tid)
 
     def _show(self, event: str) -> None:
         if self.progress is None:
