@@ -19,36 +19,26 @@ from __future__ import annotations
 import json
 import os
 import re
-import select
 import shutil
 import signal
 import socket
-import subprocess
-import sys
 import tempfile
-import threading
 import time
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from forebear.cluster import child as _child
+from forebear.cluster.capture import read_log, read_text, with_tail
 from forebear.cluster.child import BadScore, score_of_stdout
+from forebear.cluster.servers import RunnerError, _acquire, _release, _Server, shutdown_servers
 from forebear.records.logbook import Logbook, ensure_folder, record
 
+__all__ = ["AttemptResult", "AttemptTask", "RunnerError", "log_name", "reachable", "run_attempt", "shutdown_servers"]
+
 PROBE_NAME = ".probe"
-LOG_TAIL_LINES = 20
-LOG_RETURN_BYTES = 1 << 20  # the log returned to the controller without a shared filesystem
 KILL_GRACE = 10.0  # seconds to wait for a killed child to be reaped
 POLL = 0.2  # how often a waiting runner checks whether its Dask task was cancelled
-
-
-class RunnerError(RuntimeError):
-    """The attempt machinery itself failed (not the objective)."""
-
-    def __reduce__(self) -> tuple[Any, ...]:
-        return (self.__class__, self.args)
 
 
 @dataclass(frozen=True)
@@ -94,99 +84,6 @@ def log_name(trial: int, attempt: int) -> str:
 
 
 # --------------------------------------------------------------------------
-# fork servers, one per objective per worker process
-
-
-class _Server:
-    """A :mod:`forebear.cluster.child` server process and its protocol pipes."""
-
-    def __init__(self, call: str | None, path: str | None, wait: float) -> None:
-        # Run the file, not ``-m forebear.cluster.child``: the package's imports (numpy, scipy, yaml) would
-        # add seconds to every server start, and the server needs only the standard library.
-        argv = [sys.executable, _child.__file__]
-        if call:
-            argv += ["--call", call]
-        if path:
-            argv += ["--path", path]
-        self.proc = subprocess.Popen(argv, stdin=subprocess.PIPE, stdout=subprocess.PIPE, close_fds=True)
-        assert self.proc.stdin is not None and self.proc.stdout is not None
-        self._in = self.proc.stdin
-        self._out = self.proc.stdout.fileno()
-        self._buf = b""
-        hello = self.read(wait)
-        if hello is None:
-            self.close()
-            raise RunnerError(f"the attempt process for {call or 'commands'} did not start within {wait:g} s")
-        if not hello.get("ready"):
-            self.close()
-            raise RunnerError(str(hello.get("error") or "the attempt process failed to start"))
-
-    @property
-    def alive(self) -> bool:
-        return self.proc.poll() is None
-
-    def send(self, payload: Mapping[str, Any]) -> None:
-        self._in.write((json.dumps(payload, default=str) + "\n").encode())
-        self._in.flush()
-
-    def read(self, timeout: float | None) -> dict[str, Any] | None:
-        """The next protocol line, or None on timeout; RunnerError when the server died."""
-        deadline = None if timeout is None else time.monotonic() + timeout
-        while b"\n" not in self._buf:
-            left = None if deadline is None else max(0.0, deadline - time.monotonic())
-            ready, _, _ = select.select([self._out], [], [], left)
-            if not ready:
-                return None
-            chunk = os.read(self._out, 65536)
-            if not chunk:
-                raise RunnerError(f"the attempt process server exited (status {self.proc.wait()})")
-            self._buf += chunk
-        line, self._buf = self._buf.split(b"\n", 1)
-        return json.loads(line)
-
-    def close(self) -> None:
-        try:
-            self._in.close()
-        except OSError:
-            pass
-        try:
-            self.proc.wait(timeout=5)
-        except subprocess.TimeoutExpired:
-            self.proc.kill()
-            self.proc.wait()
-
-
-_POOL: dict[tuple[str | None, str | None], list[_Server]] = {}
-_POOL_LOCK = threading.Lock()
-
-
-def _acquire(call: str | None, path: str | None, wait: float) -> _Server:
-    with _POOL_LOCK:
-        idle = _POOL.setdefault((call, path), [])
-        while idle:
-            server = idle.pop()
-            if server.alive:
-                return server
-    return _Server(call, path, wait)
-
-
-def _release(server: _Server, call: str | None, path: str | None) -> None:
-    if not server.alive:
-        return
-    with _POOL_LOCK:
-        _POOL.setdefault((call, path), []).append(server)
-
-
-def shutdown_servers() -> None:
-    """Stop this process's fork servers (tests and the overhead benchmark call it)."""
-    with _POOL_LOCK:
-        servers = [s for group in _POOL.values() for s in group]
-        _POOL.clear()
-    for s in servers:
-        s.close()
-
-
-# --------------------------------------------------------------------------
 # where the worker is
 
 
@@ -221,20 +118,6 @@ def reachable(logs: str | None, token: str | None) -> bool:
         except OSError:
             _SHARED[key] = False
     return _SHARED[key]
-
-
-def tail(path: Path, lines: int = LOG_TAIL_LINES, max_bytes: int = 8192) -> str:
-    """The last ``lines`` lines of a file (decoded leniently), or '' when it is missing."""
-    try:
-        with open(path, "rb") as fh:
-            fh.seek(0, os.SEEK_END)
-            size = fh.tell()
-            fh.seek(max(0, size - max_bytes))
-            data = fh.read()
-    except OSError:
-        return ""
-    text = data.decode("utf-8", errors="replace")
-    return "\n".join(text.splitlines()[-lines:])
 
 
 def _exit_reason(status: int) -> str:
@@ -325,9 +208,9 @@ def _run(task: AttemptTask, worker: str, cancelled: Callable[[], bool], logbook:
         result.written = logbook is not None
         result.seconds = seconds
         what = f"the attempt timed out after {task.timeout:g} s" if outcome == "timeout" else "the attempt was cancelled"
-        result.error = _with_tail(what, log, out)
+        result.error = with_tail(what, log, out)
         if logbook is None:
-            result.log_text = _read_log(log, out)
+            result.log_text = read_log(log, out)
         return result
     return _finish(task, result, logbook, started, status, None, seconds, log, out, scratch / "result.json")
 
@@ -395,34 +278,6 @@ def _substitute(item: str, config: Mapping[str, Any]) -> str:
     return _PLACEHOLDER.sub(lambda m: str(config[m.group(1)]) if m.group(1) in config else m.group(0), item)
 
 
-def _read_log(log: Path, out: Path | None) -> str:
-    parts = []
-    for p in (out, log):
-        if p is None:
-            continue
-        try:
-            size = p.stat().st_size
-            with open(p, "rb") as fh:
-                fh.seek(max(0, size - LOG_RETURN_BYTES))
-                text = fh.read().decode("utf-8", errors="replace")
-        except OSError:
-            continue
-        if out is not None:
-            parts.append(f"--- {'stdout' if p == out else 'stderr'} ---\n{text}")
-        else:
-            parts.append(text)
-    return "\n".join(parts)
-
-
-def _with_tail(reason: str, log: Path, out: Path | None) -> str:
-    lines = tail(log)
-    if out is not None:
-        so = tail(out, lines=5)
-        if so:
-            lines = (lines + "\n" if lines else "") + "stdout: " + so.replace("\n", "\nstdout: ")
-    return f"{reason}\n--- last lines of the log ---\n{lines}" if lines else reason
-
-
 def _finish(
     task: AttemptTask,
     result: AttemptResult,
@@ -454,7 +309,7 @@ def _finish(
                 error = _exit_reason(status) if code < 0 else f"the command exited with status {code}"
             else:
                 try:
-                    score, metrics = score_of_stdout(_read_text(out), task.metric)
+                    score, metrics = score_of_stdout(read_text(out), task.metric)
                 except BadScore as exc:
                     error = f"bad result: {exc}"
         elif payload is not None:
@@ -465,7 +320,7 @@ def _finish(
         final = record("scored", trial=task.trial, attempt=task.attempt, score=score, metrics=metrics, seconds=round(seconds, 6))
         result.outcome = "scored"
     else:
-        result.error = _with_tail(error or "no result", log, out)
+        result.error = with_tail(error or "no result", log, out)
         final = record("failed", trial=task.trial, attempt=task.attempt, error=result.error, retryable=task.retryable)
         result.outcome = "failed"
     result.seconds = seconds
@@ -475,18 +330,5 @@ def _finish(
         result.written = True
     else:
         result.records = [started, final]
-        result.log_text = _read_log(log, out)
+        result.log_text = read_log(log, out)
     return result
-
-
-def _read_text(path: Path | None) -> str:
-    if path is None:
-        return ""
-    try:
-        with open(path, "rb") as fh:
-            fh.seek(0, os.SEEK_END)
-            size = fh.tell()
-            fh.seek(max(0, size - 65536))  # the score is on the last line; 10 MB of stdout is not read whole
-            return fh.read().decode("utf-8", errors="replace")
-    except OSError:
-        return ""

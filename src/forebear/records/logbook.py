@@ -6,30 +6,43 @@ One JSON object per line. Every record has ``v`` (format version), ``at``
 ``<logbook>.lock``, open the file after locking, cut off a torn last line left
 by a writer that died mid-write, write the record with one ``os.write``,
 ``fsync`` and release. Readers take no lock: they skip lines that do not
-parse and count them. :func:`fold` turns records into a trial table.
+parse and count them. The fold into a trial table is :mod:`forebear.records.table`;
+the locks are :mod:`forebear.records.locks`; both are re-exported here.
 """
 
 from __future__ import annotations
 
-import contextlib
-import gc
 import json
-import math
 import os
-import socket
 import threading
 import time
-from collections.abc import Iterable, Iterator, Mapping
-from dataclasses import dataclass, field
+from collections.abc import Iterable, Mapping
 from pathlib import Path
 from typing import Any
 
 import filelock
 
+from forebear.records.files import ensure_folder
+from forebear.records.locks import ControllerLock, LogbookBusy, _lock_for
+from forebear.records.table import (
+    KINDS,
+    STATES,
+    TERMINAL,
+    Attempt,
+    Trial,
+    TrialTable,
+    _gc_paused,
+    finite,
+    fold,
+)
+
+__all__ = [
+    "KINDS", "MAX_RECORD_BYTES", "STATES", "TERMINAL", "VERSION", "Attempt", "ControllerLock", "Logbook",
+    "LogbookBusy", "LogbookError", "LogbookMismatch", "Trial", "TrialTable", "check_header", "ensure_folder",
+    "finite", "fold", "load", "parse", "record",
+]
+
 VERSION = 1
-KINDS = ("search", "proposed", "started", "scored", "failed", "lost", "closed")
-STATES = ("queued", "running", "scored", "failed")
-TERMINAL = ("scored", "failed")
 MAX_RECORD_BYTES = 1 << 20  # one record; error tails and metrics are trimmed well below this
 
 
@@ -40,59 +53,11 @@ class LogbookError(OSError):
         return (self.__class__, self.args)
 
 
-class LogbookBusy(RuntimeError):
-    """Another controller drives this logbook."""
-
-    def __reduce__(self) -> tuple[Any, ...]:
-        return (self.__class__, self.args)
-
-
 class LogbookMismatch(ValueError):
     """The logbook belongs to another search, or to a newer format."""
 
     def __reduce__(self) -> tuple[Any, ...]:
         return (self.__class__, self.args)
-
-
-# --------------------------------------------------------------------------
-# locks: one lock object per path per process
-
-
-_LOCKS: dict[tuple[str, str], filelock.BaseFileLock] = {}
-_LOCKS_GUARD = threading.Lock()
-
-
-def _lock_for(path: Path, mode: str, lifetime: float) -> filelock.BaseFileLock:
-    key = (str(path.resolve()), mode)
-    with _LOCKS_GUARD:
-        lock = _LOCKS.get(key)
-        if lock is None:
-            lock_path = str(path) + ".lock"
-            if mode == "soft":
-                lock = _soft_lock(lock_path, lifetime)
-            else:
-                # thread_local=False: the controller's threads share one lock object, guarded below.
-                lock = filelock.FileLock(lock_path, thread_local=False, mode=0o600)
-            _LOCKS[key] = lock
-        return lock
-
-
-def _soft_lock(lock_path: str, lifetime: float) -> filelock.BaseFileLock:
-    """A marker-file lock for filesystems whose ``flock`` is unreliable (some NFS setups).
-
-    filelock's ``SoftFileLease`` is its soft lock with a lifetime that the holder keeps
-    renewing (a heartbeat), so a long-lived controller keeps its claim while a claim
-    left by a dead process expires after ``lifetime`` seconds. The plain
-    ``SoftFileLock(lifetime=...)`` expires by age alone and could hand a live
-    controller's logbook to a second one.
-    """
-    return filelock.SoftFileLease(lock_path, lease_duration=lifetime, thread_local=False, mode=0o600)
-
-
-def ensure_folder(folder: Path) -> None:
-    """Create ``folder`` (and parents) with mode 0700 where it does not exist."""
-    if not folder.exists():
-        os.makedirs(folder, mode=0o700, exist_ok=True)
 
 
 # --------------------------------------------------------------------------
@@ -220,24 +185,6 @@ class Logbook:
         table.skipped = skipped
         return table
 
-
-@contextlib.contextmanager
-def _gc_paused() -> Iterator[None]:
-    """Pause the cyclic garbage collector while building many acyclic objects.
-
-    Parsing and folding 10^5 records allocates millions of containers, which
-    triggers repeated full collections that find nothing to free (records hold
-    no reference cycles); pausing it halves the time of a large fold.
-    """
-    was_enabled = gc.isenabled()
-    gc.disable()
-    try:
-        yield
-    finally:
-        if was_enabled:
-            gc.enable()
-
-
 def parse(data: bytes) -> tuple[list[dict[str, Any]], int]:
     """Parse logbook bytes; returns records and the count of unparseable lines."""
     with _gc_paused():
@@ -302,279 +249,6 @@ def _repair_tail(fd: int) -> None:
     else:
         os.ftruncate(fd, cut)
 
-
-# --------------------------------------------------------------------------
-# the fold
-
-
-@dataclass
-class Attempt:
-    """One execution of a trial on a worker."""
-
-    attempt: int
-    worker: str | None = None
-    host: str | None = None
-    pid: int | None = None
-    started_at: float | None = None
-    ended_at: float | None = None
-    outcome: str = "running"  # running, scored, failed, lost
-    detail: str | None = None
-
-
-@dataclass
-class Trial:
-    """A trial folded from its records."""
-
-    trial: int
-    config: dict[str, Any]
-    round: int = 0
-    source: str = "initial"
-    model: str | None = None
-    acquisition: float | None = None
-    state: str = "queued"
-    score: float | None = None
-    metrics: dict[str, Any] = field(default_factory=dict)
-    seconds: float | None = None
-    error: str | None = None
-    retryable: bool = False
-    proposed_at: float | None = None
-    started_at: float | None = None
-    finished_at: float | None = None
-    attempts: list[Attempt] = field(default_factory=list)
-
-    @property
-    def terminal(self) -> bool:
-        return self.state in TERMINAL
-
-    @property
-    def last_attempt(self) -> int:
-        return self.attempts[-1].attempt if self.attempts else 0
-
-    def to_dict(self) -> dict[str, Any]:
-        return {
-            "trial": self.trial,
-            "state": self.state,
-            "config": self.config,
-            "score": self.score,
-            "metrics": self.metrics,
-            "seconds": self.seconds,
-            "round": self.round,
-            "source": self.source,
-            "model": self.model,
-            "attempts": len(self.attempts),
-            "error": self.error,
-        }
-
-
-@dataclass
-class TrialTable:
-    """The state of a search folded from its logbook."""
-
-    trials: dict[int, Trial] = field(default_factory=dict)
-    header: dict[str, Any] | None = None
-    closed: dict[str, Any] | None = None
-    skipped: int = 0
-    unknown: int = 0
-    duplicates: int = 0
-    first_at: float | None = None
-    last_at: float | None = None
-
-    @property
-    def sense(self) -> str:
-        obj = (self.header or {}).get("objective") or {}
-        return "maximize" if "maximize" in obj else "minimize"
-
-    @property
-    def metric(self) -> str | None:
-        obj = (self.header or {}).get("objective") or {}
-        return obj.get(self.sense)
-
-    def by_state(self, state: str) -> list[Trial]:
-        return [t for t in self.trials.values() if t.state == state]
-
-    def counts(self) -> dict[str, int]:
-        out = dict.fromkeys(STATES, 0)
-        for t in self.trials.values():
-            out[t.state] += 1
-        return out
-
-    @property
-    def finished(self) -> int:
-        return sum(1 for t in self.trials.values() if t.terminal)
-
-    def scored(self) -> list[Trial]:
-        return [t for t in self.trials.values() if t.state == "scored"]
-
-    def best(self) -> Trial | None:
-        """The best scored trial in the search's sense (lowest trial id on ties)."""
-        scored = self.scored()
-        if not scored:
-            return None
-        sign = -1.0 if self.sense == "maximize" else 1.0
-        return min(scored, key=lambda t: (sign * float(t.score), t.trial))  # type: ignore[arg-type]
-
-    def ranked(self) -> list[Trial]:
-        sign = -1.0 if self.sense == "maximize" else 1.0
-        return sorted(self.scored(), key=lambda t: (sign * float(t.score), t.trial))  # type: ignore[arg-type]
-
-    def __iter__(self) -> Iterator[Trial]:
-        return iter(sorted(self.trials.values(), key=lambda t: t.trial))
-
-    def __len__(self) -> int:
-        return len(self.trials)
-
-
-def fold(records: Iterable[Mapping[str, Any]]) -> TrialTable:
-    """Fold records into a :class:`TrialTable`. The first ``scored`` of a trial wins."""
-    with _gc_paused():
-        return _fold(records)
-
-
-def _fold(records: Iterable[Mapping[str, Any]]) -> TrialTable:
-    table = TrialTable()
-    trials = table.trials
-    for rec in records:
-        kind = rec.get("kind")
-        at = rec.get("at")
-        if isinstance(at, (int, float)):
-            if table.first_at is None:
-                table.first_at = at
-            table.last_at = at
-        if kind == "search":
-            if table.header is None:
-                table.header = dict(rec)
-            continue
-        if kind == "closed":
-            table.closed = dict(rec)
-            continue
-        tid = rec.get("trial")
-        if kind not in KINDS or not isinstance(tid, int):
-            table.unknown += 1
-            continue
-        if kind == "proposed":
-            if tid in trials:
-                table.duplicates += 1
-                continue
-            trials[tid] = Trial(
-                trial=tid,
-                config=dict(rec.get("config") or {}),
-                round=int(rec.get("round") or 0),
-                source=str(rec.get("source") or "initial"),
-                model=rec.get("model"),
-                acquisition=rec.get("acquisition"),
-                proposed_at=at,
-            )
-            continue
-        t = trials.get(tid)
-        if t is None:
-            table.unknown += 1
-            continue
-        attempt_no = int(rec.get("attempt") or 1)
-        att = _attempt(t, attempt_no)
-        if kind == "started":
-            att.worker, att.host, att.pid = rec.get("worker"), rec.get("host"), rec.get("pid")
-            att.started_at = at
-            if t.started_at is None:
-                t.started_at = at
-            if not t.terminal:
-                t.state = "running"
-        elif kind == "scored":
-            if t.state == "scored":
-                table.duplicates += 1
-                continue
-            att.outcome, att.ended_at = "scored", at
-            t.state = "scored"
-            t.score = rec.get("score")
-            t.metrics = dict(rec.get("metrics") or {})
-            t.seconds = rec.get("seconds")
-            t.finished_at = at
-            t.error = None
-        elif kind == "failed":
-            if att.outcome == "running":
-                att.outcome, att.ended_at, att.detail = "failed", at, rec.get("error")
-            if t.state == "scored":
-                continue
-            t.error = rec.get("error")
-            t.retryable = bool(rec.get("retryable"))
-            if t.retryable:
-                t.state = "queued"
-            else:
-                t.state = "failed"
-                t.finished_at = at
-        elif kind == "lost":
-            if att.outcome == "running":
-                att.outcome, att.ended_at, att.detail = "lost", at, rec.get("reason")
-            if not t.terminal:
-                t.state = "queued"
-                t.error = f"attempt {attempt_no} lost ({rec.get('reason')})"
-    return table
-
-
-def _attempt(t: Trial, n: int) -> Attempt:
-    for a in t.attempts:
-        if a.attempt == n:
-            return a
-    a = Attempt(attempt=n)
-    t.attempts.append(a)
-    return a
-
-
-# --------------------------------------------------------------------------
-# the controller lock
-
-
-class ControllerLock:
-    """Exclusive right to drive a logbook: ``<logbook>.controller`` with pid, host and time.
-
-    A second controller gets :class:`LogbookBusy` naming the holder. The lock
-    is a ``FileLock`` (released by the OS when the holder dies), or a
-    ``SoftFileLock`` with a lifetime for ``lock: soft``.
-    """
-
-    def __init__(self, logbook: Logbook) -> None:
-        self.logbook = logbook
-        self.info_path = Path(str(logbook.path) + ".controller")
-        lock_path = str(logbook.path) + ".controller.lock"
-        if logbook.lock_mode == "soft":
-            self._lock: filelock.BaseFileLock = _soft_lock(lock_path, logbook.lifetime)
-        else:
-            self._lock = filelock.FileLock(lock_path, thread_local=False, mode=0o600)
-
-    def acquire(self) -> None:
-        ensure_folder(self.logbook.path.parent)
-        try:
-            self._lock.acquire(timeout=0)
-        except filelock.Timeout:
-            raise LogbookBusy(self.holder_message()) from None
-        info = {"pid": os.getpid(), "host": socket.gethostname(), "since": time.time()}
-        fd = os.open(self.info_path, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o600)
-        try:
-            os.write(fd, json.dumps(info).encode())
-        finally:
-            os.close(fd)
-
-    def holder_message(self) -> str:
-        try:
-            info = json.loads(self.info_path.read_text())
-            since = time.strftime("%Y-%m-%d %H:%M:%S", time.localtime(float(info["since"])))
-            return f"logbook {self.logbook.path} is driven by pid {info['pid']} on host {info['host']} since {since}"
-        except (OSError, ValueError, KeyError, TypeError):
-            return f"logbook {self.logbook.path} is driven by another controller"
-
-    def release(self) -> None:
-        try:
-            self.info_path.unlink(missing_ok=True)
-        finally:
-            self._lock.release(force=True)
-
-    def __enter__(self) -> ControllerLock:
-        self.acquire()
-        return self
-
-    def __exit__(self, *exc: object) -> None:
-        self.release()
-
-
 def check_header(table: TrialTable, path: Path, spec_hash: str | None = None) -> None:
     """Refuse a logbook of a newer format, or of another search when ``spec_hash`` is given."""
     if table.header is None:
@@ -608,7 +282,3 @@ def load(path: str | os.PathLike[str]) -> TrialTable:
     table = Logbook(p).fold()
     check_header(table, p)
     return table
-
-
-def finite(x: Any) -> bool:
-    return isinstance(x, (int, float)) and not isinstance(x, bool) and math.isfinite(x)
