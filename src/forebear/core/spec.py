@@ -18,6 +18,7 @@ import json
 import math
 import os
 import re
+import stat
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 from importlib import resources
@@ -507,11 +508,15 @@ def load(source: str | os.PathLike[str] | Mapping[str, Any], *, base_dir: str | 
     path = Path(source)
     name = path.name
     try:
-        size = path.stat().st_size
+        st = path.stat()
     except OSError as exc:
         raise SpecError([f"spec: cannot read {path}: {exc.strerror or exc}"]) from None
-    if path.is_dir():
+    size = st.st_size
+    if stat.S_ISDIR(st.st_mode):
         raise SpecError([f"spec: {path} is a folder, not a spec file"])
+    if not stat.S_ISREG(st.st_mode):
+        # A FIFO with no writer would block the read forever; a device has no end.
+        raise SpecError([f"spec: {path} is not a regular file (a FIFO, socket or device); give a spec file"])
     if size > MAX_SPEC_BYTES:
         raise SpecError([f"spec: {name} is {size / 1e6:.1f} MB; a spec must be under {MAX_SPEC_BYTES // 1024} KiB"])
     try:

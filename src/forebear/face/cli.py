@@ -18,6 +18,7 @@ from typing import Any
 
 import click
 
+from forebear.records.files import NotRegularFile, check_regular, write_atomic
 from forebear.records.logbook import (
     Logbook,
     LogbookBusy,
@@ -25,6 +26,7 @@ from forebear.records.logbook import (
     LogbookMismatch,
     TrialTable,
     check_header,
+    is_logbook,
 )
 
 EXIT_OK, EXIT_NOTHING_SCORED, EXIT_BAD_INPUT = 0, 1, 2
@@ -71,7 +73,7 @@ def guarded(fn: Callable[..., Any]) -> Callable[..., Any]:
                 for line in exc.errors:
                     say(f"error: {line}")
                 say(f"forebear: the spec has {len(exc.errors)} error{'s' if len(exc.errors) != 1 else ''}; nothing was written")
-            elif isinstance(exc, (LogbookBusy, LogbookMismatch, LogbookError)):
+            elif isinstance(exc, (LogbookBusy, LogbookMismatch, LogbookError, NotRegularFile)):
                 say(f"forebear: {exc.args[-1] if exc.args else exc}")
             elif isinstance(exc, (ValueError, TypeError, OSError, ImportError, LookupError)):
                 say(f"forebear: {type(exc).__name__}: {exc}".replace("\n", " "))
@@ -257,27 +259,65 @@ def best(logbook: str, as_json: bool) -> None:
 @main.command()
 @click.argument("logbook", type=click.Path(dir_okay=False))
 @click.option("--csv", "csv_path", required=True, type=click.Path(dir_okay=False), help="The CSV file to write.")
+@click.option("--replace", is_flag=True, help="Write over FILE when it exists (never over a forebear logbook).")
 @guarded
-def export(logbook: str, csv_path: str) -> None:
-    """Write the trial table of LOGBOOK as a CSV file."""
+def export(logbook: str, csv_path: str, replace: bool) -> None:
+    """Write the trial table of LOGBOOK as a CSV file.
+
+    Columns: ``trial``, ``state``, ``score``, one per parameter, ``metric.<name>`` per metric,
+    then ``seconds``, ``attempts``, ``round``, ``source``, ``model``, ``error``. A parameter whose
+    name is one of these columns or holds a dot is written as ``config.<name>``, so no two
+    columns share a name.
+    """
+    _check_export_target(Path(logbook), Path(csv_path), replace)
     table = _table(logbook)
-    params: list[str] = []
-    metrics: list[str] = []
-    for t in table:
-        params += [k for k in t.config if k not in params]
-        metrics += [k for k in t.metrics if k not in metrics]
-    fields = ["trial", "state", "score", *params, *[f"metric.{m}" for m in metrics], "seconds", "attempts", "round", "source", "model", "error"]
-    with open(csv_path, "w", newline="") as fh:
+    header, rows = export_rows(table)
+
+    def write(fh: Any) -> None:
         w = csv.writer(fh)
-        w.writerow(fields)
-        for t in table:
-            w.writerow([
-                t.trial, t.state, "" if t.score is None else t.score,
-                *[t.config.get(p, "") for p in params],
-                *[t.metrics.get(m, "") for m in metrics],
-                "" if t.seconds is None else t.seconds, len(t.attempts), t.round, t.source, t.model or "", t.error or "",
-            ])
+        w.writerow(header)
+        w.writerows(rows)
+
+    write_atomic(csv_path, write, newline="")
     say(f"wrote {len(table)} trials to {csv_path}")
+
+
+EXPORT_HEAD = ("trial", "state", "score")
+EXPORT_TAIL = ("seconds", "attempts", "round", "source", "model", "error")
+
+
+def export_rows(table: TrialTable) -> tuple[list[str], list[list[Any]]]:
+    """The header and rows of ``forebear export``: export's own columns never share a name with a parameter."""
+    params: dict[str, None] = {}
+    metrics: dict[str, None] = {}
+    for t in table:
+        params.update(dict.fromkeys(t.config))
+        metrics.update(dict.fromkeys(t.metrics))
+    own = set(EXPORT_HEAD) | set(EXPORT_TAIL)
+    # Export's own names hold no dot; a prefixed name always does: the two sets cannot meet.
+    columns = [f"config.{p}" if p in own or "." in p else p for p in params]
+    header = [*EXPORT_HEAD, *columns, *[f"metric.{m}" for m in metrics], *EXPORT_TAIL]
+    rows = [
+        [
+            t.trial, t.state, "" if t.score is None else t.score,
+            *[t.config.get(p, "") for p in params],
+            *[t.metrics.get(m, "") for m in metrics],
+            "" if t.seconds is None else t.seconds, len(t.attempts), t.round, t.source, t.model or "", t.error or "",
+        ]
+        for t in table
+    ]
+    return header, rows
+
+
+def _check_export_target(logbook: Path, target: Path, replace: bool) -> None:
+    """Refuse to write over a forebear logbook (the one read included), or over any file without ``--replace``."""
+    if not target.exists():
+        return
+    check_regular(target, "export target")
+    if (logbook.exists() and target.samefile(logbook)) or is_logbook(target):
+        raise Exit(f"{target} is a forebear logbook; export never writes over one (choose another file name)")
+    if not replace:
+        raise Exit(f"{target} already exists; pass --replace to write over it")
 
 
 # -- report / demo / bench --------------------------------------------------

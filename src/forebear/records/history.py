@@ -22,6 +22,7 @@ from typing import Any
 import numpy as np
 
 from forebear.core.space import Param, Space
+from forebear.records.files import NotRegularFile, open_regular, read_regular
 from forebear.records.logbook import fold, parse
 
 
@@ -138,10 +139,12 @@ def _logbook_tasks(
     out = []
     for p in paths:
         path = Path(p)
-        if _resolved(path) in skip or not path.is_file():
+        if _resolved(path) in skip:
             continue
         try:
-            data = path.read_bytes()
+            data = read_regular(path, "history logbook")
+        except NotRegularFile as exc:
+            raise HistoryError(str(exc.args[-1])) from None
         except OSError as exc:
             msg = f"history logbook {path}: cannot read: {exc.strerror or exc}"
             raise HistoryError(msg) from None
@@ -185,7 +188,9 @@ def _csv_tasks(
     path: Path, task_col: str, score_col: str, space: Space
 ) -> list[tuple[str, list[tuple[dict[str, Any], Any]], str]]:
     try:
-        fh = open(path, newline="", encoding="utf-8")
+        fh = open_regular(path, "history table", newline="", encoding="utf-8")
+    except NotRegularFile as exc:
+        raise HistoryError(str(exc.args[-1])) from None
     except OSError as exc:
         msg = f"history table {path}: cannot read: {exc.strerror or exc}"
         raise HistoryError(msg) from None
@@ -200,11 +205,20 @@ def _csv_tasks(
         if not header:
             msg = f"history table {path}: empty file, no header row"
             raise HistoryError(msg)
+        dupes = sorted({c for c in header if header.count(c) > 1})
+        if dupes:
+            # csv.DictReader keeps the last of two equal columns: one of them would be read silently.
+            cols = ", ".join(f"{c!r} ({header.count(c)} times)" for c in dupes)
+            msg = f"history table {path}: line 1: duplicate column name {cols}; rename or drop the copies"
+            raise HistoryError(msg)
         for col in (task_col, score_col):
             if col not in header:
                 msg = f"history table {path}: line 1: no column {col!r} (columns: {', '.join(header)})"
                 raise HistoryError(msg)
-        params = [p for p in space.params if p.name in header]
+        # ``forebear export`` writes a parameter as ``config.<name>`` where the bare name is one of its own
+        # columns (``score``, ``state``, ...): that column, when present, is the parameter's.
+        columns = {p.name: f"config.{p.name}" if f"config.{p.name}" in header else p.name for p in space.params}
+        params = [p for p in space.params if columns[p.name] in header]
         try:
             for row in reader:
                 line = reader.line_num
@@ -214,7 +228,7 @@ def _csv_tasks(
                 score = _number(row[score_col], path, line, score_col)
                 config: dict[str, Any] = {}
                 for p in params:
-                    cell = row[p.name]
+                    cell = row[columns[p.name]]
                     if cell is None or cell.strip() == "":
                         continue  # treated like an absent column by _align
                     config[p.name] = _cell(p, cell, path, line)

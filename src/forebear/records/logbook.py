@@ -22,7 +22,7 @@ from typing import Any
 
 import filelock
 
-from forebear.records.files import ensure_folder
+from forebear.records.files import NotRegularFile, ensure_folder, open_fd, read_regular
 from forebear.records.locks import ControllerLock, LogbookBusy, _lock_for
 from forebear.records.table import (
     KINDS,
@@ -39,7 +39,7 @@ from forebear.records.table import (
 __all__ = [
     "KINDS", "MAX_RECORD_BYTES", "STATES", "TERMINAL", "VERSION", "Attempt", "ControllerLock", "Logbook",
     "LogbookBusy", "LogbookError", "LogbookMismatch", "Trial", "TrialTable", "check_header", "ensure_folder",
-    "finite", "fold", "load", "parse", "record",
+    "finite", "fold", "is_logbook", "load", "parse", "record",
 ]
 
 VERSION = 1
@@ -137,7 +137,7 @@ class Logbook:
         fd = -1
         try:
             with self._thread_guard, self.lock.acquire(timeout=120):
-                fd = os.open(self.path, os.O_RDWR | os.O_CREAT | os.O_APPEND, 0o600)
+                fd = open_fd(self.path, os.O_RDWR | os.O_CREAT | os.O_APPEND, what="logbook")
                 _repair_tail(fd)
                 for data in payloads:
                     view = memoryview(data)
@@ -153,6 +153,8 @@ class Logbook:
         except filelock.Timeout:
             msg = f"logbook {self.path}: could not take its lock {self.lock.lock_file} within 120 s"
             raise LogbookError(msg) from None
+        except NotRegularFile as exc:
+            raise LogbookError(exc.errno or 0, str(exc.args[-1])) from None
         except OSError as exc:
             if isinstance(exc, LogbookError):
                 raise
@@ -167,10 +169,11 @@ class Logbook:
     def read(self) -> tuple[list[dict[str, Any]], int]:
         """All parseable records in order, and the count of lines skipped."""
         try:
-            with open(self.path, "rb") as fh:
-                data = fh.read()
+            data = read_regular(self.path, what="logbook")
         except FileNotFoundError:
             return [], 0
+        except NotRegularFile as exc:
+            raise LogbookError(exc.errno or 0, str(exc.args[-1])) from None
         except OSError as exc:
             msg = f"logbook {self.path}: cannot read: {exc.strerror or exc}"
             raise LogbookError(exc.errno or 0, msg) from exc
@@ -276,9 +279,27 @@ def load(path: str | os.PathLike[str]) -> TrialTable:
         When it is not a forebear logbook, or of a newer format.
     """
     p = Path(path)
-    if not p.is_file():
+    if not p.exists():
         msg = f"logbook {p}: no such file"
         raise LogbookError(2, msg)
     table = Logbook(p).fold()
     check_header(table, p)
     return table
+
+
+def is_logbook(path: str | os.PathLike[str]) -> bool:
+    """True when ``path`` is a regular file whose first record is a forebear logbook record."""
+    try:
+        fd = open_fd(path, os.O_RDONLY, what="logbook")
+    except OSError:
+        return False
+    try:
+        head = os.read(fd, 65536)
+    finally:
+        os.close(fd)
+    first = next((line for line in head.split(b"\n") if line.strip()), b"")
+    try:
+        rec = json.loads(first)
+    except ValueError:
+        return False
+    return isinstance(rec, dict) and rec.get("kind") in KINDS and "v" in rec
