@@ -154,3 +154,13 @@ def lognormal_sleep(config: dict[str, Any]) -> float:
     seconds = float(config["seconds"])
     time.sleep(seconds)
     return seconds
+
+
+def huge_metrics(config: dict[str, Any]) -> dict[str, Any]:
+    """A good score beside a 3.5 MB text metric, a list and a NaN side metric (issue 15, item 2)."""
+    return {"loss": 0.125, "acc": 0.5, "blob": "b" * 3_500_000, "curve": [0.1] * 10, "side": float("nan")}
+
+
+def beyond_float(config: dict[str, Any]) -> int:
+    """An int too large for a double: scoring it must fail as a bad result, not as the objective."""
+    return 10**400

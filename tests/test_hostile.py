@@ -133,3 +133,92 @@ def test_export_columns_never_collide_with_parameter_names_and_read_back_as_hist
     hist = load_history([HistorySource(csv=str(tmp_path / "h.csv"), task="task", score="score")], space, "minimize")
     assert len(hist) == 1 and hist.n_points == 1
     assert json.dumps(hist.warnings) == "[]"
+
+
+# -- 2 and 9: what an objective returns never makes a record unwritable or is dropped silently ------
+
+
+def shared_task(tmp_path: Path, call: str, **kw: object) -> tuple[Logbook, object]:
+    from forebear.cluster import runner
+
+    logbook = tmp_path / "runs" / "s.jsonl"
+    logs = tmp_path / "runs" / "s.logs"
+    logs.mkdir(parents=True, mode=0o700)
+    (logs / runner.PROBE_NAME).write_text("tok")
+    book = Logbook(logbook)
+    book.append(record("proposed", trial=3, round=0, config={"x": 0.1}, source="initial", model=None, acquisition=None))
+    base: dict[str, object] = {"search": "t", "trial": 3, "attempt": 1, "config": {"x": 0.1}, "metric": "loss", "call": call,
+                               "logbook": str(logbook), "logs": str(logs), "token": "tok"}
+    base.update(kw)
+    return book, runner.AttemptTask(**base)  # type: ignore[arg-type]
+
+
+@pytest.mark.parametrize("shared", [True, False], ids=["shared-filesystem", "no-shared-filesystem"])
+def test_a_huge_metrics_dict_keeps_the_score_and_says_what_was_dropped(tmp_path: Path, shared: bool) -> None:
+    from forebear.cluster.runner import AttemptTask, run_attempt
+    from forebear.records.logbook import MAX_RECORD_BYTES
+
+    book, task = shared_task(tmp_path, "objectives:huge_metrics")
+    if not shared:
+        task = AttemptTask(**{**task.__dict__, "token": "not-the-token"})  # type: ignore[attr-defined]
+    res = run_attempt(task)  # type: ignore[arg-type]
+    assert res.outcome == "scored", res.error
+    final = res.records[-1]
+    assert final["score"] == 0.125 and final["metrics"]["loss"] == 0.125 and final["metrics"]["acc"] == 0.5
+    assert "blob" not in final["metrics"] and "blob" in final["dropped"] and "bytes; dropped" in final["dropped"]["blob"]
+    assert final["dropped"]["curve"] == "list, not a number" and final["dropped"]["side"] == "NaN"
+    if not shared:
+        assert not res.written
+        book.append_many(res.records)  # what the controller does with a result it collected
+    data = book.path.read_bytes()
+    assert max(len(line) for line in data.split(b"\n")) < MAX_RECORD_BYTES
+    table = book.fold()
+    assert table.trials[3].state == "scored" and table.trials[3].score == 0.125
+
+
+def test_a_huge_error_text_from_the_controller_side_is_cut_not_refused(tmp_path: Path) -> None:
+    book = Logbook(tmp_path / "x.jsonl")
+    error = "E" * (3 << 20)
+    book.append({"v": 1, "at": 0, "kind": "failed", "trial": 0, "attempt": 1, "error": error, "retryable": False})
+    rec = book.records()[0]
+    assert rec["error"].startswith("EEEE") and "characters cut" in rec["error"] and len(rec["error"]) < 20_000
+
+
+def test_an_objective_returning_an_int_beyond_float_is_a_bad_result_not_an_objective_error() -> None:
+    from forebear.cluster.runner import AttemptTask, run_attempt
+
+    res = run_attempt(AttemptTask(search="t", trial=0, attempt=1, config={"x": 0.1}, metric="loss", call="objectives:beyond_float"))
+    assert res.outcome == "failed"
+    assert "bad result: metric 'loss' is an int of 401 digits, beyond the largest float" in (res.error or "")
+    assert "objective raised" not in (res.error or "")
+
+
+# -- the race of a dead controller's attempt with a resumed controller -----------------------------
+
+
+def test_a_result_that_arrives_after_its_attempt_was_settled_lost_is_not_recorded(tmp_path: Path) -> None:
+    from forebear.cluster.runner import run_attempt
+
+    book, task = shared_task(tmp_path, "objectives:sleepy", config={"x": 0.1, "y": 0.2, "seconds": 1.5})
+    out: dict[str, object] = {}
+    t = threading.Thread(target=lambda: out.update(res=run_attempt(task)), daemon=True)  # type: ignore[arg-type]
+    t.start()
+    deadline = 30.0
+    import time
+
+    end = time.monotonic() + deadline
+    while not any(r["kind"] == "started" for r in book.records()):
+        assert time.monotonic() < end, "the attempt did not start"
+        time.sleep(0.05)
+    # What a resumed controller writes for an attempt the dead controller left running.
+    book.append(record("lost", trial=3, attempt=1, reason="restart"))
+    t.join(deadline)
+    assert not t.is_alive()
+    res = out["res"]
+    assert res.outcome == "superseded"  # type: ignore[attr-defined]
+    kinds = [r["kind"] for r in book.records()]
+    assert kinds == ["proposed", "started", "lost"]
+    # A lost record of another attempt does not stop a result.
+    book2, task2 = shared_task(tmp_path / "b", "objectives:quadratic")
+    book2.append(record("lost", trial=3, attempt=2, reason="restart"))
+    assert run_attempt(task2).outcome == "scored"  # type: ignore[arg-type]

@@ -53,8 +53,13 @@ def _describe(value: Any, limit: int = 80) -> str:
 def _number(value: Any) -> float | None:
     if isinstance(value, bool):
         return None
-    if isinstance(value, (int, float)):
-        return float(value)
+    if isinstance(value, int):
+        try:
+            return float(value)
+        except OverflowError:  # an int beyond the largest double (10**400): as large as a float gets
+            return math.inf if value > 0 else -math.inf
+    if isinstance(value, float):
+        return value
     if hasattr(value, "item") and callable(value.item):  # numpy and torch scalars
         try:
             item = value.item()
@@ -64,10 +69,12 @@ def _number(value: Any) -> float | None:
     return None
 
 
-def score_of(value: Any, metric: str) -> tuple[float, dict[str, Any]]:
+def score_of(value: Any, metric: str, dropped: dict[str, str] | None = None) -> tuple[float, dict[str, Any]]:
     """The score and the metrics of an objective result.
 
-    A bare number is the metric itself; a mapping must hold ``metric``.
+    A bare number is the metric itself; a mapping must hold ``metric``. Side
+    metrics that are not finite numbers, text, booleans or null are left out of
+    the metrics; when ``dropped`` is given, each one is named there with why.
 
     Raises
     ------
@@ -85,11 +92,21 @@ def score_of(value: Any, metric: str) -> tuple[float, dict[str, Any]]:
                 metrics[str(k)] = num
             elif isinstance(v, (str, bool)) or v is None:
                 metrics[str(k)] = v
+            elif dropped is not None and k != metric:
+                dropped[str(k)[:200]] = _why_not(v, num)
         score = _check(value[metric], metric)
         metrics[metric] = score
         return score, metrics
     score = _check(value, metric)
     return score, {metric: score}
+
+
+def _why_not(value: Any, num: float | None) -> str:
+    if num is None:
+        return f"{type(value).__name__}, not a number"
+    if math.isnan(num):
+        return "NaN"
+    return f"{'+' if num > 0 else '-'}inf" + (" (an int beyond the largest float)" if isinstance(value, int) else "")
 
 
 def _check(value: Any, metric: str) -> float:
@@ -99,11 +116,13 @@ def _check(value: Any, metric: str) -> float:
     if math.isnan(num):
         raise BadScore(f"metric {metric!r} is NaN")
     if math.isinf(num):
+        if isinstance(value, int):
+            raise BadScore(f"metric {metric!r} is an int of {len(str(abs(value)))} digits, beyond the largest float")
         raise BadScore(f"metric {metric!r} is {'+' if num > 0 else '-'}inf")
     return num
 
 
-def score_of_stdout(text: str, metric: str) -> tuple[float, dict[str, Any]]:
+def score_of_stdout(text: str, metric: str, dropped: dict[str, str] | None = None) -> tuple[float, dict[str, Any]]:
     """Score a command objective from its stdout: the last non-empty line, JSON or a bare number."""
     lines = [ln.strip() for ln in text.splitlines() if ln.strip()]
     if not lines:
@@ -116,7 +135,7 @@ def score_of_stdout(text: str, metric: str) -> tuple[float, dict[str, Any]]:
             value = float(last)
         except ValueError:
             raise BadScore(f"the last stdout line is not a number or JSON: {_describe(last)}") from None
-    return score_of(value, metric)
+    return score_of(value, metric, dropped)
 
 
 # --------------------------------------------------------------------------
@@ -142,6 +161,18 @@ def _write_result(path: str, payload: Mapping[str, Any]) -> None:
     finally:
         os.close(fd)
     os.replace(tmp, path)
+
+
+def _scored(value: Any, metric: str) -> dict[str, Any]:
+    """The result file's payload for what the objective returned (scoring errors are not the objective's)."""
+    dropped: dict[str, str] = {}
+    try:
+        score, metrics = score_of(value, metric, dropped)
+    except BadScore as exc:
+        return {"ok": False, "error": f"bad result: {exc}"}
+    except Exception as exc:  # noqa: BLE001 - a result whose __eq__ or .item() raises
+        return {"ok": False, "error": f"bad result: reading the result raised {type(exc).__name__}: {exc}"[:2000]}
+    return {"ok": True, "score": score, "metrics": metrics, "dropped": dropped}
 
 
 def _child(req: Mapping[str, Any], fn: Callable[..., Any] | None, ready_w: int, keep: set[int]) -> None:
@@ -177,16 +208,15 @@ def _child(req: Mapping[str, Any], fn: Callable[..., Any] | None, ready_w: int, 
         else:
             os.environ.update(req.get("env", {}))
             assert fn is not None
+            payload: dict[str, Any]
             try:
                 value = fn(dict(req["config"]))
-                score, metrics = score_of(value, req["metric"])
-                payload: dict[str, Any] = {"ok": True, "score": score, "metrics": metrics}
-            except BadScore as exc:
-                payload = {"ok": False, "error": f"bad result: {exc}"}
             except BaseException as exc:  # noqa: BLE001 - the user's code may raise anything, SystemExit included
                 tb = traceback.format_exception(type(exc), exc, exc.__traceback__)
                 sys.stderr.write("".join(tb))
                 payload = {"ok": False, "error": f"objective raised {type(exc).__name__}: {exc}"[:2000]}
+            else:
+                payload = _scored(value, req["metric"])
             _write_result(req["result"], payload)
     except BaseException:  # noqa: BLE001 - report and leave; a child must never return into the server
         try:

@@ -68,7 +68,7 @@ class AttemptResult:
 
     trial: int
     attempt: int
-    outcome: str  # scored, failed, timeout, cancelled
+    outcome: str  # scored, failed, timeout, cancelled, superseded (settled as lost by a controller meanwhile)
     records: list[dict[str, Any]] = field(default_factory=list)
     written: bool = False
     error: str | None = None
@@ -191,11 +191,10 @@ def _run(task: AttemptTask, worker: str, cancelled: Callable[[], bool], logbook:
     except RunnerError as exc:
         # The objective cannot be imported here: the attempt fails, it did not start anything.
         started = record("started", trial=task.trial, attempt=task.attempt, worker=worker, host=socket.gethostname(), pid=None)
-        if logbook is not None:
-            logbook.append(started)
-        return _finish(task, result, logbook, started, None, str(exc), 0.0, log, out)
+        since = logbook.append(started) if logbook is not None else 0
+        return _finish(task, result, logbook, started, None, str(exc), 0.0, log, out, since=since)
     try:
-        outcome, status, started, seconds = _supervise(server, request, task, worker, logbook, cancelled)
+        outcome, status, started, seconds, since = _supervise(server, request, task, worker, logbook, cancelled)
     except RunnerError as exc:
         server.close()
         started = record("started", trial=task.trial, attempt=task.attempt, worker=worker, host=socket.gethostname(), pid=None)
@@ -212,13 +211,16 @@ def _run(task: AttemptTask, worker: str, cancelled: Callable[[], bool], logbook:
         if logbook is None:
             result.log_text = read_log(log, out)
         return result
-    return _finish(task, result, logbook, started, status, None, seconds, log, out, scratch / "result.json")
+    return _finish(task, result, logbook, started, status, None, seconds, log, out, scratch / "result.json", since)
 
 
 def _supervise(
     server: _Server, request: Mapping[str, Any], task: AttemptTask, worker: str, logbook: Logbook | None, cancelled: Callable[[], bool]
-) -> tuple[str, int | None, dict[str, Any], float]:
-    """Start the child, write ``started``, wait; returns (outcome, wait status, started record, seconds)."""
+) -> tuple[str, int | None, dict[str, Any], float, int]:
+    """Start the child, write ``started``, wait.
+
+    Returns (outcome, wait status, started record, seconds, the logbook offset after ``started``).
+    """
     server.send(request)
     hello = server.read(60.0)
     if hello is None or "pid" not in hello:
@@ -226,9 +228,10 @@ def _supervise(
     pid = int(hello["pid"])
     t0 = time.monotonic()
     started = record("started", trial=task.trial, attempt=task.attempt, worker=worker, host=socket.gethostname(), pid=pid)
+    since = 0
     if logbook is not None:
         try:
-            logbook.append(started)
+            since = logbook.append(started)
         except BaseException:
             # The logbook cannot be written (a full disk): stop the child and retire this server, whose
             # protocol would otherwise still owe the child's exit to the next attempt it is given.
@@ -243,7 +246,7 @@ def _supervise(
         wait = POLL if deadline is None or outcome != "done" else max(0.0, min(POLL, deadline - now))
         msg = server.read(wait)
         if msg is not None and "exit" in msg:
-            return outcome, int(msg["exit"]), started, time.monotonic() - t0
+            return outcome, int(msg["exit"]), started, time.monotonic() - t0, since
         now = time.monotonic()
         if outcome == "done":
             if deadline is not None and now >= deadline:
@@ -256,7 +259,7 @@ def _supervise(
         elif killed_at is not None and now - killed_at > KILL_GRACE:
             # The child ignores SIGKILL only when stuck in the kernel (D state); give up on it.
             server.close()
-            return outcome, None, started, now - t0
+            return outcome, None, started, now - t0, since
 
 
 def _killpg(pid: int) -> None:
@@ -289,9 +292,11 @@ def _finish(
     log: Path,
     out: Path | None,
     result_file: Path | None = None,
+    since: int = 0,
 ) -> AttemptResult:
     score: float | None = None
     metrics: dict[str, Any] = {}
+    dropped: dict[str, str] = {}
     payload: dict[str, Any] | None = None
     if error is None and result_file is not None and result_file.exists():
         try:
@@ -309,15 +314,17 @@ def _finish(
                 error = _exit_reason(status) if code < 0 else f"the command exited with status {code}"
             else:
                 try:
-                    score, metrics = score_of_stdout(read_text(out), task.metric)
+                    score, metrics = score_of_stdout(read_text(out), task.metric, dropped)
                 except BadScore as exc:
                     error = f"bad result: {exc}"
         elif payload is not None:
             score, metrics = float(payload["score"]), dict(payload.get("metrics") or {})
+            dropped = dict(payload.get("dropped") or {})
         else:
             error = _exit_reason(status)
     if error is None and score is not None:
-        final = record("scored", trial=task.trial, attempt=task.attempt, score=score, metrics=metrics, seconds=round(seconds, 6))
+        extra = {"dropped": dropped} if dropped else {}
+        final = record("scored", trial=task.trial, attempt=task.attempt, score=score, metrics=metrics, seconds=round(seconds, 6), **extra)
         result.outcome = "scored"
     else:
         result.error = with_tail(error or "no result", log, out)
@@ -325,7 +332,15 @@ def _finish(
         result.outcome = "failed"
     result.seconds = seconds
     if logbook is not None:
-        logbook.append(final)
+        if not logbook.append_result(final, since):
+            # A controller settled this attempt as lost (and resubmitted its trial) while it ran:
+            # the late result is not recorded, so the trial is never scored twice.
+            result.outcome = "superseded"
+            result.error = "the attempt was settled as lost while it ran; its result was not recorded"
+            result.records = [started]
+            result.written = True
+            result.seconds = seconds
+            return result
         result.records = [started, final]
         result.written = True
     else:

@@ -150,6 +150,8 @@ class Attempts:
             self.book.state[tid] = "failed"
             self.book.errors[tid] = res.error or ""
             return f"trial {tid} failed: {first_line}"
+        if res.outcome == "superseded":
+            return f"trial {tid} attempt {attempt}: {res.error}"  # its lost record is already written
         if res.outcome == "timeout":
             return self._lost(tid, attempt, "timeout", (res.error or "timed out").split("\n", 1)[0])
         return self._lost(tid, attempt, "interrupted", "cancelled")

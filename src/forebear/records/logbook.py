@@ -16,7 +16,7 @@ import json
 import os
 import threading
 import time
-from collections.abc import Iterable, Mapping
+from collections.abc import Callable, Iterable, Mapping
 from pathlib import Path
 from typing import Any
 
@@ -35,6 +35,7 @@ from forebear.records.table import (
     finite,
     fold,
 )
+from forebear.records.trim import FIT_BYTES, fit
 
 __all__ = [
     "KINDS", "MAX_RECORD_BYTES", "STATES", "TERMINAL", "VERSION", "Attempt", "ControllerLock", "Logbook",
@@ -65,20 +66,32 @@ class LogbookMismatch(ValueError):
 
 
 def record(kind: str, **fields: Any) -> dict[str, Any]:
-    """A logbook record of ``kind`` with the common fields filled in."""
+    """A logbook record of ``kind`` with the common fields filled in.
+
+    Records that carry an objective's output (``scored``, ``failed``) are fitted
+    to :data:`forebear.records.trim.FIT_BYTES` here, where they are built, so that
+    what the worker returns to the controller is already the record to write.
+    """
     if kind not in KINDS:
         msg = f"record kind must be one of {KINDS}, got {kind!r}"
         raise ValueError(msg)
-    return {"v": VERSION, "at": round(time.time(), 6), "kind": kind, **fields}
+    rec = {"v": VERSION, "at": round(time.time(), 6), "kind": kind, **fields}
+    return fit(rec) if kind in ("scored", "failed") else rec
 
 
 def _encode(rec: Mapping[str, Any]) -> bytes:
-    line = json.dumps(rec, separators=(",", ":"), allow_nan=False, default=_jsonable)
-    data = (line + "\n").encode("utf-8")
+    data = _dump(rec)
+    if len(data) > FIT_BYTES:
+        data = _dump(fit(rec))  # a record built without record(): trimmed here, by the same rule
     if len(data) > MAX_RECORD_BYTES:
         msg = f"logbook record of {len(data)} bytes exceeds {MAX_RECORD_BYTES}"
         raise ValueError(msg)
     return data
+
+
+def _dump(rec: Mapping[str, Any]) -> bytes:
+    line = json.dumps(rec, separators=(",", ":"), allow_nan=False, default=_jsonable)
+    return (line + "\n").encode("utf-8")
 
 
 def _jsonable(value: Any) -> Any:
@@ -124,21 +137,42 @@ class Logbook:
 
     # -- writing ------------------------------------------------------------
 
-    def append(self, rec: Mapping[str, Any]) -> None:
-        """Append one record durably (lock, repair a torn tail, write, fsync)."""
-        self.append_many([rec])
+    def append(self, rec: Mapping[str, Any]) -> int:
+        """Append one record durably (lock, repair a torn tail, write, fsync); returns the end offset."""
+        return self.append_many([rec])
 
-    def append_many(self, recs: Iterable[Mapping[str, Any]]) -> None:
-        """Append records under one lock hold; each is one ``os.write``."""
+    def append_result(self, rec: Mapping[str, Any], since: int) -> bool:
+        """Append an attempt's ``scored`` or ``failed`` record unless the attempt was settled as lost.
+
+        ``since`` is the offset just after the attempt's ``started`` record (what :meth:`append`
+        returned for it). Under the lock, the bytes after it are scanned for a ``lost`` record of
+        the same trial and attempt: a controller that took over (after a crash, or on Ctrl-C) may
+        have written one and resubmitted the trial, and the late result would then score it twice.
+        Returns False, writing nothing, in that case.
+        """
+        key = (rec.get("trial"), rec.get("attempt"))
+        return self.append_many([rec], unless=lambda tail: _names_lost(tail, key), since=since) >= 0
+
+    def append_many(
+        self, recs: Iterable[Mapping[str, Any]], *, unless: Callable[[bytes], bool] | None = None, since: int = 0
+    ) -> int:
+        """Append records under one lock hold; each is one ``os.write``. Returns the end offset.
+
+        With ``unless``, the bytes from ``since`` to the end are read under the lock first; when
+        ``unless(bytes)`` is true nothing is written and -1 is returned.
+        """
         payloads = [_encode(r) for r in recs]
         if not payloads:
-            return
+            return -1 if unless is not None else 0
         ensure_folder(self.path.parent)
         fd = -1
         try:
             with self._thread_guard, self.lock.acquire(timeout=120):
                 fd = open_fd(self.path, os.O_RDWR | os.O_CREAT | os.O_APPEND, what="logbook")
                 _repair_tail(fd)
+                end = os.fstat(fd).st_size
+                if unless is not None and unless(os.pread(fd, max(0, end - since), since) if end > since else b""):
+                    return -1
                 for data in payloads:
                     view = memoryview(data)
                     while view:
@@ -146,10 +180,12 @@ class Logbook:
                         # it completes or raises (ENOSPC), never leave half a record silently.
                         n = os.write(fd, view)
                         view = view[n:]
+                    end += len(data)
             # fsync after the lock is released: the record is already in place, and concurrent
             # writers' fsyncs overlap (group commit) instead of queueing behind the lock. The
             # append still returns only once its record is durable.
             os.fsync(fd)
+            return end
         except filelock.Timeout:
             msg = f"logbook {self.path}: could not take its lock {self.lock.lock_file} within 120 s"
             raise LogbookError(msg) from None
@@ -217,6 +253,22 @@ def _parse(data: bytes) -> tuple[list[dict[str, Any]], int]:
         else:
             skipped += 1
     return out, skipped
+
+
+def _names_lost(data: bytes, key: tuple[Any, Any]) -> bool:
+    """True when ``data`` (whole lines of a logbook) holds a ``lost`` record for (trial, attempt) ``key``."""
+    if b'"lost"' not in data:
+        return False
+    for line in data.split(b"\n"):
+        if b'"lost"' not in line:
+            continue
+        try:
+            rec = json.loads(line)
+        except ValueError:
+            continue
+        if isinstance(rec, dict) and rec.get("kind") == "lost" and (rec.get("trial"), rec.get("attempt")) == key:
+            return True
+    return False
 
 
 def _repair_tail(fd: int) -> None:
