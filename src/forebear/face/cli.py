@@ -2,7 +2,8 @@
 
 Output for people goes to stderr; ``--json`` output for programs goes to
 stdout. Exit status: 0 success, 1 the search ran but nothing scored, 2 bad
-input. No traceback reaches the user unless ``--debug`` is given.
+input, 128 + the signal when ``run`` stopped at once on a second Ctrl-C or
+SIGTERM (130, 143). No traceback reaches the user unless ``--debug`` is given.
 """
 
 from __future__ import annotations
@@ -30,6 +31,7 @@ from forebear.records.logbook import (
 )
 
 EXIT_OK, EXIT_NOTHING_SCORED, EXIT_BAD_INPUT = 0, 1, 2
+EXIT_INTERRUPTED = 130  # 128 + SIGINT, the shell's convention: stopped at once (143 after SIGTERM)
 
 
 class Exit(Exception):
@@ -139,7 +141,18 @@ def run(spec: str, extend: bool, cancel_running: bool, detach: bool, quiet: bool
     else:
         controller = _optional("forebear.loop.controller", "forebear run")
         from forebear.face.progress import Progress
-        result = controller.Controller(loaded, extend=extend, quiet=quiet, cancel_running=cancel_running, display=Progress).run()
+        from forebear.loop.stopping import StopNow
+
+        try:
+            result = controller.Controller(loaded, extend=extend, quiet=quiet, cancel_running=cancel_running, display=Progress).run()
+        except StopNow as exc:
+            raise Exit(
+                f"stopped at once on {exc.why}: running attempts were recorded as lost and the logbook closed; "
+                f"run the same command to resume",
+                exc.exit_status,
+            ) from None
+        except KeyboardInterrupt:
+            raise Exit("interrupted before the search loop started; nothing was recorded as lost; run the same command to resume", EXIT_INTERRUPTED) from None
     if as_json:
         emit_json(result.to_dict())
     if result.best is None and not detach:

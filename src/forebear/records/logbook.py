@@ -150,8 +150,22 @@ class Logbook:
         have written one and resubmitted the trial, and the late result would then score it twice.
         Returns False, writing nothing, in that case.
         """
+        return self.append_unless(rec, ("lost",), since)
+
+    def append_unless(self, rec: Mapping[str, Any], kinds: tuple[str, ...], since: int) -> bool:
+        """Append ``rec`` unless a record of one of ``kinds`` for its (trial, attempt) follows offset ``since``.
+
+        The check and the write happen under one hold of the lock. Returns whether ``rec`` was written.
+        """
         key = (rec.get("trial"), rec.get("attempt"))
-        return self.append_many([rec], unless=lambda tail: _names_lost(tail, key), since=since) >= 0
+        return self.append_many([rec], unless=lambda tail: _names(tail, kinds, key), since=since) >= 0
+
+    def size(self) -> int:
+        """The logbook's size in bytes now (0 when it does not exist yet)."""
+        try:
+            return self.path.stat().st_size
+        except FileNotFoundError:
+            return 0
 
     def append_many(
         self, recs: Iterable[Mapping[str, Any]], *, unless: Callable[[bytes], bool] | None = None, since: int = 0
@@ -255,18 +269,19 @@ def _parse(data: bytes) -> tuple[list[dict[str, Any]], int]:
     return out, skipped
 
 
-def _names_lost(data: bytes, key: tuple[Any, Any]) -> bool:
-    """True when ``data`` (whole lines of a logbook) holds a ``lost`` record for (trial, attempt) ``key``."""
-    if b'"lost"' not in data:
+def _names(data: bytes, kinds: tuple[str, ...], key: tuple[Any, Any]) -> bool:
+    """True when ``data`` (whole lines of a logbook) holds a record of ``kinds`` for (trial, attempt) ``key``."""
+    needles = [f'"{k}"'.encode() for k in kinds]
+    if not any(n in data for n in needles):
         return False
     for line in data.split(b"\n"):
-        if b'"lost"' not in line:
+        if not any(n in line for n in needles):
             continue
         try:
             rec = json.loads(line)
         except ValueError:
             continue
-        if isinstance(rec, dict) and rec.get("kind") == "lost" and (rec.get("trial"), rec.get("attempt")) == key:
+        if isinstance(rec, dict) and rec.get("kind") in kinds and (rec.get("trial"), rec.get("attempt")) == key:
             return True
     return False
 
