@@ -164,3 +164,21 @@ def huge_metrics(config: dict[str, Any]) -> dict[str, Any]:
 def beyond_float(config: dict[str, Any]) -> int:
     """An int too large for a double: scoring it must fail as a bad result, not as the objective."""
     return 10**400
+
+
+def leave_processes(config: dict[str, Any]) -> float:
+    """Start a plain child and a grandchild that calls setsid, write their pids, then return (or hang).
+
+    The grandchild escapes the attempt's process group; only a subreaper finds it (issue 15, item 3).
+    """
+    import subprocess
+    import sys
+
+    plain = subprocess.Popen(["sleep", "300"])
+    # The middle process starts the setsid sleeper and exits at once: the sleeper is an orphan.
+    code = "import os, subprocess, sys; d = subprocess.DEVNULL; p = subprocess.Popen(['sleep', '301'], start_new_session=True, stdin=d, stdout=d, stderr=d); print(p.pid)"
+    escaped = int(subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout)
+    Path(config["pidfile"]).write_text(f"{plain.pid} {escaped}")
+    if config.get("hang"):
+        hang(config)
+    return 0.5

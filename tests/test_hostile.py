@@ -222,3 +222,62 @@ def test_a_result_that_arrives_after_its_attempt_was_settled_lost_is_not_recorde
     book2, task2 = shared_task(tmp_path / "b", "objectives:quadratic")
     book2.append(record("lost", trial=3, attempt=2, reason="restart"))
     assert run_attempt(task2).outcome == "scored"  # type: ignore[arg-type]
+
+
+# -- 3: whatever an attempt starts ends with it, a setsid grandchild included -----------------------
+
+
+def _gone(pid: int, within: float = 10.0) -> bool:
+    import time
+
+    end = time.monotonic() + within
+    while time.monotonic() < end:
+        try:
+            os.kill(pid, 0)
+        except ProcessLookupError:
+            return True
+        try:  # a zombie not yet reaped by its parent counts as gone
+            if open(f"/proc/{pid}/stat").read().rsplit(")", 1)[1].split()[0] == "Z":
+                return True
+        except OSError:
+            return True
+        time.sleep(0.05)
+    return False
+
+
+@pytest.mark.timeout(60)
+@pytest.mark.parametrize("hang", [False, True], ids=["clean-exit", "timeout"])
+def test_processes_an_attempt_starts_end_with_it(tmp_path: Path, hang: bool) -> None:
+    import signal
+    import sys
+
+    from forebear.cluster.runner import AttemptTask, run_attempt
+
+    pidfile = tmp_path / "pids"
+    task = AttemptTask(search="t", trial=0, attempt=1, config={"pidfile": str(pidfile), "hang": hang}, metric="loss",
+                       call="objectives:leave_processes", timeout=3.0 if hang else None)
+    try:
+        res = run_attempt(task)
+        assert res.outcome == ("timeout" if hang else "scored"), res.error
+        pids = [int(p) for p in pidfile.read_text().split()]
+        if sys.platform.startswith("linux"):
+            assert all(_gone(p) for p in pids), pids
+        else:
+            assert _gone(pids[0])
+    finally:
+        for p in (int(x) for x in (pidfile.read_text().split() if pidfile.exists() else [])):
+            try:
+                os.kill(p, signal.SIGKILL)
+            except ProcessLookupError:
+                pass
+
+
+def test_a_command_that_leaves_a_background_process_takes_it_along(tmp_path: Path) -> None:
+    from forebear.cluster.runner import AttemptTask, run_attempt
+
+    pidfile = tmp_path / "bg"
+    task = AttemptTask(search="t", trial=0, attempt=1, config={"x": 0.25}, metric="loss",
+                       command=("sh", "-c", f"sleep 300 & echo $! > {pidfile}; echo {{x}}"))
+    res = run_attempt(task)
+    assert res.outcome == "scored" and res.records[-1]["score"] == 0.25
+    assert _gone(int(pidfile.read_text()))

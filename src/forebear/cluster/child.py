@@ -9,6 +9,10 @@ command objective's argv. The server reports the child's pid and, when it
 exits, its wait status. If the worker dies the server's stdin closes and the
 server kills the running child's group before it exits; the child also gets
 SIGKILL from the kernel when the server dies (Linux ``PR_SET_PDEATHSIG``).
+When a child exits (or is killed), whatever it left running dies with it: its
+process group, and on Linux, where the server is a child subreaper
+(``PR_SET_CHILD_SUBREAPER``), every descendant that escaped into a session of
+its own, since orphans are re-parented to the server instead of to init.
 
 Protocol, one JSON object a line: the server first says ``{"ready": true}``
 (or ``{"ready": false, "error": ...}``); a request ``{"op": "run", ...}`` is
@@ -18,10 +22,9 @@ kills the running child's group. Nothing here imports Dask.
 
 from __future__ import annotations
 
-import ctypes
 import importlib
+import importlib.util
 import json
-import math
 import os
 import select
 import signal
@@ -31,126 +34,35 @@ import traceback
 from collections.abc import Callable, Mapping
 from typing import Any
 
-PR_SET_PDEATHSIG = 1  # from <linux/prctl.h>
 
+def _sibling(name: str) -> Any:
+    """A standard-library-only module of this folder, also when this file runs as a script.
 
-class BadScore(ValueError):
-    """An objective result that is not a usable score; the message says what came back."""
-
-    def __reduce__(self) -> tuple[Any, ...]:
-        return (self.__class__, self.args)
-
-
-# --------------------------------------------------------------------------
-# scores
-
-
-def _describe(value: Any, limit: int = 80) -> str:
-    text = repr(value)
-    return text if len(text) <= limit else text[: limit - 3] + "..."
-
-
-def _number(value: Any) -> float | None:
-    if isinstance(value, bool):
-        return None
-    if isinstance(value, int):
-        try:
-            return float(value)
-        except OverflowError:  # an int beyond the largest double (10**400): as large as a float gets
-            return math.inf if value > 0 else -math.inf
-    if isinstance(value, float):
-        return value
-    if hasattr(value, "item") and callable(value.item):  # numpy and torch scalars
-        try:
-            item = value.item()
-        except (TypeError, ValueError, RuntimeError):
-            return None
-        return _number(item) if not hasattr(item, "item") else None
-    return None
-
-
-def score_of(value: Any, metric: str, dropped: dict[str, str] | None = None) -> tuple[float, dict[str, Any]]:
-    """The score and the metrics of an objective result.
-
-    A bare number is the metric itself; a mapping must hold ``metric``. Side
-    metrics that are not finite numbers, text, booleans or null are left out of
-    the metrics; when ``dropped`` is given, each one is named there with why.
-
-    Raises
-    ------
-    BadScore
-        For NaN, inf, a missing metric or anything that is not a number.
+    The runner starts this file directly (the package's own imports would add seconds to
+    every server start), so ``forebear.cluster`` is not importable as a package here.
     """
-    if isinstance(value, Mapping):
-        if metric not in value:
-            keys = ", ".join(map(str, list(value)[:10])) or "none"
-            raise BadScore(f"the result has no metric {metric!r} (keys: {keys})")
-        metrics: dict[str, Any] = {}
-        for k, v in value.items():
-            num = _number(v)
-            if num is not None and math.isfinite(num):
-                metrics[str(k)] = num
-            elif isinstance(v, (str, bool)) or v is None:
-                metrics[str(k)] = v
-            elif dropped is not None and k != metric:
-                dropped[str(k)[:200]] = _why_not(v, num)
-        score = _check(value[metric], metric)
-        metrics[metric] = score
-        return score, metrics
-    score = _check(value, metric)
-    return score, {metric: score}
+    if __package__:
+        return importlib.import_module(f"{__package__}.{name}")
+    full = f"_forebear_child_{name}"
+    if full in sys.modules:
+        return sys.modules[full]
+    spec = importlib.util.spec_from_file_location(full, os.path.join(os.path.dirname(os.path.abspath(__file__)), f"{name}.py"))
+    assert spec is not None and spec.loader is not None
+    module = importlib.util.module_from_spec(spec)
+    sys.modules[full] = module
+    spec.loader.exec_module(module)
+    return module
 
 
-def _why_not(value: Any, num: float | None) -> str:
-    if num is None:
-        return f"{type(value).__name__}, not a number"
-    if math.isnan(num):
-        return "NaN"
-    return f"{'+' if num > 0 else '-'}inf" + (" (an int beyond the largest float)" if isinstance(value, int) else "")
-
-
-def _check(value: Any, metric: str) -> float:
-    num = _number(value)
-    if num is None:
-        raise BadScore(f"metric {metric!r} is {type(value).__name__} {_describe(value)}, not a number")
-    if math.isnan(num):
-        raise BadScore(f"metric {metric!r} is NaN")
-    if math.isinf(num):
-        if isinstance(value, int):
-            raise BadScore(f"metric {metric!r} is an int of {len(str(abs(value)))} digits, beyond the largest float")
-        raise BadScore(f"metric {metric!r} is {'+' if num > 0 else '-'}inf")
-    return num
-
-
-def score_of_stdout(text: str, metric: str, dropped: dict[str, str] | None = None) -> tuple[float, dict[str, Any]]:
-    """Score a command objective from its stdout: the last non-empty line, JSON or a bare number."""
-    lines = [ln.strip() for ln in text.splitlines() if ln.strip()]
-    if not lines:
-        raise BadScore("stdout was empty; the last line must be a number or a JSON object with the metric")
-    last = lines[-1]
-    try:
-        value = json.loads(last)
-    except ValueError:
-        try:
-            value = float(last)
-        except ValueError:
-            raise BadScore(f"the last stdout line is not a number or JSON: {_describe(last)}") from None
-    return score_of(value, metric, dropped)
+_scoring = _sibling("scoring")
+_tree = _sibling("tree")
+BadScore = _scoring.BadScore
+score_of = _scoring.score_of
+score_of_stdout = _scoring.score_of_stdout
 
 
 # --------------------------------------------------------------------------
 # the child
-
-
-def _pdeathsig(sig: int) -> None:
-    """Ask Linux to send ``sig`` to this process when its parent dies (no-op elsewhere)."""
-    if not sys.platform.startswith("linux"):
-        return
-    try:
-        libc = ctypes.CDLL(None, use_errno=True)
-        libc.prctl(PR_SET_PDEATHSIG, sig, 0, 0, 0)
-    except (OSError, AttributeError):
-        pass
 
 
 def _write_result(path: str, payload: Mapping[str, Any]) -> None:
@@ -180,7 +92,7 @@ def _child(req: Mapping[str, Any], fn: Callable[..., Any] | None, ready_w: int, 
     code = 0
     try:
         os.setsid()
-        _pdeathsig(signal.SIGKILL)
+        _tree.pdeathsig(signal.SIGKILL)
         signal.signal(signal.SIGINT, signal.SIG_DFL)
         signal.signal(signal.SIGTERM, signal.SIG_DFL)
         signal.signal(signal.SIGPIPE, signal.SIG_DFL)
@@ -253,16 +165,7 @@ def _send(fd: int, payload: Mapping[str, Any]) -> None:
     os.write(fd, (json.dumps(payload) + "\n").encode())
 
 
-def _kill_group(pid: int) -> None:
-    try:
-        os.killpg(pid, signal.SIGKILL)
-    except ProcessLookupError:
-        pass
-    except PermissionError:
-        pass
-
-
-def _wait_child(pid: int, inp: Any, out_fd: int) -> bool:
+def _wait_child(pid: int, inp: Any, out_fd: int, keep: set[int]) -> bool:
     """Wait for the child; return False when stdin closed (the worker is gone)."""
     try:
         pidfd = os.pidfd_open(pid)
@@ -277,11 +180,12 @@ def _wait_child(pid: int, inp: Any, out_fd: int) -> bool:
                 line = inp.readline()
                 if not line:
                     alive = False
-                    _kill_group(pid)
+                    _tree.kill_group(pid)
                 elif json.loads(line).get("op") == "kill":
-                    _kill_group(pid)
+                    _tree.kill_group(pid)
             done, status = os.waitpid(pid, os.WNOHANG)
             if done:
+                _tree.end_tree(pid, keep)
                 if alive:
                     _send(out_fd, {"exit": status})
                 return alive
@@ -305,6 +209,7 @@ def serve(call: str | None, path: str | None) -> int:
         except BaseException as exc:  # noqa: BLE001 - any import-time failure is reported to the runner
             _send(proto, {"ready": False, "error": f"cannot import objective {call}: {type(exc).__name__}: {exc}"[:2000]})
             return 1
+    _tree.become_subreaper()
     _send(proto, {"ready": True, "pid": os.getpid()})
     signal.signal(signal.SIGINT, signal.SIG_IGN)  # Ctrl-C in a terminal reaches the worker's group; the worker decides
     while True:
@@ -316,6 +221,7 @@ def serve(call: str | None, path: str | None) -> int:
             continue
         for stream in (sys.stdout, sys.stderr):
             stream.flush()
+        before = _tree.children()  # processes the user's module started at import are not the attempt's
         ready_r, ready_w = os.pipe()
         pid = os.fork()
         if pid == 0:
@@ -325,7 +231,7 @@ def serve(call: str | None, path: str | None) -> int:
         os.read(ready_r, 1)  # the child has its own session now: killpg(pid) reaches it
         os.close(ready_r)
         _send(proto, {"pid": pid, "at": time.time()})
-        if not _wait_child(pid, inp, proto):
+        if not _wait_child(pid, inp, proto, before):
             return 0
 
 

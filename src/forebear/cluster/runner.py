@@ -30,7 +30,7 @@ from pathlib import Path
 from typing import Any
 
 from forebear.cluster.capture import read_log, read_text, with_tail
-from forebear.cluster.child import BadScore, score_of_stdout
+from forebear.cluster.scoring import BadScore, score_of_stdout
 from forebear.cluster.servers import RunnerError, _acquire, _release, _Server, shutdown_servers
 from forebear.records.logbook import Logbook, ensure_folder, record
 
