@@ -281,3 +281,41 @@ def test_a_command_that_leaves_a_background_process_takes_it_along(tmp_path: Pat
     res = run_attempt(task)
     assert res.outcome == "scored" and res.records[-1]["score"] == 0.25
     assert _gone(int(pidfile.read_text()))
+
+
+# -- 8: records with wrong field types are skipped with their line numbers; --json is standard JSON ---
+
+
+def test_records_with_wrong_field_types_are_skipped_and_named_by_line(tmp_path: Path) -> None:
+    log = small_logbook(tmp_path / "x.jsonl")
+    with open(log, "a") as fh:
+        fh.write(json.dumps({"v": 1, "at": 2, "kind": "proposed", "trial": 1, "round": 0, "config": [1, 2]}) + "\n")
+        fh.write(json.dumps({"v": 1, "at": 2, "kind": "proposed", "trial": 2, "round": 0, "config": {"x": 0.9}}) + "\n")
+        fh.write(json.dumps({"v": 1, "at": 3, "kind": "scored", "trial": 2, "attempt": 1, "score": "-1e9", "metrics": {}}) + "\n")
+        fh.write('{"v": 1, "at": 3, "kind": "scored", "trial": 2, "attempt": 1, "score": -1e400, "metrics": {}}\n')
+        fh.write('{"v": 1, "at": 3, "kind": "scored", "trial": 0, "attempt": 2, "score": 0.5, "metrics": {"m": 1e400}}\n')
+    table = Logbook(log).fold()
+    assert [n for n, _ in table.invalid] == [4, 6, 7] and table.bad_lines == [4, 6, 7]
+    assert "'config' must be a mapping, got [1, 2]" in table.invalid[0][1]
+    assert "'score' must be a finite number, got '-1e9'" in table.invalid[1][1]
+    code, out, err = cli("best", str(log), "--json")
+    assert code == 0, err
+    best = json.loads(out)  # standard JSON: Python's parser accepts NaN/Infinity, so check the text too
+    assert best["trial"] == 0 and best["score"] == 0.25
+    assert "Infinity" not in out and "NaN" not in out
+    assert "3 record(s) with wrong field types" in err and "line(s) 4, 6, 7" in err
+    code, out, err = cli("status", str(log), "--json")
+    assert code == 0 and json.loads(out)["bad_lines"] == [4, 6, 7] and json.loads(out)["invalid_records"] == 3
+    code, _, err = cli("status", str(log))
+    assert code == 0 and "Traceback" not in err and "line(s) 4, 6, 7" in err
+
+
+def test_json_output_has_no_non_standard_numbers(tmp_path: Path) -> None:
+    log = tmp_path / "x.jsonl"
+    small_logbook(log)
+    with open(log, "a") as fh:  # a metric of infinity in the best trial's later record
+        fh.write('{"v": 1, "at": 3, "kind": "proposed", "trial": 5, "round": 0, "config": {"x": 1e400}}\n')
+        fh.write('{"v": 1, "at": 3, "kind": "scored", "trial": 5, "attempt": 1, "score": 0.1, "metrics": {"m": -1e400}}\n')
+    code, out, err = cli("best", str(log), "--json")
+    assert code == 0, err
+    assert "Infinity" not in out and json.loads(out)["metrics"]["m"] is None and json.loads(out)["config"]["x"] is None

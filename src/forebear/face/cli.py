@@ -12,6 +12,7 @@ import csv
 import functools
 import importlib
 import json
+import math
 import sys
 from collections.abc import Callable
 from pathlib import Path
@@ -47,7 +48,32 @@ def say(message: str = "") -> None:
 
 
 def emit_json(payload: Any) -> None:
-    click.echo(json.dumps(payload, indent=2, default=str))
+    """Standard JSON on stdout: a non-finite number (from a hand-edited logbook) becomes null, never NaN or Infinity."""
+    click.echo(json.dumps(_finite(payload), indent=2, default=str, allow_nan=False))
+
+
+def _finite(value: Any) -> Any:
+    if isinstance(value, float):
+        return value if math.isfinite(value) else None
+    if isinstance(value, dict):
+        return {k: _finite(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_finite(v) for v in value]
+    return value
+
+
+def skipped_note(table: TrialTable) -> str | None:
+    """One line on what the fold skipped (unreadable lines, records with wrong field types), with line numbers."""
+    parts = []
+    if table.skipped:
+        parts.append(f"{table.skipped} unreadable line(s)")
+    if table.invalid:
+        parts.append(f"{len(table.invalid)} record(s) with wrong field types ({table.invalid[0][1]})")
+    if not parts:
+        return None
+    lines = table.bad_lines
+    where = f" at line(s) {', '.join(map(str, lines[:10]))}{', ...' if len(lines) > 10 else ''}" if lines else ""
+    return f"note: {' and '.join(parts)} skipped{where}"
 
 
 def guarded(fn: Callable[..., Any]) -> Callable[..., Any]:
@@ -216,6 +242,8 @@ def status(logbook: str, as_json: bool) -> None:
         "best": _best_payload(table) if best else None,
         "closed": (table.closed or {}).get("reason"),
         "skipped_lines": table.skipped,
+        "invalid_records": len(table.invalid),
+        "bad_lines": table.bad_lines,
         "running": [{"trial": t.trial, "attempt": t.last_attempt, "worker": t.attempts[-1].worker if t.attempts else None} for t in table.by_state("running")],
     }
     if as_json:
@@ -231,8 +259,9 @@ def status(logbook: str, as_json: bool) -> None:
         say(f"  closed: {table.closed.get('reason')}")
     elif table.trials:
         say("  not closed (running, or the controller stopped without closing)")
-    if table.skipped:
-        say(f"  note: {table.skipped} unreadable line(s) skipped")
+    note = skipped_note(table)
+    if note:
+        say(f"  {note}")
 
 
 def _best_payload(table: TrialTable) -> dict[str, Any]:
@@ -256,6 +285,9 @@ def _best_payload(table: TrialTable) -> dict[str, Any]:
 def best(logbook: str, as_json: bool) -> None:
     """Print the best configuration recorded in LOGBOOK."""
     table = _table(logbook)
+    note = skipped_note(table)
+    if note:
+        say(note)
     if table.best() is None:
         if as_json:
             emit_json(None)

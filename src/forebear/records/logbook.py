@@ -218,25 +218,33 @@ class Logbook:
 
     def read(self) -> tuple[list[dict[str, Any]], int]:
         """All parseable records in order, and the count of lines skipped."""
+        return parse(self.read_bytes())
+
+    def read_bytes(self) -> bytes:
+        """The logbook's bytes (b"" when it does not exist yet)."""
         try:
-            data = read_regular(self.path, what="logbook")
+            return read_regular(self.path, what="logbook")
         except FileNotFoundError:
-            return [], 0
+            return b""
         except NotRegularFile as exc:
             raise LogbookError(exc.errno or 0, str(exc.args[-1])) from None
         except OSError as exc:
             msg = f"logbook {self.path}: cannot read: {exc.strerror or exc}"
             raise LogbookError(exc.errno or 0, msg) from exc
-        return parse(data)
 
     def records(self) -> list[dict[str, Any]]:
         return self.read()[0]
 
     def fold(self) -> TrialTable:
-        recs, skipped = self.read()
+        """The trial table; lines that do not parse and records with wrong field types are skipped and counted."""
+        data = self.read_bytes()
+        recs, skipped = parse(data)
         table = fold(recs)
         table.skipped = skipped
+        if skipped or table.invalid:
+            table.bad_lines = bad_lines(data, {n for n, _ in table.invalid})
         return table
+
 
 def parse(data: bytes) -> tuple[list[dict[str, Any]], int]:
     """Parse logbook bytes; returns records and the count of unparseable lines."""
@@ -284,6 +292,27 @@ def _names(data: bytes, kinds: tuple[str, ...], key: tuple[Any, Any]) -> bool:
         if isinstance(rec, dict) and rec.get("kind") in kinds and (rec.get("trial"), rec.get("attempt")) == key:
             return True
     return False
+
+
+def bad_lines(data: bytes, invalid: set[int]) -> list[int]:
+    """Line numbers (from 1) of lines that do not parse as records, and of records numbered in ``invalid``."""
+    out: list[int] = []
+    number = 0
+    for i, line in enumerate(data.split(b"\n"), 1):
+        if not line.strip():
+            continue
+        try:
+            rec = json.loads(line)
+        except ValueError:
+            out.append(i)
+            continue
+        if not (isinstance(rec, dict) and "kind" in rec):
+            out.append(i)
+            continue
+        number += 1
+        if number in invalid:
+            out.append(i)
+    return out
 
 
 def _repair_tail(fd: int) -> None:

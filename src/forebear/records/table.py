@@ -110,6 +110,8 @@ class TrialTable:
     header: dict[str, Any] | None = None
     closed: dict[str, Any] | None = None
     skipped: int = 0
+    invalid: list[tuple[int, str]] = field(default_factory=list)  # (record number from 1, what is wrong), skipped
+    bad_lines: list[int] = field(default_factory=list)  # line numbers of skipped lines, set by Logbook.fold
     unknown: int = 0
     duplicates: int = 0
     first_at: float | None = None
@@ -169,8 +171,13 @@ def fold(records: Iterable[Mapping[str, Any]]) -> TrialTable:
 def _fold(records: Iterable[Mapping[str, Any]]) -> TrialTable:
     table = TrialTable()
     trials = table.trials
-    for rec in records:
+    for number, rec in enumerate(records, 1):
         kind = rec.get("kind")
+        check = _CHECKS.get(kind)  # type: ignore[arg-type]
+        wrong = check(rec) if check is not None else None
+        if wrong is not None:
+            table.invalid.append((number, f"{kind} record: {wrong}"))
+            continue
         at = rec.get("at")
         if isinstance(at, (int, float)):
             if table.first_at is None:
@@ -244,6 +251,64 @@ def _fold(records: Iterable[Mapping[str, Any]]) -> TrialTable:
                 t.state = "queued"
                 t.error = f"attempt {attempt_no} lost ({rec.get('reason')})"
     return table
+
+
+# --------------------------------------------------------------------------
+# field types: a record that breaks them is skipped, as an unparseable line is
+
+
+def _is_int(x: Any) -> bool:
+    return isinstance(x, int) and not isinstance(x, bool)
+
+
+def _is_num(x: Any) -> bool:
+    return isinstance(x, (int, float)) and not isinstance(x, bool) and math.isfinite(x)
+
+
+def _fields(rec: Mapping[str, Any], rules: tuple[tuple[str, Any, str, bool], ...]) -> str | None:
+    """The first rule ``rec`` breaks, as words; rules are (field, test, what it must be, required)."""
+    if not _is_num(rec.get("at", 0)):
+        return f"'at' must be a finite number, got {_short(rec.get('at'))}"
+    for name, test, what, required in rules:
+        if name not in rec:
+            if required:
+                return f"no {name!r}"
+            continue
+        value = rec[name]
+        if not test(value):
+            return f"{name!r} must be {what}, got {_short(value)}"
+    return None
+
+
+def _short(value: Any) -> str:
+    text = repr(value)
+    return text if len(text) <= 40 else text[:37] + "..."
+
+
+_TRIAL = ("trial", _is_int, "an integer", True)
+_ATTEMPT = ("attempt", lambda x: _is_int(x) and x >= 1, "an integer >= 1", False)
+
+
+def _text_or_none(x: Any) -> bool:
+    return x is None or isinstance(x, str)
+
+
+_RULES: dict[str, tuple[tuple[str, Any, str, bool], ...]] = {
+    "search": (("objective", lambda x: isinstance(x, dict), "a mapping", False), ("name", _text_or_none, "text", False)),
+    "proposed": (_TRIAL, ("config", lambda x: isinstance(x, dict), "a mapping", True),
+                 ("round", lambda x: _is_int(x) and x >= 0, "an integer >= 0", False),
+                 ("source", _text_or_none, "text", False), ("model", _text_or_none, "text", False),
+                 ("acquisition", lambda x: x is None or _is_num(x), "a finite number or null", False)),
+    "started": (_TRIAL, _ATTEMPT),
+    "scored": (_TRIAL, _ATTEMPT, ("score", _is_num, "a finite number", True),
+               ("metrics", lambda x: x is None or isinstance(x, dict), "a mapping", False),
+               ("seconds", lambda x: x is None or _is_num(x), "a finite number or null", False)),
+    "failed": (_TRIAL, _ATTEMPT, ("error", _text_or_none, "text", False),
+               ("retryable", lambda x: isinstance(x, bool), "true or false", False)),
+    "lost": (_TRIAL, _ATTEMPT, ("reason", _text_or_none, "text", False)),
+    "closed": (("reason", _text_or_none, "text", False), ("best", lambda x: x is None or _is_int(x), "a trial number or null", False)),
+}
+_CHECKS = {kind: (lambda rec, rules=rules: _fields(rec, rules)) for kind, rules in _RULES.items()}
 
 
 def _attempt(t: Trial, n: int) -> Attempt:
