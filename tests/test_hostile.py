@@ -319,3 +319,41 @@ def test_json_output_has_no_non_standard_numbers(tmp_path: Path) -> None:
     code, out, err = cli("best", str(log), "--json")
     assert code == 0, err
     assert "Infinity" not in out and json.loads(out)["metrics"]["m"] is None and json.loads(out)["config"]["x"] is None
+
+
+# -- 10: messages that name the real problem ------------------------------------------------------
+
+
+@pytest.mark.parametrize(
+    ("header", "fragment"),
+    [
+        ({"at": 1, "kind": "search", "objective": {"minimize": "l"}}, "the search record has no format version (v)"),
+        ({"v": "1", "at": 1, "kind": "search", "objective": {"minimize": "l"}}, "format version '1' is not a whole number"),
+        ({"v": -5, "at": 1, "kind": "search", "objective": {"minimize": "l"}}, "format version -5 was never written by forebear"),
+        ({"v": 9, "at": 1, "kind": "search", "objective": {"minimize": "l"}}, "format version 9 is newer than this forebear reads (1)"),
+    ],
+)
+def test_format_version_messages(tmp_path: Path, header: dict, fragment: str) -> None:
+    log = tmp_path / "x.jsonl"
+    log.write_text(json.dumps(header) + "\n")
+    code, _, err = cli("status", str(log))
+    assert code == 2 and fragment in err and "newer" not in err.replace(fragment, "") and len(err.strip().splitlines()) == 1
+
+
+def test_an_infinite_duration_says_so(tmp_path: Path) -> None:
+    spec = tmp_path / "s.yaml"
+    spec.write_text("objective: {call: m:f, minimize: l}\nspace: {x: {float: [0, 1]}}\nbudget: {trial_timeout: .inf}\n")
+    code, _, err = cli("check", str(spec))
+    assert code == 2 and "must be a finite number of seconds, got inf; leave the key out for no limit" in err
+
+
+def test_a_lock_file_that_cannot_be_created_is_not_reported_as_another_controller(tmp_path: Path) -> None:
+    from forebear.records.locks import ControllerLock
+
+    book = Logbook(tmp_path / "x.jsonl")
+    (tmp_path / "x.jsonl.controller.lock").mkdir()  # something in the way of the lock file
+    with pytest.raises(LogbookError) as info:
+        ControllerLock(book).acquire()
+    message = str(info.value.args[-1])
+    assert "cannot create its lock file" in message or "is not a regular file" in message
+    assert "driven by" not in message

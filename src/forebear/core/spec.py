@@ -201,7 +201,10 @@ def _describe(v: Any) -> str:
 def parse_duration(value: Any) -> float:
     """Seconds from ``90``, ``"90s"``, ``"20m"`` or ``"6h"``; ``ValueError`` otherwise."""
     if _is_number(value):
-        if value <= 0 or not math.isfinite(value):
+        if not math.isfinite(value):
+            msg = f"duration must be a finite number of seconds, got {value}; leave the key out for no limit"
+            raise ValueError(msg)
+        if value <= 0:
             msg = f"duration must be > 0, got {value}"
             raise ValueError(msg)
         return float(value)

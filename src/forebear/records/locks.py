@@ -80,17 +80,40 @@ class ControllerLock:
             self._lock = filelock.FileLock(lock_path, thread_local=False, mode=0o600)
 
     def acquire(self) -> None:
+        from forebear.records.logbook import LogbookError  # the logbook module imports this one
+
         ensure_folder(self.logbook.path.parent)
         try:
             self._lock.acquire(timeout=0)
         except filelock.Timeout:
+            problem = self._cannot_create()
+            if problem:
+                raise LogbookError(problem) from None
             raise LogbookBusy(self.holder_message()) from None
+        except OSError as exc:
+            msg = f"logbook {self.logbook.path}: cannot create its lock file {self._lock.lock_file}: {exc.strerror or exc}"
+            raise LogbookError(exc.errno or 0, msg) from None
         info = {"pid": os.getpid(), "host": socket.gethostname(), "since": time.time()}
-        fd = os.open(self.info_path, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o600)
         try:
-            os.write(fd, json.dumps(info).encode())
-        finally:
-            os.close(fd)
+            fd = os.open(self.info_path, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o600)
+            try:
+                os.write(fd, json.dumps(info).encode())
+            finally:
+                os.close(fd)
+        except OSError as exc:
+            self._lock.release(force=True)
+            msg = f"logbook {self.logbook.path}: cannot write {self.info_path}: {exc.strerror or exc}"
+            raise LogbookError(exc.errno or 0, msg) from None
+
+    def _cannot_create(self) -> str | None:
+        """Why the lock file cannot be created, when that (not a live holder) is why the lock was refused."""
+        lock_file = Path(self._lock.lock_file)
+        if lock_file.exists():
+            return None if lock_file.is_file() else f"logbook {self.logbook.path}: its lock file {lock_file} is not a regular file"
+        folder = lock_file.parent
+        if not os.access(folder, os.W_OK | os.X_OK):
+            return f"logbook {self.logbook.path}: cannot create its lock file {lock_file}: the folder {folder} is not writable"
+        return None
 
     def holder_message(self) -> str:
         try:

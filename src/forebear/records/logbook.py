@@ -356,12 +356,25 @@ def check_header(table: TrialTable, path: Path, spec_hash: str | None = None) ->
             raise LogbookMismatch(msg)
         return
     v = table.header.get("v")
-    if not isinstance(v, int) or v > VERSION:
-        msg = f"logbook {path}: format version {v!r} is newer than this forebear reads ({VERSION}); upgrade forebear"
-        raise LogbookMismatch(msg)
+    problem = _version_problem(v)
+    if problem:
+        raise LogbookMismatch(f"logbook {path}: {problem}")
     if spec_hash is not None and table.header.get("spec_hash") != spec_hash:
         msg = f"logbook {path}: belongs to another search (spec hash {table.header.get('spec_hash')}, this spec {spec_hash})"
         raise LogbookMismatch(msg)
+
+
+def _version_problem(v: Any) -> str | None:
+    """What is wrong with a search record's format version ``v``, or None when this forebear reads it."""
+    if v is None:
+        return "the search record has no format version (v); not written by forebear, or edited by hand"
+    if not isinstance(v, int) or isinstance(v, bool):
+        return f"format version {v!r} is not a whole number; not written by forebear, or edited by hand"
+    if v < 1:
+        return f"format version {v} was never written by forebear (versions start at 1)"
+    if v > VERSION:
+        return f"format version {v} is newer than this forebear reads ({VERSION}); upgrade forebear"
+    return None
 
 
 def load(path: str | os.PathLike[str]) -> TrialTable:
