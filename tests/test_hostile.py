@@ -357,3 +357,30 @@ def test_a_lock_file_that_cannot_be_created_is_not_reported_as_another_controlle
     message = str(info.value.args[-1])
     assert "cannot create its lock file" in message or "is not a regular file" in message
     assert "driven by" not in message
+
+
+# -- 9: numbers at the edges ------------------------------------------------------------------------
+
+
+def test_a_float_range_wider_than_the_largest_double_is_refused(tmp_path: Path) -> None:
+    spec = tmp_path / "s.yaml"
+    spec.write_text("objective: {call: m:f, minimize: l}\nspace: {x: {float: [-1.0e308, 1.0e308]}}\n")
+    code, _, err = cli("check", str(spec))
+    assert code == 2 and "is wider than the largest float" in err and "line 2" in err
+
+
+def test_categories_that_are_one_value_are_refused_and_distinct_ones_stay_distinct() -> None:
+    import numpy as np
+
+    from forebear.engine.proposer import Proposer
+
+    with pytest.raises(ValueError, match=r"1 and 1.0 are one category"):
+        Space.from_dict({"c": {"categories": [1, "1", True, 1.0]}})
+    space = Space.from_dict({"c": {"categories": [1, "1", True]}})
+    p = space["c"]
+    assert [p.index(v) for v in (1, "1", True, 1.0)] == [0, 1, 2, 0]
+    # The proposer sees three distinct configurations and offers all three before it runs dry.
+    prop = Proposer(space, seed=0)
+    got = [x.config["c"] for x in prop.propose(3, observed=[], failed=[], pending=[])]
+    assert sorted(map(repr, got)) == sorted(map(repr, [1, "1", True]))
+    assert np.allclose(space.encode({"c": got[0]}).sum(), 1.0)

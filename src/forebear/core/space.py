@@ -55,15 +55,31 @@ class Param:
             if not self.categories:
                 msg = f"parameter {self.name!r}: a categorical parameter needs at least one category"
                 raise ValueError(msg)
-            if len(set(map(_category_key, self.categories))) != len(self.categories):
-                msg = f"parameter {self.name!r}: categories must be distinct, got {list(self.categories)}"
-                raise ValueError(msg)
+            keys: dict[tuple[str, Any], int] = {}
+            for i, c in enumerate(self.categories):
+                j = keys.setdefault(category_key(c), i)
+                if j != i:
+                    first = self.categories[j]
+                    msg = (
+                        f"parameter {self.name!r}: categories must be distinct, got {list(self.categories)}: "
+                        f"{first!r} and {c!r} are one category (numbers compare by value; text, numbers and "
+                        "booleans are always distinct)"
+                    )
+                    raise ValueError(msg)
         else:
             if self.low is None or self.high is None:
                 msg = f"parameter {self.name!r}: a {self.kind} parameter needs low and high bounds"
                 raise ValueError(msg)
             if not self.low < self.high:
                 msg = f"parameter {self.name!r}: low {self.low} must be < high {self.high}"
+                raise ValueError(msg)
+            if not (math.isfinite(self.low) and math.isfinite(self.high)):
+                msg = f"parameter {self.name!r}: bounds must be finite numbers, got [{self.low}, {self.high}]"
+                raise ValueError(msg)
+            if not self.log and not math.isfinite(float(self.high) - float(self.low)):
+                # high - low overflows: every encoded point would decode to a bound.
+                msg = (f"parameter {self.name!r}: the range [{self.low:g}, {self.high:g}] is wider than the largest "
+                       "float; narrow it (or use log: true for a positive range)")
                 raise ValueError(msg)
             if self.log and self.low <= 0:
                 msg = f"parameter {self.name!r}: lower bound {self.low} must be > 0 when log is true"
@@ -146,16 +162,22 @@ class Param:
         return float(self.low), float(self.high)
 
 
-def _category_key(value: Any) -> tuple[str, Any]:
+def category_key(value: Any) -> tuple[str, Any]:
+    """What makes two categories the same: text by its characters, numbers by value, booleans apart.
+
+    ``1`` and ``1.0`` are one category (a logbook's JSON may give back either), while
+    ``1``, ``"1"`` and ``true`` are three: Python's ``True == 1`` must not merge them.
+    Validation (distinct categories) and the encoding (:meth:`Param.index`) both use this key.
+    """
+    if isinstance(value, bool):
+        return ("bool", value)
+    if isinstance(value, (int, float)):
+        return ("number", value)
     return (type(value).__name__, value)
 
 
 def _same_category(a: Any, b: Any) -> bool:
-    # True == 1 in Python; a category list [1, true] must keep them apart.
-    return type(a) is type(b) and a == b or (
-        isinstance(a, (int, float)) and isinstance(b, (int, float))
-        and not isinstance(a, bool) and not isinstance(b, bool) and a == b
-    )
+    return category_key(a) == category_key(b)
 
 
 @dataclass(frozen=True)

@@ -334,9 +334,13 @@ def _param(doc: _Doc, name: str, body: Any) -> Param | None:
             doc.error((*path, "default"), f"{default!r} is outside [{lo}, {hi}]")
             return None
         default = int(default) if kind == "int" else float(default)
-    if kind == "int":
-        return Param(name, "int", int(lo), int(hi), log=log, default=default)
-    return Param(name, "float", float(lo), float(hi), log=log, default=default)
+    try:
+        if kind == "int":
+            return Param(name, "int", int(lo), int(hi), log=log, default=default)
+        return Param(name, "float", float(lo), float(hi), log=log, default=default)
+    except ValueError as exc:  # the checks that belong to the space itself (a range wider than a float)
+        doc.error((*path, kind), str(exc).split(": ", 1)[-1])
+        return None
 
 
 def _space(doc: _Doc, data: Any) -> Space | None:

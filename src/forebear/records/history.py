@@ -251,14 +251,33 @@ def _cell(p: Param, cell: str, path: Path, line: int) -> Any:
     """A CSV cell as a value of ``p``; a category is matched by its text."""
     text = cell.strip()
     if p.kind == "categorical":
-        for c in p.categories:
-            if text == str(c) or (isinstance(c, bool) and text.lower() == str(c).lower()):
-                return c
-        return _Unknown(text)
+        return _category_of_text(p, text)
     value = _number(text, path, line, p.name)
     if p.kind == "int" and math.isfinite(value) and value == int(value):
         return int(value)
     return value
+
+
+def _category_of_text(p: Param, text: str) -> Any:
+    """The category a CSV cell names: a text category with these characters first, then a boolean
+    (``true``/``True``), then a number of the same value (``1`` matches ``1.0``)."""
+    for c in p.categories:
+        if isinstance(c, str) and c == text:
+            return c
+    lowered = text.lower()
+    for c in p.categories:
+        if isinstance(c, bool) and lowered == str(c).lower():
+            return c
+    try:
+        number = float(text)
+    except ValueError:
+        number = None
+    for c in p.categories:
+        if number is not None and isinstance(c, (int, float)) and not isinstance(c, bool) and c == number:
+            return c
+        if not isinstance(c, (str, bool, int, float)) and str(c) == text:
+            return c
+    return _Unknown(text)
 
 
 @dataclass(frozen=True)
