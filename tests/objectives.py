@@ -182,3 +182,22 @@ def leave_processes(config: dict[str, Any]) -> float:
     if config.get("hang"):
         hang(config)
     return 0.5
+
+
+def loud(config: dict[str, Any]) -> float:
+    """Print 50 MB to stdout and stderr together, then score (issue 15, item 12)."""
+    import sys
+
+    line = "x" * 1023 + "\n"
+    for i in range(50 * 1024):
+        (sys.stdout if i % 2 else sys.stderr).write(line)
+    print("the last line", flush=True)
+    return 0.5
+
+
+def touch_memory(config: dict[str, Any]) -> float:
+    """Allocate and touch ``config['mb']`` MB (issue 15, item 6: cluster.local.memory_limit)."""
+    block = bytearray(int(config["mb"]) * 1024 * 1024)
+    for i in range(0, len(block), 4096):
+        block[i] = 1
+    return 0.5

@@ -384,3 +384,60 @@ def test_categories_that_are_one_value_are_refused_and_distinct_ones_stay_distin
     got = [x.config["c"] for x in prop.propose(3, observed=[], failed=[], pending=[])]
     assert sorted(map(repr, got)) == sorted(map(repr, [1, "1", True]))
     assert np.allclose(space.encode({"c": got[0]}).sum(), 1.0)
+
+
+# -- 12: the captured output of an attempt is capped, head and tail kept --------------------------------
+
+
+def test_an_attempt_that_prints_50_mb_keeps_a_capped_log(tmp_path: Path) -> None:
+    from forebear.cluster.capture import CAPTURE_HEAD, CAPTURE_TAIL
+    from forebear.cluster.runner import run_attempt
+
+    book, task = shared_task(tmp_path, "objectives:loud")
+    res = run_attempt(task)  # type: ignore[arg-type]
+    assert res.outcome == "scored", res.error
+    log = tmp_path / "runs" / "s.logs" / "trial-00003-attempt-1.log"
+    data = log.read_bytes()
+    assert len(data) <= CAPTURE_HEAD + CAPTURE_TAIL + 200
+    assert data.startswith(b"x" * 100) and data.rstrip().endswith(b"the last line")
+    cut = 50 * 1024 * 1024 + len("the last line\n") - CAPTURE_HEAD - CAPTURE_TAIL
+    assert f"[forebear: {cut} bytes of output cut here".encode() in data
+
+
+def test_a_command_that_prints_50_mb_then_its_score_is_scored_with_capped_files(tmp_path: Path) -> None:
+    from forebear.cluster.capture import CAPTURE_HEAD, CAPTURE_TAIL
+    from forebear.cluster.runner import run_attempt
+
+    script = "import sys\nw = sys.stdout.write\nfor _ in range(51200): w('y' * 1023 + '\\n')\nprint(0.75)"
+    book, task = shared_task(tmp_path, None, command=("python", "-c", script))  # type: ignore[arg-type]
+    res = run_attempt(task)  # type: ignore[arg-type]
+    assert res.outcome == "scored" and res.records[-1]["score"] == 0.75, res.error
+    out = tmp_path / "runs" / "s.logs" / "trial-00003-attempt-1.out"
+    assert out.stat().st_size <= CAPTURE_HEAD + CAPTURE_TAIL + 200 and b"bytes of output cut here" in out.read_bytes()
+
+
+# -- 6: cluster.local.memory_limit limits each attempt process --------------------------------------
+
+
+def test_memory_limit_applies_to_the_attempt_process() -> None:
+    from forebear.cluster.dispatch import attempt_memory
+    from forebear.cluster.runner import AttemptTask, run_attempt
+    from forebear.core.spec import load as load_spec_dict
+
+    spec = load_spec_dict({"objective": {"call": "objectives:touch_memory", "minimize": "loss"}, "space": {"mb": {"int": [1, 4000]}},
+                           "cluster": {"local": {"workers": 1, "memory_limit": "1500MB"}}}, base_dir=".")
+    limit = attempt_memory(spec)
+    assert limit == 1_500_000_000
+    base = {"search": "t", "trial": 0, "attempt": 1, "metric": "loss", "call": "objectives:touch_memory", "memory_limit": limit}
+    res = run_attempt(AttemptTask(config={"mb": 2000}, **base))  # type: ignore[arg-type]
+    assert res.outcome == "failed"
+    assert "objective raised MemoryError" in (res.error or "")
+    assert "limited to 1431 MiB by cluster.local.memory_limit" in (res.error or "")
+    assert run_attempt(AttemptTask(config={"mb": 50}, **base)).outcome == "scored"  # type: ignore[arg-type]
+
+
+def test_a_memory_limit_that_is_not_a_size_is_a_spec_error(tmp_path: Path) -> None:
+    spec = tmp_path / "s.yaml"
+    spec.write_text("objective: {call: m:f, minimize: l}\nspace: {x: {float: [0, 1]}}\ncluster: {local: {memory_limit: lots}}\n")
+    code, _, err = cli("check", str(spec))
+    assert code == 2 and "cluster.local.memory_limit: must be a memory size such as 400MB" in err

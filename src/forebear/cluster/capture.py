@@ -1,8 +1,12 @@
-"""What an attempt printed, as the runner reads it back: tails for errors, the log for the controller.
+"""What an attempt prints: captured with a cap by the fork server, read back by the runner.
 
-The fork server caps what it captures per attempt (:data:`forebear.cluster.child.CAPTURE_HEAD`
-and ``CAPTURE_TAIL``: the head and the tail are kept and a line in between says how
-many bytes were cut); these helpers read those files without loading them whole.
+The attempt's stdout and stderr reach the fork server through pipes, and a
+:class:`Capture` per file keeps the first :data:`CAPTURE_HEAD` bytes and the
+last :data:`CAPTURE_TAIL` bytes, with one line between them that says how many
+bytes were cut: an attempt that prints 50 MB keeps about 1 MiB per file. The
+helpers below read those files back (tails for errors, the log for the
+controller) without loading them whole. Standard library only: the attempt
+process loads this module as a file.
 """
 
 from __future__ import annotations
@@ -10,6 +14,8 @@ from __future__ import annotations
 import os
 from pathlib import Path
 
+CAPTURE_HEAD = 256 * 1024  # bytes kept from the start of each captured file (the setup, the first error)
+CAPTURE_TAIL = 768 * 1024  # bytes kept from the end (the score line is read from the last 64 KiB)
 LOG_TAIL_LINES = 20
 LOG_RETURN_BYTES = 1 << 20  # the log returned to the controller without a shared filesystem
 
@@ -67,3 +73,42 @@ def read_text(path: Path | None) -> str:
             return fh.read().decode("utf-8", errors="replace")
     except OSError:
         return ""
+
+
+class Capture:
+    """One captured file (``path``, created 0600): the head as it comes, the tail kept in memory until :meth:`close`."""
+
+    def __init__(self, path: str) -> None:
+        self.fd = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o600)
+        self.head_left = CAPTURE_HEAD
+        self.tail = bytearray()
+        self.cut = 0
+
+    def feed(self, data: bytes) -> None:
+        if self.head_left > 0:
+            n = min(len(data), self.head_left)
+            _write_all(self.fd, data[:n])
+            self.head_left -= n
+            data = data[n:]
+        if data:
+            self.tail += data
+            extra = len(self.tail) - CAPTURE_TAIL
+            if extra > 0:
+                self.cut += extra
+                del self.tail[:extra]
+
+    def close(self) -> None:
+        try:
+            if self.cut:
+                note = (f"\n[forebear: {self.cut} bytes of output cut here; the first {CAPTURE_HEAD} "
+                        f"and the last {CAPTURE_TAIL} bytes are kept]\n")
+                _write_all(self.fd, note.encode())
+            _write_all(self.fd, bytes(self.tail))
+        finally:
+            os.close(self.fd)
+
+
+def _write_all(fd: int, data: bytes) -> None:
+    view = memoryview(data)
+    while view:
+        view = view[os.write(fd, view):]

@@ -26,6 +26,7 @@ import importlib
 import importlib.util
 import json
 import os
+import resource
 import select
 import signal
 import sys
@@ -54,6 +55,7 @@ def _sibling(name: str) -> Any:
     return module
 
 
+_capture = _sibling("capture")
 _scoring = _sibling("scoring")
 _tree = _sibling("tree")
 BadScore = _scoring.BadScore
@@ -87,7 +89,7 @@ def _scored(value: Any, metric: str) -> dict[str, Any]:
     return {"ok": True, "score": score, "metrics": metrics, "dropped": dropped}
 
 
-def _child(req: Mapping[str, Any], fn: Callable[..., Any] | None, ready_w: int, keep: set[int]) -> None:
+def _child(req: Mapping[str, Any], fn: Callable[..., Any] | None, ready_w: int, keep: set[int], pipes: tuple[int, int]) -> None:
     """Runs in the forked child; never returns."""
     code = 0
     try:
@@ -98,13 +100,17 @@ def _child(req: Mapping[str, Any], fn: Callable[..., Any] | None, ready_w: int, 
         signal.signal(signal.SIGPIPE, signal.SIG_DFL)
         os.write(ready_w, b"1")
         os.close(ready_w)
-        log_fd = os.open(req["log"], os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o600)
-        out_fd = os.open(req["out"], os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o600) if req.get("out") else log_fd
+        if req.get("memory"):
+            # cluster.local.memory_limit: the attempt, and whatever it execs or starts, gets this much
+            # address space; an allocation beyond it fails (MemoryError in Python) instead of succeeding.
+            limit = int(req["memory"])
+            resource.setrlimit(resource.RLIMIT_AS, (limit, limit))
+        out_fd, log_fd = pipes  # the write ends of the server's capture pipes
         null = os.open(os.devnull, os.O_RDONLY)
         os.dup2(null, 0)
         os.dup2(out_fd, 1)
         os.dup2(log_fd, 2)
-        for fd in keep:
+        for fd in {*keep, out_fd, log_fd} - {0, 1, 2}:
             os.close(fd)
         env = {**os.environ, **req.get("env", {})}
         cwd = req.get("cwd")
@@ -165,8 +171,19 @@ def _send(fd: int, payload: Mapping[str, Any]) -> None:
     os.write(fd, (json.dumps(payload) + "\n").encode())
 
 
-def _wait_child(pid: int, inp: Any, out_fd: int, keep: set[int]) -> bool:
-    """Wait for the child; return False when stdin closed (the worker is gone)."""
+def _drain(streams: dict[int, Any], ready: list[Any]) -> None:
+    """Copy what the child wrote to its capture pipes; a pipe at end of file is closed."""
+    for fd in [f for f in ready if f in streams]:
+        chunk = os.read(fd, 1 << 16)
+        if chunk:
+            streams[fd].feed(chunk)
+        else:
+            os.close(fd)
+            del streams[fd]
+
+
+def _wait_child(pid: int, inp: Any, out_fd: int, keep: set[int], streams: dict[int, Any]) -> bool:
+    """Wait for the child while capturing its output; return False when stdin closed (the worker is gone)."""
     try:
         pidfd = os.pidfd_open(pid)
     except (AttributeError, OSError):
@@ -174,8 +191,9 @@ def _wait_child(pid: int, inp: Any, out_fd: int, keep: set[int]) -> bool:
     alive = True
     try:
         while True:
-            fds = [inp] + ([pidfd] if pidfd is not None else [])
+            fds = [inp, *streams] + ([pidfd] if pidfd is not None else [])
             ready, _, _ = select.select(fds, [], [], None if pidfd is not None else 0.01)
+            _drain(streams, ready)
             if inp in ready:
                 line = inp.readline()
                 if not line:
@@ -186,12 +204,42 @@ def _wait_child(pid: int, inp: Any, out_fd: int, keep: set[int]) -> bool:
             done, status = os.waitpid(pid, os.WNOHANG)
             if done:
                 _tree.end_tree(pid, keep)
+                _finish_capture(streams)
                 if alive:
                     _send(out_fd, {"exit": status})
                 return alive
     finally:
         if pidfd is not None:
             os.close(pidfd)
+
+
+def _finish_capture(streams: dict[int, Any], grace: float = 2.0) -> None:
+    """Read the pipes to their end (the attempt's processes are gone) and close the captured files."""
+    captures = list({id(c): c for c in streams.values()}.values())
+    deadline = time.monotonic() + grace
+    while streams and time.monotonic() < deadline:
+        ready, _, _ = select.select(list(streams), [], [], max(0.0, deadline - time.monotonic()))
+        _drain(streams, ready)
+    for fd in list(streams):  # a writer that outlived the tree (no subreaper here): stop reading it
+        os.close(fd)
+        del streams[fd]
+    for c in captures:
+        c.close()
+
+
+def _capture_pipes(req: Mapping[str, Any]) -> tuple[dict[int, Any], tuple[int, int]]:
+    """Pipes for the child's stdout and stderr, read by this server into capped files.
+
+    Returns the read ends with their captures, and the write ends (stdout, stderr) for the child.
+    A ``call`` objective's stdout and stderr share the log; a command's stdout has its own file.
+    """
+    log_r, log_w = os.pipe()
+    streams: dict[int, Any] = {log_r: _capture.Capture(req["log"])}
+    if req.get("out"):
+        out_r, out_w = os.pipe()
+        streams[out_r] = _capture.Capture(req["out"])
+        return streams, (out_w, log_w)
+    return streams, (log_w, log_w)
 
 
 def serve(call: str | None, path: str | None) -> int:
@@ -222,16 +270,19 @@ def serve(call: str | None, path: str | None) -> int:
         for stream in (sys.stdout, sys.stderr):
             stream.flush()
         before = _tree.children()  # processes the user's module started at import are not the attempt's
+        streams, pipes = _capture_pipes(req)
         ready_r, ready_w = os.pipe()
         pid = os.fork()
         if pid == 0:
             os.close(ready_r)
-            _child(req, fn, ready_w, {proto, inp.fileno()})
+            _child(req, fn, ready_w, {proto, inp.fileno(), *streams}, pipes)
         os.close(ready_w)
+        for fd in set(pipes):
+            os.close(fd)
         os.read(ready_r, 1)  # the child has its own session now: killpg(pid) reaches it
         os.close(ready_r)
         _send(proto, {"pid": pid, "at": time.time()})
-        if not _wait_child(pid, inp, proto, before):
+        if not _wait_child(pid, inp, proto, before, streams):
             return 0
 
 

@@ -60,6 +60,7 @@ class AttemptTask:
     token: str | None = None
     cwd: str | None = None
     retryable: bool = False  # the value of ``retryable`` in a ``failed`` record for an objective error
+    memory_limit: int | None = None  # bytes of address space for the attempt process (cluster.local.memory_limit)
 
 
 @dataclass
@@ -179,6 +180,7 @@ def _run(task: AttemptTask, worker: str, cancelled: Callable[[], bool], logbook:
         "cwd": task.cwd,
         "metric": task.metric,
         "config": dict(task.config),
+        "memory": task.memory_limit,
     }
     if task.command:
         request.update(kind="exec", argv=[_substitute(a, task.config) for a in task.command])
@@ -322,6 +324,8 @@ def _finish(
             dropped = dict(payload.get("dropped") or {})
         else:
             error = _exit_reason(status)
+    if error is not None and task.memory_limit and _memory_like(error):
+        error += f" (the attempt's address space is limited to {task.memory_limit / 2**20:.0f} MiB by cluster.local.memory_limit)"
     if error is None and score is not None:
         extra = {"dropped": dropped} if dropped else {}
         final = record("scored", trial=task.trial, attempt=task.attempt, score=score, metrics=metrics, seconds=round(seconds, 6), **extra)
@@ -347,3 +351,8 @@ def _finish(
         result.records = [started, final]
         result.log_text = read_log(log, out)
     return result
+
+
+def _memory_like(error: str) -> bool:
+    """Whether a failure reads like an allocation refused by the attempt's address-space limit."""
+    return any(w in error for w in ("MemoryError", "SIGSEGV", "SIGABRT", "SIGKILL", "Cannot allocate memory", "bad_alloc"))

@@ -198,6 +198,23 @@ def _describe(v: Any) -> str:
     return f"{type(v).__name__} ({v!r})"
 
 
+_SIZE = re.compile(r"^\s*(\d+(?:\.\d+)?)\s*([kmgt]i?b|b)?\s*$", re.IGNORECASE)
+_UNITS = {"b": 1, "kb": 10**3, "mb": 10**6, "gb": 10**9, "tb": 10**12, "kib": 2**10, "mib": 2**20, "gib": 2**30, "tib": 2**40}
+
+
+def memory_bytes(value: Any) -> int:
+    """Bytes from ``400MB``, ``4GiB`` or a whole number of bytes (Dask's units: kB = 1000, KiB = 1024)."""
+    if _is_number(value) and float(value).is_integer() and value > 0:
+        return int(value)
+    m = _SIZE.match(value) if isinstance(value, str) else None
+    if m:
+        n = int(float(m.group(1)) * _UNITS[(m.group(2) or "b").lower()])
+        if n > 0:
+            return n
+    msg = f"must be a memory size such as 400MB or 4GiB (or a whole number of bytes), got {value!r}"
+    raise ValueError(msg)
+
+
 def parse_duration(value: Any) -> float:
     """Seconds from ``90``, ``"90s"``, ``"20m"`` or ``"6h"``; ``ValueError`` otherwise."""
     if _is_number(value):
@@ -473,6 +490,12 @@ def _cluster(doc: _Doc, data: Any, base: Path) -> Cluster | None:
         workers = body.get("workers")
         if workers is not None and _int_field(doc, (*path, "local", "workers"), workers, 1) is None:
             return None
+        if body.get("memory_limit") is not None:
+            try:
+                memory_bytes(body["memory_limit"])
+            except ValueError as exc:
+                doc.error((*path, "local", "memory_limit"), str(exc))
+                return None
         return Cluster("local", {"workers": None, **body}, tls=tls_paths)
     if kind == "address":
         address = data["address"]

@@ -16,7 +16,7 @@ from distributed import as_completed
 from distributed.client import FutureCancelledError
 from distributed.scheduler import KilledWorker
 
-from forebear.cluster.dispatch import KEY_PREFIX
+from forebear.cluster.dispatch import KEY_PREFIX, attempt_memory
 from forebear.cluster.runner import AttemptResult, AttemptTask, run_attempt
 from forebear.loop.book import RETRY_REASONS
 from forebear.records.logbook import ensure_folder, record
@@ -75,6 +75,7 @@ class Attempts:
             token=self.token,
             cwd=str(spec.base_dir),
             retryable=spec.budget.retry_errors and retry_left,
+            memory_limit=attempt_memory(spec),
         )
         key = f"{KEY_PREFIX}{spec.name}-{self.session}-{tid}-{attempt}"
         fut = self._dispatch.submit(run_attempt, task, key=key, resources=spec.resources)
