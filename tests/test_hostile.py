@@ -441,3 +441,46 @@ def test_a_memory_limit_that_is_not_a_size_is_a_spec_error(tmp_path: Path) -> No
     spec.write_text("objective: {call: m:f, minimize: l}\nspace: {x: {float: [0, 1]}}\ncluster: {local: {memory_limit: lots}}\n")
     code, _, err = cli("check", str(spec))
     assert code == 2 and "cluster.local.memory_limit: must be a memory size such as 400MB" in err
+
+
+# -- 11: cost that grows where it should not --------------------------------------------------------
+
+
+def test_a_large_history_task_keeps_a_subset_and_says_so(tmp_path: Path) -> None:
+    import numpy as np
+
+    from forebear.records import history
+
+    rng = np.random.default_rng(0)
+    table = tmp_path / "h.csv"
+    with open(table, "w", newline="") as fh:
+        w = csv.writer(fh)
+        w.writerow(["task", "x", "c", "loss"])
+        for i in range(history.MAX_TASK_POINTS + 500):
+            w.writerow(["a", rng.uniform(), ["p", "q"][i % 2], float(i)])
+    space = Space.from_dict({"x": {"float": [0, 1]}, "c": {"categories": ["p", "q"]}})
+    hist = load_history([HistorySource(csv=str(table), task="task", score="loss")], space, "minimize")
+    task = hist.tasks[0]
+    assert len(task) == history.MAX_TASK_POINTS and task.X.shape == (history.MAX_TASK_POINTS, 3)
+    assert sorted(task.y)[: history.KEEP_BEST] == list(range(history.KEEP_BEST))  # the best are all kept
+    assert any(f"{history.MAX_TASK_POINTS + 500} trials; {history.MAX_TASK_POINTS} kept" in w for w in hist.warnings)
+    # The encoding column by column is the encoding row by row.
+    assert np.array_equal(task.X, np.vstack([space.encode(c) for c in task.configs]))
+
+
+@pytest.mark.timeout(120)
+def test_a_report_of_a_10000_value_categorical_is_quick(tmp_path: Path) -> None:
+    import time
+
+    from forebear.face.report import write_report
+
+    cats = [f"v{i}" for i in range(10_000)]
+    space = Space.from_dict({"c": {"categories": cats}, "x": {"float": [0, 1]}})
+    book = Logbook(tmp_path / "r.jsonl")
+    book.append(record("search", name="r", spec_hash="h", space=space.to_dict(), objective={"call": "m:f", "minimize": "loss"}, seed=0))
+    for t in range(4):
+        book.append(record("proposed", trial=t, round=0, config={"c": cats[t * 7], "x": 0.1 * t}, source="initial", model=None, acquisition=None))
+        book.append(record("scored", trial=t, attempt=1, score=0.1 * t, metrics={}, seconds=1.0))
+    t0 = time.monotonic()
+    write_report(book.fold(), tmp_path / "rep", logbook=book.path)
+    assert time.monotonic() - t0 < 60  # minutes before the tick labels were limited
