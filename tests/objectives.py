@@ -191,6 +191,7 @@ def loud(config: dict[str, Any]) -> float:
     line = "x" * 1023 + "\n"
     for i in range(50 * 1024):
         (sys.stdout if i % 2 else sys.stderr).write(line)
+    sys.stderr.flush()
     print("the last line", flush=True)
     return 0.5
 

@@ -1,4 +1,4 @@
-"""Spec loading: the valid example of DESIGN.md, the bad-spec corpus, number forms."""
+"""Spec loading: the full example spec of docs/spec.md, the bad-spec corpus, number forms."""
 
 from __future__ import annotations
 
@@ -49,7 +49,7 @@ def write(tmp_path: Path, text: str, name: str = "search.yaml") -> Path:
     return p
 
 
-def test_design_example_loads(tmp_path: Path) -> None:
+def test_full_example_spec_loads(tmp_path: Path) -> None:
     s = load(write(tmp_path, GOOD))
     assert s.name == "store-17-demand"
     assert s.objective.call == "mypkg.train:evaluate"

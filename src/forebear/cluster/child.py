@@ -2,10 +2,11 @@
 
 A Dask worker keeps one server process per objective. The server imports the
 objective once (a ``call`` objective's module, with torch and the rest), then
-waits for requests on its stdin. For each attempt it forks a child that starts
-a new session (so a timeout can kill the whole process group), sends its
-output to the attempt's log, and either calls the objective or ``exec``s the
-command objective's argv. The server reports the child's pid and, when it
+waits for requests on its stdin (a Python callable given as the objective is
+loaded instead from the cloudpickle bytes shipped to it, ``--function``). For
+each attempt it forks a child that starts a new session (so a timeout can
+kill the whole process group), sends its output to the attempt's log, and
+either calls the objective or ``exec``s the command objective's argv. The server reports the child's pid and, when it
 exits, its wait status. If the worker dies the server's stdin closes and the
 server kills the running child's group before it exits; the child also gets
 SIGKILL from the kernel when the server dies (Linux ``PR_SET_PDEATHSIG``).
@@ -179,7 +180,7 @@ def _drain(streams: dict[int, Any], ready: list[Any]) -> None:
             streams[fd].feed(chunk)
         else:
             os.close(fd)
-            del streams[fd]
+            streams.pop(fd).close()  # end of file: the tail goes in now
 
 
 def _wait_child(pid: int, inp: Any, out_fd: int, keep: set[int], streams: dict[int, Any]) -> bool:
@@ -215,16 +216,13 @@ def _wait_child(pid: int, inp: Any, out_fd: int, keep: set[int], streams: dict[i
 
 def _finish_capture(streams: dict[int, Any], grace: float = 2.0) -> None:
     """Read the pipes to their end (the attempt's processes are gone) and close the captured files."""
-    captures = list({id(c): c for c in streams.values()}.values())
     deadline = time.monotonic() + grace
     while streams and time.monotonic() < deadline:
         ready, _, _ = select.select(list(streams), [], [], max(0.0, deadline - time.monotonic()))
         _drain(streams, ready)
     for fd in list(streams):  # a writer that outlived the tree (no subreaper here): stop reading it
         os.close(fd)
-        del streams[fd]
-    for c in captures:
-        c.close()
+        streams.pop(fd).close()
 
 
 def _capture_pipes(req: Mapping[str, Any]) -> tuple[dict[int, Any], tuple[int, int]]:
@@ -242,7 +240,23 @@ def _capture_pipes(req: Mapping[str, Any]) -> tuple[dict[int, Any], tuple[int, i
     return streams, (log_w, log_w)
 
 
-def serve(call: str | None, path: str | None) -> int:
+def load_shipped(path: str) -> Callable[..., Any]:
+    """The callable objective shipped as cloudpickle bytes in the file at ``path``.
+
+    Plain ``pickle`` reads cloudpickle's output; it imports cloudpickle itself only
+    for a function sent by value.
+    """
+    import pickle
+
+    with open(path, "rb") as fh:
+        fn = pickle.loads(fh.read())  # noqa: S301 - the controller's own objective, sent like any Dask task
+    if not callable(fn):
+        msg = f"the shipped objective is {type(fn).__name__}, not a callable"
+        raise TypeError(msg)
+    return fn
+
+
+def serve(call: str | None, path: str | None, function: str | None = None, name: str | None = None) -> int:
     """The server's main loop; returns the exit status."""
     proto = os.dup(1)
     os.dup2(2, 1)  # whatever the user's module prints on import goes to stderr, not the protocol
@@ -256,6 +270,13 @@ def serve(call: str | None, path: str | None) -> int:
             fn = load_callable(call)
         except BaseException as exc:  # noqa: BLE001 - any import-time failure is reported to the runner
             _send(proto, {"ready": False, "error": f"cannot import objective {call}: {type(exc).__name__}: {exc}"[:2000]})
+            return 1
+    elif function:
+        try:
+            fn = load_shipped(function)
+        except BaseException as exc:  # noqa: BLE001 - a module the function needs may be missing on this worker
+            what = f"cannot load the objective function {name or ''} on this worker: {type(exc).__name__}: {exc}"
+            _send(proto, {"ready": False, "error": what[:2000]})
             return 1
     _tree.become_subreaper()
     _send(proto, {"ready": True, "pid": os.getpid()})
@@ -288,17 +309,21 @@ def serve(call: str | None, path: str | None) -> int:
 
 def main(argv: list[str] | None = None) -> int:
     args = list(sys.argv[1:] if argv is None else argv)
-    call = path = None
+    call = path = function = name = None
     while args:
         flag = args.pop(0)
         if flag == "--call":
             call = args.pop(0)
         elif flag == "--path":
             path = args.pop(0)
+        elif flag == "--function":
+            function = args.pop(0)
+        elif flag == "--name":
+            name = args.pop(0)
         else:
             sys.stderr.write(f"forebear.cluster.child: unknown argument {flag!r}\n")
             return 2
-    return serve(call, path)
+    return serve(call, path, function, name)
 
 
 if __name__ == "__main__":

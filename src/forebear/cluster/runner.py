@@ -16,6 +16,7 @@ to write. The runner never imports the surrogate.
 
 from __future__ import annotations
 
+import hashlib
 import json
 import os
 import re
@@ -61,6 +62,8 @@ class AttemptTask:
     cwd: str | None = None
     retryable: bool = False  # the value of ``retryable`` in a ``failed`` record for an objective error
     memory_limit: int | None = None  # bytes of address space for the attempt process (cluster.local.memory_limit)
+    function: bytes | None = None  # a callable objective, cloudpickled (forebear.cluster.shipping)
+    function_name: str | None = None  # its module:qualified.name, for messages
 
 
 @dataclass
@@ -77,6 +80,16 @@ class AttemptResult:
     worker: str | None = None
     log_name: str | None = None
     log_text: str | None = None
+
+
+def _server_key(task: AttemptTask) -> tuple[str | None, tuple[str, bytes] | None]:
+    """The pool key of the server an attempt needs, and the shipped function it loads (if any)."""
+    if task.command:
+        return None, None
+    if task.function is not None:
+        name = task.function_name or "objective"
+        return f"function {name} {hashlib.sha256(task.function).hexdigest()[:16]}", (name, task.function)
+    return task.call, None
 
 
 def log_name(trial: int, attempt: int) -> str:
@@ -187,9 +200,9 @@ def _run(task: AttemptTask, worker: str, cancelled: Callable[[], bool], logbook:
     else:
         request.update(kind="call")
     result = AttemptResult(task.trial, task.attempt, "failed", worker=worker, log_name=name)
-    key_call = task.call if not task.command else None
+    key_call, function = _server_key(task)
     try:
-        server = _acquire(key_call, task.cwd, max(60.0, task.timeout or 0.0))
+        server = _acquire(key_call, task.cwd, max(60.0, task.timeout or 0.0), function)
     except RunnerError as exc:
         # The objective cannot be imported here: the attempt fails, it did not start anything.
         started = record("started", trial=task.trial, attempt=task.attempt, worker=worker, host=socket.gethostname(), pid=None)

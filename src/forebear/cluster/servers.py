@@ -9,11 +9,14 @@ from __future__ import annotations
 import json
 import os
 import select
+import shutil
 import subprocess
 import sys
+import tempfile
 import threading
 import time
 from collections.abc import Mapping
+from pathlib import Path
 from typing import Any
 
 from forebear.cluster import child as _child
@@ -31,7 +34,7 @@ class RunnerError(RuntimeError):
 class _Server:
     """A :mod:`forebear.cluster.child` server process and its protocol pipes."""
 
-    def __init__(self, call: str | None, path: str | None, wait: float) -> None:
+    def __init__(self, call: str | None, path: str | None, wait: float, function: tuple[str, bytes] | None = None) -> None:
         # Run the file, not ``-m forebear.cluster.child``: the package's imports (numpy, scipy, yaml) would
         # add seconds to every server start, and the server needs only the standard library.
         argv = [sys.executable, _child.__file__]
@@ -39,12 +42,27 @@ class _Server:
             argv += ["--call", call]
         if path:
             argv += ["--path", path]
+        shipped = None
+        if function is not None:
+            # The callable's bytes go through a private file the server reads once at start.
+            shipped = Path(tempfile.mkdtemp(prefix="forebear-fn-")) / "objective.pkl"
+            fd = os.open(shipped, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o600)
+            try:
+                os.write(fd, function[1])
+            finally:
+                os.close(fd)
+            argv += ["--function", str(shipped), "--name", function[0]]
+            call = function[0]
         self.proc = subprocess.Popen(argv, stdin=subprocess.PIPE, stdout=subprocess.PIPE, close_fds=True)
         assert self.proc.stdin is not None and self.proc.stdout is not None
         self._in = self.proc.stdin
         self._out = self.proc.stdout.fileno()
         self._buf = b""
-        hello = self.read(wait)
+        try:
+            hello = self.read(wait)
+        finally:
+            if shipped is not None:
+                shutil.rmtree(shipped.parent, ignore_errors=True)
         if hello is None:
             self.close()
             raise RunnerError(f"the attempt process for {call or 'commands'} did not start within {wait:g} s")
@@ -91,14 +109,14 @@ _POOL: dict[tuple[str | None, str | None], list[_Server]] = {}
 _POOL_LOCK = threading.Lock()
 
 
-def _acquire(call: str | None, path: str | None, wait: float) -> _Server:
+def _acquire(call: str | None, path: str | None, wait: float, function: tuple[str, bytes] | None = None) -> _Server:
     with _POOL_LOCK:
         idle = _POOL.setdefault((call, path), [])
         while idle:
             server = idle.pop()
             if server.alive:
                 return server
-    return _Server(call, path, wait)
+    return _Server(None if function else call, path, wait, function)
 
 
 def _release(server: _Server, call: str | None, path: str | None) -> None:

@@ -62,12 +62,18 @@ DEFAULTS: dict[str, Any] = _defaults()
 
 @dataclass(frozen=True)
 class Objective:
-    """What to evaluate and which metric to optimise."""
+    """What to evaluate and which metric to optimise.
+
+    ``function`` names a Python callable passed to ``forebear.run(..., objective=fn)``
+    (``module:qualified.name``); the callable itself travels with each attempt, so the
+    spec holds neither ``call`` nor ``command`` then.
+    """
 
     call: str | None
     command: tuple[str, ...] | None
     metric: str
     sense: str  # "minimize" or "maximize"
+    function: str | None = None
 
     @property
     def sign(self) -> float:
@@ -75,7 +81,11 @@ class Objective:
         return 1.0 if self.sense == "minimize" else -1.0
 
     def to_dict(self) -> dict[str, Any]:
-        out: dict[str, Any] = {"call": self.call} if self.call else {"command": list(self.command or ())}
+        out: dict[str, Any]
+        if self.function:
+            out = {"function": self.function}
+        else:
+            out = {"call": self.call} if self.call else {"command": list(self.command or ())}
         out[self.sense] = self.metric
         return out
 
@@ -253,7 +263,7 @@ def _int_field(doc: _Doc, path: tuple[str, ...], v: Any, minimum: int) -> int | 
 # sections
 
 
-def _objective(doc: _Doc, data: Any) -> Objective | None:
+def _objective(doc: _Doc, data: Any, function: str | None = None) -> Objective | None:
     path = ("objective",)
     if data is None:
         doc.error(path, "required: give call (module:function) or command (an argv list), and minimize or maximize")
@@ -263,8 +273,15 @@ def _objective(doc: _Doc, data: Any) -> Objective | None:
     _check_keys(doc, path, data, _OBJECTIVE)
     call, command = data.get("call"), data.get("command")
     ok = True
-    if (call is None) == (command is None):
-        doc.error(path, "give exactly one of call (module:function) or command (an argv list)")
+    if function is not None:
+        for key in ("call", "command"):
+            if key in data:
+                doc.error((*path, key), f"the objective is the function passed to forebear.run ({function}); remove {key}, or pass no objective=")
+                ok = False
+        call = command = None
+    elif (call is None) == (command is None):
+        hint = " (or pass the function itself: forebear.run(spec, objective=fn) needs only minimize or maximize here)" if call is None else ""
+        doc.error(path, f"give exactly one of call (module:function) or command (an argv list){hint}")
         ok = False
     if call is not None and (not isinstance(call, str) or not _CALLABLE.match(call)):
         doc.error((*path, "call"), f"must have the form module:function (e.g. mypkg.train:evaluate), got {call!r}")
@@ -291,7 +308,7 @@ def _objective(doc: _Doc, data: Any) -> Objective | None:
     if not isinstance(metric, str) or not metric:
         doc.error((*path, sense), f"must be a metric name, got {_describe(metric)}")
         return None
-    return Objective(call if ok and call else None, argv, metric, sense) if ok else None
+    return Objective(call if ok and call else None, argv, metric, sense, function) if ok else None
 
 
 def _param(doc: _Doc, name: str, body: Any) -> Param | None:
@@ -524,8 +541,17 @@ def _resolve(base: Path, p: str) -> Path:
 # entry points
 
 
-def load(source: str | os.PathLike[str] | Mapping[str, Any], *, base_dir: str | os.PathLike[str] | None = None) -> Spec:
+def load(
+    source: str | os.PathLike[str] | Mapping[str, Any],
+    *,
+    base_dir: str | os.PathLike[str] | None = None,
+    function: str | None = None,
+) -> Spec:
     """Load and validate a spec from a YAML file or a mapping with the same keys.
+
+    ``function`` is the name (``module:qualified.name``) of a Python callable given as the
+    objective (``forebear.run(spec, objective=fn)``): the spec's ``objective`` then holds
+    only ``minimize`` or ``maximize``, and ``call`` or ``command`` is an error.
 
     Raises
     ------
@@ -534,7 +560,7 @@ def load(source: str | os.PathLike[str] | Mapping[str, Any], *, base_dir: str | 
     """
     if isinstance(source, Mapping):
         doc = _Doc({}, [], None)
-        return _build(dict(source), doc, Path(base_dir) if base_dir else Path.cwd(), None)
+        return _build(dict(source), doc, Path(base_dir) if base_dir else Path.cwd(), None, function)
     path = Path(source)
     name = path.name
     try:
@@ -559,10 +585,10 @@ def load(source: str | os.PathLike[str] | Mapping[str, Any], *, base_dir: str | 
     data = _read_yaml(text, doc)
     if doc.errors and not isinstance(data, dict):
         raise SpecError(doc.errors)
-    return _build(data, doc, path.resolve().parent, path.resolve())
+    return _build(data, doc, path.resolve().parent, path.resolve(), function)
 
 
-def _build(data: Any, doc: _Doc, base: Path, source: Path | None) -> Spec:
+def _build(data: Any, doc: _Doc, base: Path, source: Path | None, function: str | None = None) -> Spec:
     if data is None:
         raise SpecError([f"spec: the file is empty; a spec needs objective and space{doc.where(())}"])
     if not isinstance(data, dict):
@@ -573,7 +599,7 @@ def _build(data: Any, doc: _Doc, base: Path, source: Path | None) -> Spec:
     if not isinstance(name, str) or not re.match(r"^[\w.-]+$", name or ""):
         doc.error(("name",), f"must be a word of letters, digits, '.', '_' or '-', got {_describe(name)}")
         name = "search"
-    objective = _objective(doc, data.get("objective"))
+    objective = _objective(doc, data.get("objective"), function)
     space = _space(doc, data.get("space"))
     budget = _budget(doc, data.get("budget"), notes)
     history = _history(doc, data.get("history"), base)

@@ -30,6 +30,7 @@ from forebear.records.logbook import (
     check_header,
     is_logbook,
 )
+from forebear.records.status import best_payload, status_payload
 
 EXIT_OK, EXIT_NOTHING_SCORED, EXIT_BAD_INPUT = 0, 1, 2
 EXIT_INTERRUPTED = 130  # 128 + SIGINT, the shell's convention: stopped at once (143 after SIGTERM)
@@ -232,20 +233,7 @@ def status(logbook: str, as_json: bool) -> None:
     counts = table.counts()
     best = table.best()
     header = table.header or {}
-    payload = {
-        "logbook": logbook,
-        "search": header.get("name"),
-        table.sense: table.metric,
-        "trials": len(table),
-        "counts": counts,
-        "finished": table.finished,
-        "best": _best_payload(table) if best else None,
-        "closed": (table.closed or {}).get("reason"),
-        "skipped_lines": table.skipped,
-        "invalid_records": len(table.invalid),
-        "bad_lines": table.bad_lines,
-        "running": [{"trial": t.trial, "attempt": t.last_attempt, "worker": t.attempts[-1].worker if t.attempts else None} for t in table.by_state("running")],
-    }
+    payload = status_payload(table, logbook)
     if as_json:
         emit_json(payload)
         return
@@ -265,17 +253,9 @@ def status(logbook: str, as_json: bool) -> None:
 
 
 def _best_payload(table: TrialTable) -> dict[str, Any]:
-    best = table.best()
-    assert best is not None
-    return {
-        "trial": best.trial,
-        "score": best.score,
-        "config": best.config,
-        "metrics": best.metrics,
-        table.sense: table.metric,
-        "seconds": best.seconds,
-        "attempts": len(best.attempts),
-    }
+    payload = best_payload(table)
+    assert payload is not None
+    return payload
 
 
 @main.command()

@@ -27,7 +27,7 @@ class Attempts:
 
     It uses the controller's ``spec``, ``book``, ``logbook``, ``inflight``,
     ``retry_queue``, ``ready``, ``stop``, ``shared``, ``logs``, ``token``,
-    ``session`` and ``_dispatch``.
+    ``session``, ``function`` and ``_dispatch``.
     """
 
     spec: Any
@@ -41,6 +41,7 @@ class Attempts:
     logs: Path
     token: str
     session: str
+    function: bytes | None
     _dispatch: Any
 
     # -- submitting -----------------------------------------------------------
@@ -76,6 +77,8 @@ class Attempts:
             cwd=str(spec.base_dir),
             retryable=spec.budget.retry_errors and retry_left,
             memory_limit=attempt_memory(spec),
+            function=self.function,
+            function_name=spec.objective.function,
         )
         key = f"{KEY_PREFIX}{spec.name}-{self.session}-{tid}-{attempt}"
         fut = self._dispatch.submit(run_attempt, task, key=key, resources=spec.resources)

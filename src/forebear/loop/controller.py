@@ -30,14 +30,16 @@ from typing import Any
 
 from distributed import as_completed
 
+from forebear.cluster.dashboard import publish
 from forebear.cluster.dispatch import KEY_PREFIX, Dispatch, connect
 from forebear.cluster.runner import PROBE_NAME
+from forebear.cluster.shipping import ObjectiveError, pack
 from forebear.core.spec import Spec
 from forebear.engine.proposer import Observation, Proposer
 from forebear.loop.attempts import Attempts
 from forebear.loop.book import Book, SearchResult
 from forebear.loop.proposing import ProposalEngine
-from forebear.loop.resume import SpecChanged, search_record, spec_changes
+from forebear.loop.resume import SpecChanged, function_note, search_record, spec_changes
 from forebear.loop.stopping import Stop, StopNow, deadline
 from forebear.records.logbook import (
     ControllerLock,
@@ -90,6 +92,9 @@ class Controller(Attempts):
         done=...)``, it returns an object with ``message``, ``update`` and ``close``
         (:class:`forebear.face.progress.Progress`). Without it, messages go to stderr
         unless ``quiet``.
+    objective
+        The Python callable to evaluate, for a spec whose objective names a ``function``
+        (``forebear.run(spec, objective=fn)``); it is shipped to the workers with each attempt.
     """
 
     def __init__(
@@ -103,7 +108,12 @@ class Controller(Attempts):
         handle_signals: bool = True,
         proposer: Proposer | None = None,
         display: Callable[..., Any] | None = None,
+        objective: Callable[..., Any] | None = None,
     ) -> None:
+        if (objective is None) != (spec.objective.function is None):
+            raise ObjectiveError("a spec whose objective is a function needs that function (objective=), and only such a spec")
+        self.function = None if objective is None else pack(objective)
+        self.link: str | None = None  # the search's page on the Dask dashboard, once it is served
         self.spec = spec
         self._display = display
         self._proposer = proposer
@@ -174,6 +184,9 @@ class Controller(Attempts):
             changes, grew = spec_changes(headers[-1], spec, self.extend)
             if changes:
                 raise SpecChanged(str(spec.logbook), changes)
+            note = function_note(headers[-1], spec)
+            if note:
+                self.say(note)
             if grew:
                 new_header = search_record(spec)
         else:
@@ -188,6 +201,7 @@ class Controller(Attempts):
             if self._dispatch is None:
                 self._dispatch = connect(spec, self.say)
             self._dispatch.check_resources(spec.resources)
+            self.link = publish(self._dispatch, spec, self.say)
             if new_header is not None:
                 self.logbook.append(new_header)
             return self._drive(engine, table)

@@ -2,7 +2,7 @@
 
 One JSON object per line. Every record has ``v`` (format version), ``at``
 (unix seconds) and ``kind``; the kinds and their fields are in
-``docs/architecture.md`` and DESIGN.md. Writers take a lock on
+``docs/architecture.md`` (record table) and ``docs/spec.md``. Writers take a lock on
 ``<logbook>.lock``, open the file after locking, cut off a torn last line left
 by a writer that died mid-write, write the record with one ``os.write``,
 ``fsync`` and release. Readers take no lock: they skip lines that do not

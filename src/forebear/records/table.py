@@ -161,6 +161,12 @@ class TrialTable:
     def __len__(self) -> int:
         return len(self.trials)
 
+    def _repr_html_(self) -> str:
+        """The table as Jupyter shows it: counts, best trial, trials."""
+        from forebear.records.html import trial_table_html  # the renderer imports this module
+
+        return trial_table_html(self)
+
 
 def fold(records: Iterable[Mapping[str, Any]]) -> TrialTable:
     """Fold records into a :class:`TrialTable`. The first ``scored`` of a trial wins."""
