@@ -21,7 +21,6 @@ from __future__ import annotations
 import logging
 import os
 import secrets
-import signal
 import threading
 import time
 from collections import deque
@@ -42,7 +41,7 @@ from forebear.loop.book import Book, SearchResult
 from forebear.loop.proposing import ProposalEngine, Rounds
 from forebear.loop.resume import SpecChanged, function_note, search_record, spec_changes
 from forebear.loop.schedule import Timing
-from forebear.loop.stopping import Stop, deadline
+from forebear.loop.stopping import Stop, StopNow, deadline
 from forebear.records.logbook import (
     ControllerLock,
     Logbook,
@@ -83,7 +82,8 @@ class Controller(Attempts, Rounds):
     dispatch
         An existing :class:`Dispatch` to use instead of the spec's cluster (the plugin's).
     handle_signals
-        Install the two-stage Ctrl-C handler (only possible in the main thread).
+        Install the two-stage Ctrl-C / SIGTERM handler (only possible in the main thread;
+        see :mod:`forebear.loop.stopping`).
     proposer
         A :class:`Proposer` to use instead of the default one for the spec (benchmarks
         configure the engine this way; the spec's history is then not loaded).
@@ -125,7 +125,8 @@ class Controller(Attempts, Rounds):
         self._dispatch = dispatch
         self._own_dispatch = dispatch is None
         self.handle_signals = handle_signals and threading.current_thread() is threading.main_thread()
-        self.stop = Stop()
+        self.stop = Stop(self.say, lambda: len(self.inflight))
+        self.stop.cancel_running = cancel_running
         self.session = secrets.token_hex(4)
         self.token = secrets.token_hex(16)
         self.progress: Any = None  # the live display, made by ``display`` when the loop starts
@@ -141,6 +142,7 @@ class Controller(Attempts, Rounds):
         self._exhausted = False
         self._ac: as_completed | None = None
         self._next_resource_check = time.monotonic() + RESOURCE_CHECK_EVERY
+        self._read_at = 0  # the logbook's size when the controller read it at start
 
     # -- output ---------------------------------------------------------------
 
@@ -166,6 +168,7 @@ class Controller(Attempts, Rounds):
 
     def _run_locked(self) -> SearchResult:
         spec = self.spec
+        self._read_at = self.logbook.size()  # results that arrive after this are seen by _reconcile
         records, skipped = self.logbook.read()
         if skipped and not records and b"\n" in spec.logbook.read_bytes():
             # Whole lines and none of them ours: someone else's file. Writing would append to it and
@@ -238,18 +241,34 @@ class Controller(Attempts, Rounds):
                 "the controller writes their records and logs from the results it collects"
             )
 
-    def _reconcile(self, table: TrialTable) -> list[dict[str, Any]]:
-        """Records that settle what the last controller left: lost attempts and exhausted retries."""
-        recs: list[dict[str, Any]] = []
+    def _reconcile(self, table: TrialTable) -> None:
+        """Settle what the last controller left: attempts it left running are lost (``restart``), then retried.
+
+        Each ``lost`` record is written only if the attempt's own result did not arrive since the
+        logbook was read (checked under the lock); a result that did arrive stands.
+        """
+        arrived = []
         for t in table:
             if t.terminal:
                 continue
             if t.state == "running":
-                recs.append(record("lost", trial=t.trial, attempt=t.last_attempt, reason="restart"))
+                lost = record("lost", trial=t.trial, attempt=t.last_attempt, reason="restart")
+                if not self.logbook.append_unless(lost, ("scored", "failed"), self._read_at):
+                    arrived.append(t.trial)
+                    continue
                 self.say(f"trial {t.trial}: attempt {t.last_attempt} was running when the last controller stopped; resubmitting")
             self.book.state[t.trial] = "queued"
             self.retry_queue.append(t.trial)
-        return recs
+        if arrived:
+            fresh = Book.from_table(self.logbook.fold())
+            for tid in arrived:
+                for part in ("state", "scores", "attempts", "charged", "errors"):
+                    value = getattr(fresh, part).get(tid)
+                    if value is not None:
+                        getattr(self.book, part)[tid] = value
+                if self.book.state[tid] not in ("scored", "failed"):
+                    self.book.state[tid] = "queued"
+                    self.retry_queue.append(tid)
 
     # -- the loop -------------------------------------------------------------
 
@@ -258,20 +277,17 @@ class Controller(Attempts, Rounds):
         budget = spec.budget
         self._probe()
         self._check_shared()
-        recs = self._reconcile(table)
-        if recs:
-            self.logbook.append_many(recs)
+        self._reconcile(table)
         if self._display is not None:
             self.progress = self._display(budget.trials, metric=spec.objective.metric, quiet=self.quiet, done=self.book.finished)
         ends = deadline(budget.wall_time)
         ac = as_completed(with_results=False)
         self._ac = ac
-        previous = signal.getsignal(signal.SIGINT) if self.handle_signals else None
-        if self.handle_signals:
-            signal.signal(signal.SIGINT, self._on_sigint)
+        restore = self.stop.install() if self.handle_signals else None
         closed = "budget"
         try:
             while True:
+                self.stop.check()
                 if ends is not None and time.monotonic() >= ends and self.stop.reason is None:
                     self.stop.reason = "wall_time"
                     self.stop.cancel = True
@@ -299,9 +315,9 @@ class Controller(Attempts, Rounds):
                 for event in events:
                     if event:
                         self._show(event)
-        except KeyboardInterrupt:
+        except KeyboardInterrupt as exc:
             closed = "interrupted"
-            self.say("stopping at once")
+            self.say(f"stopping at once ({exc.why})" if isinstance(exc, StopNow) else "stopping at once")
             self._cancel_all()
             self._close(closed)
             raise
@@ -317,8 +333,8 @@ class Controller(Attempts, Rounds):
                 pass
             raise
         finally:
-            if self.handle_signals:
-                signal.signal(signal.SIGINT, previous)
+            if restore is not None:
+                restore()
             if self.progress is not None:
                 self.progress.close()
         return self._close(closed)
@@ -345,17 +361,6 @@ class Controller(Attempts, Rounds):
             + (f"; best trial {best.trial}: {self.spec.objective.metric} = {best.score:.6g}" if best else "; nothing scored")
         )
         return SearchResult.from_table(table, self.spec.logbook, reason)
-
-    def _on_sigint(self, signum: int, frame: Any) -> None:
-        self.stop.presses += 1
-        if self.stop.presses > 1:
-            raise KeyboardInterrupt
-        self.stop.reason = "interrupted"
-        if self.cancel_running:
-            self.stop.cancel = True
-            self.say("interrupted: cancelling running attempts (Ctrl-C again to stop at once)")
-        else:
-            self.say(f"interrupted: no new trials; waiting for {len(self.inflight)} running attempt(s) (Ctrl-C again to stop at once)")
 
     def request_stop(self, cancel: bool = False) -> None:
         """Stop proposing (and cancel running attempts with ``cancel``), as the first Ctrl-C does."""
