@@ -99,7 +99,6 @@ def _jobqueue_spec(tmp: Path, kind: str, certs: dict[str, str] | None, gpus: int
 
 
 def test_slurm_job_script(tmp_path: Path) -> None:
-    pytest.importorskip("dask_jobqueue")
     certs = _write_temporary_certs(tmp_path)
     cluster = jobqueue_cluster(_jobqueue_spec(tmp_path, "slurm", certs))
     try:
@@ -117,7 +116,6 @@ def test_slurm_job_script(tmp_path: Path) -> None:
 
 
 def test_pbs_job_script(tmp_path: Path) -> None:
-    pytest.importorskip("dask_jobqueue")
     cluster = jobqueue_cluster(_jobqueue_spec(tmp_path, "pbs", None, gpus=None))
     try:
         script = cluster.job_script()
@@ -139,7 +137,6 @@ def test_declared_resources(tmp_path: Path) -> None:
 
 
 def _write_temporary_certs(tmp: Path) -> dict[str, str]:
-    pytest.importorskip("cryptography")
     from distributed.security import Security
 
     from .test_tls import write_certs

@@ -9,14 +9,11 @@ from pathlib import Path
 from typing import Any
 
 import pytest
+from distributed import Client
+from distributed.security import Security
 
-pytest.importorskip("cryptography")  # Security.temporary() needs it (the dev extra installs it)
-
-from distributed import Client  # noqa: E402 - after the skip above
-from distributed.security import Security  # noqa: E402
-
-import forebear  # noqa: E402
-from forebear.cluster.dispatch import ClusterError  # noqa: E402
+import forebear
+from forebear.cluster.dispatch import ClusterError
 
 
 def write_certs(sec: Security, folder: Path) -> dict[str, str]:
