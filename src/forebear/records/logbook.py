@@ -542,8 +542,13 @@ class ControllerLock:
 
     def acquire(self) -> None:
         ensure_folder(self.logbook.path.parent)
+        # A soft lease left by a stalled holder, or by one that died on another host, is known to
+        # be stale only once it has been seen unchanged for its whole lifetime (SoftFileLease
+        # measures that on the contender's clock), so wait that long; a live holder keeps
+        # refreshing it and the wait ends in LogbookBusy.
+        wait = 1.5 * self.logbook.lifetime if self.logbook.lock_mode == "soft" else 0
         try:
-            self._lock.acquire(timeout=0)
+            self._lock.acquire(timeout=wait)
         except filelock.Timeout:
             raise LogbookBusy(self.holder_message()) from None
         info = {"pid": os.getpid(), "host": socket.gethostname(), "since": time.time()}
