@@ -86,7 +86,6 @@ def test_reduced_demo_end_to_end(tmp_path: Path, capsys: pytest.CaptureFixture[s
     else:
         assert gain_line == (f"gain from history: none this time; the cold start ended {warm_best - cold_best:.3f} points "
                              f"lower ({cold_best:.3f} against {warm_best:.3f})")
-    print("reduced demo:", gain_line)
     assert (folder / "report" / "report.html").exists()
     assert (folder / "specs" / "coast-history.yaml").exists()
     # The written specs are valid on their own (cluster: local), so a user can rerun them.
