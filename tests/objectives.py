@@ -149,6 +149,18 @@ def stall_signal(config: dict[str, Any]) -> float:
     return quadratic(config)
 
 
+def gated(config: dict[str, Any]) -> float:
+    """Wait until ``$FOREBEAR_TEST_SIGNAL/open`` exists (at most 120 s), then score the bowl.
+
+    Keeps attempts running for exactly as long as a test needs them to.
+    """
+    gate = Path(os.environ["FOREBEAR_TEST_SIGNAL"]) / "open"
+    deadline = time.monotonic() + 120.0
+    while not gate.exists() and time.monotonic() < deadline:
+        time.sleep(0.05)
+    return quadratic(config)
+
+
 def lognormal_sleep(config: dict[str, Any]) -> float:
     """Sleep ``config['seconds']`` and return that duration (the overhead benchmark uses its own copy)."""
     seconds = float(config["seconds"])

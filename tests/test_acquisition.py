@@ -130,8 +130,11 @@ def test_project_equals_round_trip_on_a_mixed_space() -> None:
 
 
 def test_lie_values() -> None:
-    y = np.array([3.0, 1.0, 2.0])
-    assert [lie_value(y, k) for k in ("min", "mean", "max")] == [1.0, 2.0, 3.0]
+    # CL-min, CL-mean and CL-max of Ginsbourger, Le Riche and Carraro (2010), sec. 4: the lie is
+    # the minimum, mean or maximum of the scores observed so far (from memory). Unsorted, with a
+    # negative score and a mean that is no observation, so position or rounding would show.
+    y = np.array([0.5, -1.25, 4.0, 2.0])
+    assert [lie_value(y, k) for k in ("min", "mean", "max")] == [-1.25, 1.3125, 4.0]
     assert lie_value(y, "posterior") == POSTERIOR
     with pytest.raises(ValueError, match="lie must be one of"):
         lie_value(y, "median")

@@ -77,6 +77,37 @@ def test_failed_configurations_are_not_proposed_again() -> None:
     assert len(q.propose(5, obs, failed=failed)) == 5
 
 
+def test_failed_region_is_avoided_by_imputation_and_by_the_classifier() -> None:
+    """Scores improve towards a = 1, but every configuration with a > 0.7 failed (a crash region).
+
+    Told nothing of the failures the model follows the trend into the region; with
+    ``failed="impute"`` the failures enter the fit at the worst observed score, and with
+    ``failed="classifier"`` EI is multiplied by a probability of feasibility; both stay out.
+    """
+    space = Space.from_dict({"a": {"float": [0.0, 1.0]}, "b": {"float": [0.0, 1.0]}})
+    rng = np.random.default_rng(0)
+    ok = [{"a": float(a), "b": float(b)} for a, b in zip(rng.uniform(0, 0.6, 12), rng.random(12), strict=True)]
+    bad = [{"a": float(a), "b": float(b)} for a, b in zip(rng.uniform(0.7, 1.0, 10), rng.random(10), strict=True)]
+    obs = [Observation(c, (c["a"] - 1) ** 2 + (c["b"] - 0.5) ** 2) for c in ok]
+    worst = max(o.score for o in obs)
+
+    def region(out: list) -> int:
+        assert [x.source for x in out] == ["model"] * 4
+        return sum(x.config["a"] > 0.7 for x in out)
+
+    blind = Proposer(space, seed=0, n_initial=0)
+    assert region(blind.propose(4, obs)) >= 2
+    imputed = Proposer(space, seed=0, n_initial=0, failed="impute")
+    assert region(imputed.propose(4, obs, failed=bad)) == 0
+    # The fit saw the failures, each at the worst observed score.
+    model = imputed.last_choice.models[0]
+    assert len(model.X) == len(ok) + len(bad)
+    np.testing.assert_allclose(model.y[len(ok):].numpy(), worst)
+    classed = Proposer(space, seed=0, n_initial=0, failed="classifier")
+    assert region(classed.propose(4, obs, failed=bad)) == 0
+    assert len(classed.last_choice.models[0].X) == len(ok)  # failures stay out of the regression
+
+
 def test_history_warm_start_deep_kernel_then_guard(tmp_path: Path) -> None:
     hist = make_history(6, 40, seed=0)
     p = Proposer(SPACE3, hist, seed=0, deep_kernel=DK, cache_dir=tmp_path)
@@ -148,10 +179,33 @@ def test_bad_arguments_are_named() -> None:
 
 
 def test_threads_are_restored() -> None:
+    # The setting is applied while proposing (observed from inside the proposer's own design
+    # and model steps) and the process-wide value comes back afterwards.
+    inside: list[int] = []
+
+    class Watched(Proposer):
+        def _design(self, k: int):  # noqa: ANN202 - the parent's return type
+            inside.append(torch.get_num_threads())
+            return super()._design(k)
+
+        def _model_batch(self, *args, **kwargs):  # noqa: ANN002, ANN003, ANN202
+            inside.append(torch.get_num_threads())
+            return super()._model_batch(*args, **kwargs)
+
     before = torch.get_num_threads()
-    p = Proposer(SPACE2, seed=0, threads=1)
-    p.propose(2, [])
-    assert torch.get_num_threads() == before
+    torch.set_num_threads(2)
+    try:
+        p = Watched(SPACE2, seed=0, threads=1)
+        first = p.propose(3, [])
+        obs = [Observation(x.config, branin(_vec(SPACE2, x.config))) for x in first]
+        p.propose(1, obs)
+        assert inside == [1, 1] and torch.get_num_threads() == 2
+        # threads=None leaves the process's setting alone, also inside.
+        inside.clear()
+        Watched(SPACE2, seed=0, threads=None).propose(2, [])
+        assert inside == [2] and torch.get_num_threads() == 2
+    finally:
+        torch.set_num_threads(before)
 
 
 def branin_run(seed: int, trials: int = 30) -> float:

@@ -83,8 +83,13 @@ class ControllerLock:
         from forebear.records.logbook import LogbookError  # the logbook module imports this one
 
         ensure_folder(self.logbook.path.parent)
+        # A soft lease left by a stalled holder, or by one that died on another host, is known to
+        # be stale only once it has been seen unchanged for its whole lifetime (SoftFileLease
+        # measures that on the contender's clock), so wait that long; a live holder keeps
+        # refreshing it and the wait ends in LogbookBusy.
+        wait = 1.5 * self.logbook.lifetime if self.logbook.lock_mode == "soft" else 0
         try:
-            self._lock.acquire(timeout=0)
+            self._lock.acquire(timeout=wait)
         except filelock.Timeout:
             problem = self._cannot_create()
             if problem:
