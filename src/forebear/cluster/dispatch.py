@@ -30,7 +30,7 @@ from distributed import Client, Future
 from distributed.diagnostics.plugin import SchedulerPlugin
 from distributed.security import Security
 
-from forebear.core.spec import Cluster, Spec
+from forebear.core.spec import Cluster, Spec, memory_bytes
 
 log = logging.getLogger("forebear.cluster.dispatch")
 
@@ -351,3 +351,14 @@ def _jobqueue(spec: Spec, say: Callable[[str], None]) -> Dispatch:
     d = Dispatch(client, spec.cluster.kind, cluster=jq, dashboard=getattr(jq, "dashboard_link", None))
     d.check_resources(spec.resources, declared_resources(spec))
     return d
+
+
+def attempt_memory(spec: Spec) -> int | None:
+    """Bytes of address space for each attempt process: ``cluster.local.memory_limit``, or None.
+
+    The embedded cluster's workers get the same limit from Dask, but an attempt runs in a
+    process of its own outside the worker's accounting, so the limit is applied to it directly.
+    """
+    if spec.cluster.kind != "local" or spec.cluster.options.get("memory_limit") is None:
+        return None
+    return memory_bytes(spec.cluster.options["memory_limit"])

@@ -20,38 +20,28 @@ import hashlib
 import json
 import os
 import re
-import select
 import shutil
 import signal
 import socket
-import subprocess
-import sys
 import tempfile
-import threading
 import time
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from forebear.cluster import child as _child
-from forebear.cluster.child import BadScore, score_of_stdout
+from forebear.cluster.capture import read_log, read_text, with_tail
+from forebear.cluster.scoring import BadScore, score_of_stdout
+from forebear.cluster.servers import RunnerError, _acquire, _release, _Server, shutdown_servers
 from forebear.cluster.steps import StepWatcher, without_marks
 from forebear.records.logbook import Logbook, ensure_folder, record
 
+__all__ = ["AttemptResult", "AttemptTask", "RunnerError", "log_name", "reachable", "run_attempt", "shutdown_servers"]
+
 PROBE_NAME = ".probe"
-LOG_TAIL_LINES = 20
-LOG_RETURN_BYTES = 1 << 20  # the log returned to the controller without a shared filesystem
 KILL_GRACE = 10.0  # seconds to wait for a killed child to be reaped
-POLL = 0.2  # how often a waiting runner checks whether its Dask task was cancelled
 HALT_GRACE = 5.0  # seconds a halted command has between SIGTERM and SIGKILL to clean up
-
-
-class RunnerError(RuntimeError):
-    """The attempt machinery itself failed (not the objective)."""
-
-    def __reduce__(self) -> tuple[Any, ...]:
-        return (self.__class__, self.args)
+POLL = 0.2  # how often a waiting runner checks whether its Dask task was cancelled
 
 
 @dataclass(frozen=True)
@@ -73,6 +63,7 @@ class AttemptTask:
     token: str | None = None
     cwd: str | None = None
     retryable: bool = False  # the value of ``retryable`` in a ``failed`` record for an objective error
+    memory_limit: int | None = None  # bytes of address space for the attempt process (cluster.local.memory_limit)
     function: bytes | None = None  # a callable objective, cloudpickled (forebear.cluster.shipping)
     function_name: str | None = None  # its module:qualified.name, for messages
     topic: str | None = None  # the Dask event topic intermediate scores are sent to
@@ -85,7 +76,7 @@ class AttemptResult:
 
     trial: int
     attempt: int
-    outcome: str  # scored, failed, halted, timeout, cancelled
+    outcome: str  # scored, failed, halted, timeout, cancelled, superseded (settled as lost by a controller meanwhile)
     records: list[dict[str, Any]] = field(default_factory=list)
     written: bool = False
     error: str | None = None
@@ -93,103 +84,6 @@ class AttemptResult:
     worker: str | None = None
     log_name: str | None = None
     log_text: str | None = None
-
-
-def log_name(trial: int, attempt: int) -> str:
-    """The log file of an attempt inside the search's logs folder."""
-    return f"trial-{trial:05d}-attempt-{attempt}.log"
-
-
-# --------------------------------------------------------------------------
-# fork servers, one per objective per worker process
-
-
-class _Server:
-    """A :mod:`forebear.cluster.child` server process and its protocol pipes."""
-
-    def __init__(self, call: str | None, path: str | None, wait: float, function: tuple[str, bytes] | None = None) -> None:
-        # Run the file, not ``-m forebear.cluster.child``: the package's imports (numpy, scipy, yaml) would
-        # add seconds to every server start, and the server needs only the standard library.
-        argv = [sys.executable, _child.__file__]
-        if call:
-            argv += ["--call", call]
-        if path:
-            argv += ["--path", path]
-        shipped = None
-        if function is not None:
-            # The callable's bytes go through a private file the server reads once at start.
-            shipped = Path(tempfile.mkdtemp(prefix="forebear-fn-")) / "objective.pkl"
-            fd = os.open(shipped, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o600)
-            try:
-                os.write(fd, function[1])
-            finally:
-                os.close(fd)
-            argv += ["--function", str(shipped), "--name", function[0]]
-            call = function[0]
-        self.proc = subprocess.Popen(argv, stdin=subprocess.PIPE, stdout=subprocess.PIPE, close_fds=True)
-        assert self.proc.stdin is not None and self.proc.stdout is not None
-        self._in = self.proc.stdin
-        self._out = self.proc.stdout.fileno()
-        self._buf = b""
-        try:
-            hello = self.read(wait)
-        finally:
-            if shipped is not None:
-                shutil.rmtree(shipped.parent, ignore_errors=True)
-        if hello is None:
-            self.close()
-            raise RunnerError(f"the attempt process for {call or 'commands'} did not start within {wait:g} s")
-        if not hello.get("ready"):
-            self.close()
-            raise RunnerError(str(hello.get("error") or "the attempt process failed to start"))
-
-    @property
-    def alive(self) -> bool:
-        return self.proc.poll() is None
-
-    def send(self, payload: Mapping[str, Any]) -> None:
-        self._in.write((json.dumps(payload, default=str) + "\n").encode())
-        self._in.flush()
-
-    def read(self, timeout: float | None) -> dict[str, Any] | None:
-        """The next protocol line, or None on timeout; RunnerError when the server died."""
-        deadline = None if timeout is None else time.monotonic() + timeout
-        while b"\n" not in self._buf:
-            left = None if deadline is None else max(0.0, deadline - time.monotonic())
-            ready, _, _ = select.select([self._out], [], [], left)
-            if not ready:
-                return None
-            chunk = os.read(self._out, 65536)
-            if not chunk:
-                raise RunnerError(f"the attempt process server exited (status {self.proc.wait()})")
-            self._buf += chunk
-        line, self._buf = self._buf.split(b"\n", 1)
-        return json.loads(line)
-
-    def close(self) -> None:
-        try:
-            self._in.close()
-        except OSError:
-            pass
-        try:
-            self.proc.wait(timeout=5)
-        except subprocess.TimeoutExpired:
-            self.proc.kill()
-            self.proc.wait()
-
-
-_POOL: dict[tuple[str | None, str | None], list[_Server]] = {}
-_POOL_LOCK = threading.Lock()
-
-
-def _acquire(call: str | None, path: str | None, wait: float, function: tuple[str, bytes] | None = None) -> _Server:
-    with _POOL_LOCK:
-        idle = _POOL.setdefault((call, path), [])
-        while idle:
-            server = idle.pop()
-            if server.alive:
-                return server
-    return _Server(None if function else call, path, wait, function)
 
 
 def _server_key(task: AttemptTask) -> tuple[str | None, tuple[str, bytes] | None]:
@@ -202,20 +96,9 @@ def _server_key(task: AttemptTask) -> tuple[str | None, tuple[str, bytes] | None
     return task.call, None
 
 
-def _release(server: _Server, call: str | None, path: str | None) -> None:
-    if not server.alive:
-        return
-    with _POOL_LOCK:
-        _POOL.setdefault((call, path), []).append(server)
-
-
-def shutdown_servers() -> None:
-    """Stop this process's fork servers (tests and the overhead benchmark call it)."""
-    with _POOL_LOCK:
-        servers = [s for group in _POOL.values() for s in group]
-        _POOL.clear()
-    for s in servers:
-        s.close()
+def log_name(trial: int, attempt: int) -> str:
+    """The log file of an attempt inside the search's logs folder."""
+    return f"trial-{trial:05d}-attempt-{attempt}.log"
 
 
 # --------------------------------------------------------------------------
@@ -253,20 +136,6 @@ def reachable(logs: str | None, token: str | None) -> bool:
         except OSError:
             _SHARED[key] = False
     return _SHARED[key]
-
-
-def tail(path: Path, lines: int = LOG_TAIL_LINES, max_bytes: int = 8192) -> str:
-    """The last ``lines`` lines of a file (decoded leniently), or '' when it is missing."""
-    try:
-        with open(path, "rb") as fh:
-            fh.seek(0, os.SEEK_END)
-            size = fh.tell()
-            fh.seek(max(0, size - max_bytes))
-            data = fh.read()
-    except OSError:
-        return ""
-    text = data.decode("utf-8", errors="replace")
-    return "\n".join(text.splitlines()[-lines:])
 
 
 def _exit_reason(status: int) -> str:
@@ -328,6 +197,7 @@ def _run(task: AttemptTask, worker: str, cancelled: Callable[[], bool], logbook:
         "cwd": task.cwd,
         "metric": task.metric,
         "config": dict(task.config),
+        "memory": task.memory_limit,
     }
     watcher = StepWatcher(task, logbook, scratch, out, log)
     if not task.command:
@@ -343,31 +213,29 @@ def _run(task: AttemptTask, worker: str, cancelled: Callable[[], bool], logbook:
     except RunnerError as exc:
         # The objective cannot be imported here: the attempt fails, it did not start anything.
         started = record("started", trial=task.trial, attempt=task.attempt, worker=worker, host=socket.gethostname(), pid=None)
-        if logbook is not None:
-            logbook.append(started)
-        return _finish(task, result, logbook, started, None, str(exc), 0.0, log, out)
+        since = logbook.append(started) if logbook is not None else 0
+        return _finish(task, result, logbook, started, None, str(exc), 0.0, log, out, since=since)
     try:
-        outcome, status, started, seconds = _supervise(server, request, task, worker, logbook, cancelled, watcher)
+        outcome, status, started, seconds, since = _supervise(server, request, task, worker, logbook, cancelled, watcher)
     except RunnerError as exc:
         server.close()
         started = record("started", trial=task.trial, attempt=task.attempt, worker=worker, host=socket.gethostname(), pid=None)
         return _finish(task, result, logbook, started, None, str(exc), 0.0, log, out)
     finally:
         _release(server, key_call, task.cwd)
+    watcher.poll(final=True)
     if outcome in ("timeout", "cancelled"):
-        watcher.poll(final=True)
         result.outcome = outcome
         result.records = [started] if logbook is not None else [started, *watcher.records]
         result.written = logbook is not None
         result.seconds = seconds
         what = f"the attempt timed out after {task.timeout:g} s" if outcome == "timeout" else "the attempt was cancelled"
-        result.error = _with_tail(what, log, out)
+        result.error = with_tail(what, log, out)
         if logbook is None:
-            result.log_text = _read_log(log, out)
+            result.log_text = read_log(log, out)
         return result
-    watcher.poll(final=True)
     result.outcome = outcome
-    return _finish(task, result, logbook, started, status, None, seconds, log, out, scratch / "result.json", watcher)
+    return _finish(task, result, logbook, started, status, None, seconds, log, out, scratch / "result.json", since, watcher)
 
 
 def _supervise(
@@ -378,8 +246,11 @@ def _supervise(
     logbook: Logbook | None,
     cancelled: Callable[[], bool],
     watcher: StepWatcher,
-) -> tuple[str, int | None, dict[str, Any], float]:
-    """Start the child, write ``started``, wait; returns (outcome, wait status, started record, seconds)."""
+) -> tuple[str, int | None, dict[str, Any], float, int]:
+    """Start the child, write ``started``, wait.
+
+    Returns (outcome, wait status, started record, seconds, the logbook offset after ``started``).
+    """
     server.send(request)
     hello = server.read(60.0)
     if hello is None or "pid" not in hello:
@@ -387,9 +258,10 @@ def _supervise(
     pid = int(hello["pid"])
     t0 = time.monotonic()
     started = record("started", trial=task.trial, attempt=task.attempt, worker=worker, host=socket.gethostname(), pid=pid)
+    since = 0
     if logbook is not None:
         try:
-            logbook.append(started)
+            since = logbook.append(started)
         except BaseException:
             # The logbook cannot be written (a full disk): stop the child and retire this server, whose
             # protocol would otherwise still owe the child's exit to the next attempt it is given.
@@ -405,7 +277,7 @@ def _supervise(
         wait = POLL if deadline is None or outcome != "done" else max(0.0, min(POLL, deadline - now))
         msg = server.read(wait)
         if msg is not None and "exit" in msg:
-            return outcome, int(msg["exit"]), started, time.monotonic() - t0
+            return outcome, int(msg["exit"]), started, time.monotonic() - t0, since
         now = time.monotonic()
         if outcome == "done" and watcher.poll() and task.command:
             # A command is halted with SIGTERM, so it can clean up, then SIGKILL after HALT_GRACE.
@@ -425,7 +297,7 @@ def _supervise(
         elif killed_at is not None and now - killed_at > KILL_GRACE:
             # The child ignores SIGKILL only when stuck in the kernel (D state); give up on it.
             server.close()
-            return outcome, None, started, now - t0
+            return outcome, None, started, now - t0, since
 
 
 def _killpg(pid: int, sig: int = signal.SIGKILL) -> None:
@@ -447,34 +319,6 @@ def _substitute(item: str, config: Mapping[str, Any]) -> str:
     return _PLACEHOLDER.sub(lambda m: str(config[m.group(1)]) if m.group(1) in config else m.group(0), item)
 
 
-def _read_log(log: Path, out: Path | None) -> str:
-    parts = []
-    for p in (out, log):
-        if p is None:
-            continue
-        try:
-            size = p.stat().st_size
-            with open(p, "rb") as fh:
-                fh.seek(max(0, size - LOG_RETURN_BYTES))
-                text = fh.read().decode("utf-8", errors="replace")
-        except OSError:
-            continue
-        if out is not None:
-            parts.append(f"--- {'stdout' if p == out else 'stderr'} ---\n{text}")
-        else:
-            parts.append(text)
-    return "\n".join(parts)
-
-
-def _with_tail(reason: str, log: Path, out: Path | None) -> str:
-    lines = tail(log)
-    if out is not None:
-        so = tail(out, lines=5)
-        if so:
-            lines = (lines + "\n" if lines else "") + "stdout: " + so.replace("\n", "\nstdout: ")
-    return f"{reason}\n--- last lines of the log ---\n{lines}" if lines else reason
-
-
 def _finish(
     task: AttemptTask,
     result: AttemptResult,
@@ -486,10 +330,12 @@ def _finish(
     log: Path,
     out: Path | None,
     result_file: Path | None = None,
+    since: int = 0,
     watcher: StepWatcher | None = None,
 ) -> AttemptResult:
     score: float | None = None
     metrics: dict[str, Any] = {}
+    dropped: dict[str, str] = {}
     payload: dict[str, Any] | None = None
     if error is None and result_file is not None and result_file.exists():
         try:
@@ -510,43 +356,47 @@ def _finish(
                 error = _exit_reason(status) if code < 0 else f"the command exited with status {code}"
             else:
                 try:
-                    score, metrics = score_of_stdout(without_marks(_read_text(out)), task.metric)
+                    score, metrics = score_of_stdout(without_marks(read_text(out)), task.metric, dropped)
                 except BadScore as exc:
                     error = f"bad result: {exc}"
         elif payload is not None:
             score, metrics = float(payload["score"]), dict(payload.get("metrics") or {})
+            dropped = dict(payload.get("dropped") or {})
         else:
             error = _exit_reason(status)
+    if error is not None and task.memory_limit and _memory_like(error):
+        error += f" (the attempt's address space is limited to {task.memory_limit / 2**20:.0f} MiB by cluster.local.memory_limit)"
     steps = watcher.records if watcher is not None else []
     if halted is not None:
         final = halted
         result.outcome = "halted"
     elif error is None and score is not None:
-        final = record("scored", trial=task.trial, attempt=task.attempt, score=score, metrics=metrics, seconds=round(seconds, 6))
+        extra = {"dropped": dropped} if dropped else {}
+        final = record("scored", trial=task.trial, attempt=task.attempt, score=score, metrics=metrics, seconds=round(seconds, 6), **extra)
         result.outcome = "scored"
     else:
-        result.error = _with_tail(error or "no result", log, out)
+        result.error = with_tail(error or "no result", log, out)
         final = record("failed", trial=task.trial, attempt=task.attempt, error=result.error, retryable=task.retryable)
         result.outcome = "failed"
     result.seconds = seconds
     if logbook is not None:
-        logbook.append(final)
+        if not logbook.append_result(final, since):
+            # A controller settled this attempt as lost (and resubmitted its trial) while it ran:
+            # the late result is not recorded, so the trial is never scored twice.
+            result.outcome = "superseded"
+            result.error = "the attempt was settled as lost while it ran; its result was not recorded"
+            result.records = [started]
+            result.written = True
+            result.seconds = seconds
+            return result
         result.records = [started, final]
         result.written = True
     else:
         result.records = [started, *steps, final]
-        result.log_text = _read_log(log, out)
+        result.log_text = read_log(log, out)
     return result
 
 
-def _read_text(path: Path | None) -> str:
-    if path is None:
-        return ""
-    try:
-        with open(path, "rb") as fh:
-            fh.seek(0, os.SEEK_END)
-            size = fh.tell()
-            fh.seek(max(0, size - 65536))  # the score is on the last line; 10 MB of stdout is not read whole
-            return fh.read().decode("utf-8", errors="replace")
-    except OSError:
-        return ""
+def _memory_like(error: str) -> bool:
+    """Whether a failure reads like an allocation refused by the attempt's address-space limit."""
+    return any(w in error for w in ("MemoryError", "SIGSEGV", "SIGABRT", "SIGKILL", "Cannot allocate memory", "bad_alloc"))

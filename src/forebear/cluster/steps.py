@@ -23,7 +23,7 @@ import time
 from pathlib import Path
 from typing import Any
 
-from forebear.cluster.child import BadScore, score_of
+from forebear.cluster.scoring import BadScore, score_of
 from forebear.records.logbook import Logbook, record
 
 STEP_MARK = "forebear-step:"

@@ -18,6 +18,7 @@ import json
 import math
 import os
 import re
+import stat
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 from importlib import resources
@@ -210,10 +211,30 @@ def _describe(v: Any) -> str:
     return f"{type(v).__name__} ({v!r})"
 
 
+_SIZE = re.compile(r"^\s*(\d+(?:\.\d+)?)\s*([kmgt]i?b|b)?\s*$", re.IGNORECASE)
+_UNITS = {"b": 1, "kb": 10**3, "mb": 10**6, "gb": 10**9, "tb": 10**12, "kib": 2**10, "mib": 2**20, "gib": 2**30, "tib": 2**40}
+
+
+def memory_bytes(value: Any) -> int:
+    """Bytes from ``400MB``, ``4GiB`` or a whole number of bytes (Dask's units: kB = 1000, KiB = 1024)."""
+    if _is_number(value) and float(value).is_integer() and value > 0:
+        return int(value)
+    m = _SIZE.match(value) if isinstance(value, str) else None
+    if m:
+        n = int(float(m.group(1)) * _UNITS[(m.group(2) or "b").lower()])
+        if n > 0:
+            return n
+    msg = f"must be a memory size such as 400MB or 4GiB (or a whole number of bytes), got {value!r}"
+    raise ValueError(msg)
+
+
 def parse_duration(value: Any) -> float:
     """Seconds from ``90``, ``"90s"``, ``"20m"`` or ``"6h"``; ``ValueError`` otherwise."""
     if _is_number(value):
-        if value <= 0 or not math.isfinite(value):
+        if not math.isfinite(value):
+            msg = f"duration must be a finite number of seconds, got {value}; leave the key out for no limit"
+            raise ValueError(msg)
+        if value <= 0:
             msg = f"duration must be > 0, got {value}"
             raise ValueError(msg)
         return float(value)
@@ -350,9 +371,13 @@ def _param(doc: _Doc, name: str, body: Any) -> Param | None:
             doc.error((*path, "default"), f"{default!r} is outside [{lo}, {hi}]")
             return None
         default = int(default) if kind == "int" else float(default)
-    if kind == "int":
-        return Param(name, "int", int(lo), int(hi), log=log, default=default)
-    return Param(name, "float", float(lo), float(hi), log=log, default=default)
+    try:
+        if kind == "int":
+            return Param(name, "int", int(lo), int(hi), log=log, default=default)
+        return Param(name, "float", float(lo), float(hi), log=log, default=default)
+    except ValueError as exc:  # the checks that belong to the space itself (a range wider than a float)
+        doc.error((*path, kind), str(exc).split(": ", 1)[-1])
+        return None
 
 
 def _space(doc: _Doc, data: Any) -> Space | None:
@@ -485,6 +510,12 @@ def _cluster(doc: _Doc, data: Any, base: Path) -> Cluster | None:
         workers = body.get("workers")
         if workers is not None and _int_field(doc, (*path, "local", "workers"), workers, 1) is None:
             return None
+        if body.get("memory_limit") is not None:
+            try:
+                memory_bytes(body["memory_limit"])
+            except ValueError as exc:
+                doc.error((*path, "local", "memory_limit"), str(exc))
+                return None
         return Cluster("local", {"workers": None, **body}, tls=tls_paths)
     if kind == "address":
         address = data["address"]
@@ -536,11 +567,15 @@ def load(
     path = Path(source)
     name = path.name
     try:
-        size = path.stat().st_size
+        st = path.stat()
     except OSError as exc:
         raise SpecError([f"spec: cannot read {path}: {exc.strerror or exc}"]) from None
-    if path.is_dir():
+    size = st.st_size
+    if stat.S_ISDIR(st.st_mode):
         raise SpecError([f"spec: {path} is a folder, not a spec file"])
+    if not stat.S_ISREG(st.st_mode):
+        # A FIFO with no writer would block the read forever; a device has no end.
+        raise SpecError([f"spec: {path} is not a regular file (a FIFO, socket or device); give a spec file"])
     if size > MAX_SPEC_BYTES:
         raise SpecError([f"spec: {name} is {size / 1e6:.1f} MB; a spec must be under {MAX_SPEC_BYTES // 1024} KiB"])
     try:

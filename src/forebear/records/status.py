@@ -40,6 +40,8 @@ def status_payload(table: TrialTable, logbook: str) -> dict[str, Any]:
         "best": best_payload(table),
         "closed": (table.closed or {}).get("reason"),
         "skipped_lines": table.skipped,
+        "invalid_records": len(table.invalid),
+        "bad_lines": table.bad_lines,
         "running": [
             {"trial": t.trial, "attempt": t.last_attempt, "worker": t.attempts[-1].worker if t.attempts else None}
             for t in table.by_state("running")
