@@ -115,7 +115,7 @@ def run(
             lead = timing.lead(concurrency) if clock.lead is None else clock.lead
             planned = len(configs)
             n = round_size(batch=batch, concurrency=concurrency, running=len(running), queued=len(queue),
-                           left=trials - planned, lead=lead, initial=max(0, proposer.initial_size(batch) - planned))
+                           left=trials - planned, lead=lead, initial=max(0, _initial_size(proposer, batch) - planned))
             if n > 0:
                 observed = [Observation(configs[t], s) for t, s in scored.items()]
                 pending = [configs[t] for t in list(queue) + [t for _, t in running]]
@@ -210,3 +210,12 @@ if __name__ == "__main__":
     ns = ap.parse_args()
     res = compare(ns.families, ns.tasks, ns.seeds, ns.trials, ns.concurrency, ns.variants, Clock())
     print(json.dumps(res, indent=1))
+
+
+def _initial_size(proposer: Any, batch: int) -> int:
+    """The proposer's initial-design size; a peer method (bench/peers), which has no such
+    setting, gets the engine's rule ``max(batch, min(dim + 1, 10))``."""
+    size = getattr(proposer, "initial_size", None)
+    if callable(size):
+        return int(size(batch))
+    return max(batch, min(proposer.space.dim + 1, 10))

@@ -70,6 +70,11 @@ class Ensemble:
                 out.append(m.condition(X, mu))
         return Ensemble(out, self.weights, self.best)
 
+    def lie(self, X: torch.Tensor, value: float | str) -> Ensemble:
+        """What :func:`forebear.engine.acquisition.batch` calls between picks: the believer
+        fantasy of :meth:`condition` whatever the lie (the peers' papers condition this way)."""
+        return self.condition(X)
+
 
 def fit(X: np.ndarray, y: np.ndarray, seed: int, state: dict[str, torch.Tensor] | None = None,
         restarts: int = 3) -> tuple[Posterior, dict[str, torch.Tensor]]:
