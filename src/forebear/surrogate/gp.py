@@ -117,6 +117,11 @@ class Posterior:
             m, v = self.predict_t(as_tensor(Xs, self.X.device))
         return m.cpu().numpy(), v.cpu().numpy()
 
+    def log_predictive(self, Xs: np.ndarray, ys: np.ndarray) -> np.ndarray:
+        """Log predictive density of scores ``ys`` at ``Xs`` (noise included), original units."""
+        m, v = self.predict(Xs)
+        return normal_logpdf(ys, m, v + self.noise * self.scale**2)
+
     def condition(self, X_new: torch.Tensor, y_new: torch.Tensor) -> Posterior:
         """The posterior after also seeing ``(X_new, y_new)``, hyperparameters unchanged."""
         return Posterior(
@@ -136,6 +141,11 @@ class Posterior:
             resid = self._alpha / d  # y_i - mu_i in normalised units
             ll = -0.5 * (torch.log(var) + resid**2 / var + _LOG_2PI)
         return float(ll.sum()) - self.n * math.log(self.scale)
+
+
+def normal_logpdf(y: Any, mean: np.ndarray, var: np.ndarray) -> np.ndarray:
+    """Elementwise log density of ``y`` under ``N(mean, var)``."""
+    return -0.5 * (np.log(var) + (np.asarray(y, float) - mean) ** 2 / var + _LOG_2PI)
 
 
 def dense_kernel(kernel: gpytorch.kernels.Kernel, A: torch.Tensor, B: torch.Tensor) -> torch.Tensor:
