@@ -10,7 +10,7 @@ import torch
 from scipy.stats import spearmanr
 
 from forebear.bench.proposal import SPACE3, make_history, shifted_hartmann3
-from forebear.surrogate.deep_kernel import FORMAT, MetaModel, Settings, _augment, cache_key
+from forebear.surrogate.deep_kernel import FORMAT, MetaModel, MetaPosterior, Settings, _augment, cache_key
 from forebear.surrogate.gp import fit_gp
 
 FAST = Settings(max_steps=300, eval_every=50, patience=3, tasks_per_step=4, seed=0)
@@ -95,6 +95,10 @@ def test_conditioning_on_a_lie_pins_the_prediction(trained: MetaModel) -> None:
     cond = post.condition(x, torch.as_tensor([float(y.min())], dtype=torch.float64))
     m, v = cond.predict(Xs[:1])
     assert abs(m[0] - y.min()) < 0.2 * np.std(y) and v[0] < post.predict(Xs[:1])[1][0]
+    # Extending the stored blocks gives the posterior built from scratch on all points.
+    fresh = MetaPosterior(trained.net, torch.cat([post.X, x]), torch.cat([post.y, cond.y[-1:]]), post.shift, post.scale, post.lam)
+    np.testing.assert_allclose(cond.predict(Xs)[0], fresh.predict(Xs)[0], rtol=1e-7, atol=1e-9)
+    np.testing.assert_allclose(cond.predict(Xs)[1], fresh.predict(Xs)[1], rtol=1e-6, atol=1e-10)
 
 
 def test_impute_gives_task_normalised_scores(trained: MetaModel) -> None:

@@ -86,16 +86,24 @@ class Settings:
         return asdict(self)
 
 
-def _matern(A: torch.Tensor, B: torch.Tensor) -> torch.Tensor:
-    """Matérn-5/2 with unit lengthscale (Rasmussen & Williams 2006, eq. 4.17), batched over leading dims."""
-    d2 = ((A * A).sum(-1, keepdim=True) - 2 * A @ B.transpose(-1, -2) + (B * B).sum(-1).unsqueeze(-2))
-    s5 = _SQRT5 * d2.clamp_min(1e-12).sqrt()
+def _dist(A: torch.Tensor, B: torch.Tensor) -> torch.Tensor:
+    """Euclidean distances, batched over leading dims, clamped so the gradient stays finite at 0."""
+    d2 = (A * A).sum(-1, keepdim=True) - 2 * A @ B.transpose(-1, -2) + (B * B).sum(-1).unsqueeze(-2)
+    return d2.clamp_min(1e-12).sqrt()
+
+
+def _cdist(A: torch.Tensor, B: torch.Tensor) -> torch.Tensor:
+    return torch.cdist(A, B)
+
+
+def _matern_r(r: torch.Tensor) -> torch.Tensor:
+    """Matérn-5/2 of distance ``r`` at unit lengthscale (Rasmussen & Williams 2006, eq. 4.17)."""
+    s5 = _SQRT5 * r
     return (1.0 + s5 + s5 * s5 / 3.0) * torch.exp(-s5)
 
 
-def _rbf(A: torch.Tensor, B: torch.Tensor) -> torch.Tensor:
-    d2 = ((A * A).sum(-1, keepdim=True) - 2 * A @ B.transpose(-1, -2) + (B * B).sum(-1).unsqueeze(-2))
-    return torch.exp(-0.5 * d2.clamp_min(0.0))
+def _rbf_r(r: torch.Tensor) -> torch.Tensor:
+    return torch.exp(-0.5 * r * r)
 
 
 class DeepKernel(nn.Module):
@@ -133,13 +141,18 @@ class DeepKernel(nn.Module):
     def noise(self) -> torch.Tensor:
         return self.settings.noise_floor + softplus(self.raw_noise)
 
-    def residual(self, XA: torch.Tensor, ZA: torch.Tensor, XB: torch.Tensor, ZB: torch.Tensor) -> torch.Tensor:
-        """Residual covariance at ``lam = 1``."""
-        k = _matern if self.settings.kernel == "matern" else _rbf
-        K = torch.exp(self.log_vf) * k(ZA, ZB)
+    def residual(self, XA: torch.Tensor, ZA: torch.Tensor, XB: torch.Tensor, ZB: torch.Tensor, fast: bool = False) -> torch.Tensor:
+        """Residual covariance at ``lam = 1``.
+
+        ``fast`` takes distances from ``torch.cdist`` (prediction, where points rarely
+        coincide); training uses the clamped form, whose gradient is finite at distance 0.
+        """
+        dist = _cdist if fast else _dist
+        k = _matern_r if self.settings.kernel == "matern" else _rbf_r
+        K = torch.exp(self.log_vf) * k(dist(ZA, ZB))
         if self.settings.raw_kernel:
             ls = torch.exp(self.log_lx)
-            K = K + torch.exp(self.log_vx) * _matern(XA / ls, XB / ls)
+            K = K + torch.exp(self.log_vx) * _matern_r(dist(XA / ls, XB / ls))
         return K
 
     def residual_var(self) -> torch.Tensor:
@@ -183,15 +196,20 @@ class MetaPosterior:
     Predictions are in original units: ``y = shift + scale * t``.
     """
 
-    def __init__(self, net: DeepKernel, X: torch.Tensor, y: torch.Tensor, shift: float, scale: float, lam: float, name: str = "deep-kernel") -> None:
+    def __init__(
+        self, net: DeepKernel, X: torch.Tensor, y: torch.Tensor, shift: float, scale: float, lam: float,
+        name: str = "deep-kernel", blocks: tuple[torch.Tensor, ...] | None = None,
+    ) -> None:
         self.net, self.X, self.y = net, X, y
         self.shift, self.scale, self.lam, self.name = float(shift), float(scale), float(lam), name
         with torch.no_grad():
             self.noise = float(net.noise())
-            self._Z, self._m = net.parts(X)
+            # (features, mean head, affine block, residual block) of X: shared by the refit's
+            # grid and extended, not recomputed, when conditioning on lies.
+            self.blocks = blocks if blocks is not None else _blocks(net, X)
+            self._Z, self._m, A, R = self.blocks
             t = (y - self.shift) / self.scale
-            K = self._cov(X, self._Z, self._m, X, self._Z, self._m)
-            K = K + self.noise * torch.eye(len(X), dtype=X.dtype, device=X.device)
+            K = A + self.lam * R + self.noise * torch.eye(len(X), dtype=X.dtype, device=X.device)
             self.lml, self._L, self._alpha = _lml(t, self._mean(self._m), K)
             self._prior_res = float(net.residual_var()) * self.lam
 
@@ -203,7 +221,7 @@ class MetaPosterior:
         return self.net.a0 * m
 
     def _cov(self, XA: torch.Tensor, ZA: torch.Tensor, mA: torch.Tensor, XB: torch.Tensor, ZB: torch.Tensor, mB: torch.Tensor) -> torch.Tensor:
-        return self.net.affine(mA, mB) + self.lam * self.net.residual(XA, ZA, XB, ZB)
+        return self.net.affine(mA, mB) + self.lam * self.net.residual(XA, ZA, XB, ZB, fast=True)
 
     def predict_t(self, Xs: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
         """Mean and latent variance at ``Xs`` in original units (differentiable in ``Xs``)."""
@@ -228,7 +246,23 @@ class MetaPosterior:
 
     def condition(self, X_new: torch.Tensor, y_new: torch.Tensor) -> MetaPosterior:
         """The posterior after also seeing ``(X_new, y_new)``, hyperparameters unchanged."""
-        return MetaPosterior(self.net, torch.cat([self.X, X_new]), torch.cat([self.y, y_new]), self.shift, self.scale, self.lam, self.name)
+        net = self.net
+        with torch.no_grad():
+            Zn, mn = net.parts(X_new)
+            A_on, R_on = net.affine(self._m, mn), net.residual(self.X, self._Z, X_new, Zn, fast=True)
+            A_nn, R_nn = net.affine(mn, mn), net.residual(X_new, Zn, X_new, Zn)
+            _, _, A, R = self.blocks
+            blocks = (
+                torch.cat([self._Z, Zn]), torch.cat([self._m, mn]),
+                torch.cat([torch.cat([A, A_on], 1), torch.cat([A_on.T, A_nn], 1)]),
+                torch.cat([torch.cat([R, R_on], 1), torch.cat([R_on.T, R_nn], 1)]),
+            )
+        return MetaPosterior(net, torch.cat([self.X, X_new]), torch.cat([self.y, y_new]), self.shift, self.scale, self.lam, self.name, blocks)
+
+
+def _blocks(net: DeepKernel, X: torch.Tensor) -> tuple[torch.Tensor, ...]:
+    Z, m = net.parts(X)
+    return Z, m, net.affine(m, m), net.residual(X, Z, X, Z)
 
 
 @dataclass
@@ -371,7 +405,9 @@ class MetaModel:
         shift, scale = standardise(y[idx])
         if not fine_tune or len(idx) < 2:
             return MetaPosterior(self.net, Xt, yt, shift, scale, 1.0)
-        posts = [MetaPosterior(self.net, Xt, yt, shift, scale, lam) for lam in LAMBDAS]
+        with torch.no_grad():
+            blocks = _blocks(self.net, Xt)
+        posts = [MetaPosterior(self.net, Xt, yt, shift, scale, lam, blocks=blocks) for lam in LAMBDAS]
         best = int(_pick_lambda(torch.stack([p.lml for p in posts])))
         return posts[best]
 
