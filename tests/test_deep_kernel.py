@@ -10,7 +10,14 @@ import torch
 from scipy.stats import spearmanr
 
 from forebear.bench.proposal import SPACE3, make_history, shifted_hartmann3
-from forebear.surrogate.deep_kernel import FORMAT, MetaModel, MetaPosterior, Settings, _augment, cache_key
+from forebear.surrogate.deep_kernel import (
+    FORMAT,
+    MetaModel,
+    MetaPosterior,
+    Settings,
+    _augment,
+    cache_key,
+)
 from forebear.surrogate.gp import fit_gp
 
 FAST = Settings(max_steps=300, eval_every=50, patience=3, tasks_per_step=4, seed=0)
