@@ -212,8 +212,8 @@ def loopback(loopback_factory: Callable[..., LoopbackCluster]) -> LoopbackCluste
 def _stop_fork_servers() -> Iterator[None]:
     """Fork servers started in the test process itself (direct runner calls) end with the test."""
     yield
-    if "forebear.runner" in sys.modules:
-        sys.modules["forebear.runner"].shutdown_servers()
+    if "forebear.cluster.runner" in sys.modules:
+        sys.modules["forebear.cluster.runner"].shutdown_servers()
 
 
 @pytest.fixture(autouse=True, scope="session")

@@ -7,10 +7,10 @@ import pytest
 import torch
 from scipy.stats import norm
 
-from forebear.acquisition import Scorer, batch, keys, lie_value, log_ei, log_h, project
 from forebear.bench.functions import branin
-from forebear.space import Space
-from forebear.surrogate.gp import as_tensor, fit_gp
+from forebear.core.space import Space
+from forebear.engine.acquisition import Scorer, batch, keys, lie_value, log_ei, log_h, project
+from forebear.engine.surrogate.gp import as_tensor, fit_gp
 
 
 def closed_form_ei(mu: np.ndarray, s: np.ndarray, best: float) -> np.ndarray:

@@ -1,6 +1,6 @@
 """Bad input through the command line: one clear line per problem, exit 2, no traceback.
 
-The cases here are the spec and journal rows of the table in docs/reliability.md;
+The cases here are the spec and logbook rows of the table in docs/reliability.md;
 objective outputs and history files have their rows in the runner and history tests.
 """
 
@@ -12,8 +12,8 @@ from pathlib import Path
 import pytest
 from click.testing import CliRunner
 
-from forebear.cli import main
-from forebear.journal import Journal, record
+from forebear.face.cli import main
+from forebear.records.logbook import Logbook, record
 
 BAD = sorted((Path(__file__).parent / "data" / "bad_specs").glob("*.yaml"))
 
@@ -37,7 +37,7 @@ def test_check_bad_spec(path: Path) -> None:
 
 def test_run_bad_spec_writes_nothing(tmp_path: Path) -> None:
     spec = tmp_path / "s.yaml"
-    spec.write_text("objective: {call: m:f, minimize: l}\nspace: {x: {float: [1, 0]}}\njournal: runs/x.jsonl\n")
+    spec.write_text("objective: {call: m:f, minimize: l}\nspace: {x: {float: [1, 0]}}\nlogbook: runs/x.jsonl\n")
     code, err = run_cli("run", str(spec))
     assert code == 2 and "inverted range" in err
     assert not (tmp_path / "runs").exists()
@@ -58,16 +58,16 @@ def test_spec_is_a_folder(tmp_path: Path) -> None:
     assert code == 2 and "Traceback" not in err
 
 
-def _journal(tmp_path: Path) -> Journal:
-    j = Journal(tmp_path / "j.jsonl")
+def _logbook(tmp_path: Path) -> Logbook:
+    j = Logbook(tmp_path / "j.jsonl")
     j.append(record("search", name="s", spec_hash="h", space={}, objective={"minimize": "loss"}, seed=0))
     j.append(record("proposed", trial=0, round=0, config={"x": 1}, source="initial", model=None, acquisition=None))
     j.append(record("scored", trial=0, attempt=1, score=0.25, metrics={}, seconds=1.0))
     return j
 
 
-def test_journal_with_garbage_lines_still_reads(tmp_path: Path) -> None:
-    j = _journal(tmp_path)
+def test_logbook_with_garbage_lines_still_reads(tmp_path: Path) -> None:
+    j = _logbook(tmp_path)
     with open(j.path, "ab") as fh:
         fh.write(b"\x00\x01garbage\n{not json}\n")
     before = j.path.read_bytes()
@@ -85,7 +85,7 @@ def test_journal_with_garbage_lines_still_reads(tmp_path: Path) -> None:
         ("\xff\xfe binary", "holds no forebear records"),
     ],
 )
-def test_bad_journals(tmp_path: Path, content: str, fragment: str) -> None:
+def test_bad_logbooks(tmp_path: Path, content: str, fragment: str) -> None:
     p = tmp_path / "j.jsonl"
     p.write_bytes(content.encode("utf-8", "surrogateescape") if content else b"")
     for command in ("status", "best"):

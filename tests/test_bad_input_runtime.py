@@ -1,9 +1,9 @@
 """Bad input met while a search runs, through the real command line, controller and workers.
 
 Objective outputs become ``failed`` trials that name the reason (the search
-goes on); bad history files and journals stop ``forebear run`` with one line
+goes on); bad history files and logbooks stop ``forebear run`` with one line
 and exit 2 before anything is written. These are the objective-output,
-history and journal rows of the table in docs/reliability.md (the spec rows
+history and logbook rows of the table in docs/reliability.md (the spec rows
 are tests/test_bad_input.py).
 """
 
@@ -18,8 +18,8 @@ import yaml
 from click.testing import CliRunner
 
 import forebear
-from forebear.cli import main as cli_main
-from forebear.journal import Journal, record
+from forebear.face.cli import main as cli_main
+from forebear.records.logbook import Logbook, record
 
 from .conftest import LoopbackCluster
 
@@ -65,8 +65,8 @@ def _write(path: Path, spec: dict[str, Any]) -> Path:
     return path
 
 
-def _check_cases(journal: Path, cases: dict[str, tuple[str, str | None]]) -> None:
-    table = forebear.load(journal)
+def _check_cases(logbook: Path, cases: dict[str, tuple[str, str | None]]) -> None:
+    table = forebear.load(logbook)
     by_case = {t.config["case"]: t for t in table}
     assert set(by_case) == set(cases)
     for case, (_, reason) in cases.items():
@@ -76,7 +76,7 @@ def _check_cases(journal: Path, cases: dict[str, tuple[str, str | None]]) -> Non
         else:
             assert t.state == "failed" and reason in (t.error or ""), (case, t.error)
             assert len(t.error or "") < 16_000, (case, len(t.error or ""))  # a huge output is not copied whole
-    assert not [r for r in Journal(journal).records() if r["kind"] == "failed" and r.get("retryable")]
+    assert not [r for r in Logbook(logbook).records() if r["kind"] == "failed" and r.get("retryable")]
 
 
 @pytest.mark.timeout(300)
@@ -92,7 +92,7 @@ def test_command_objective_outputs(tmp_path: Path, shared_loopback: LoopbackClus
         "space": {"case": {"categories": list(COMMAND_CASES)}},
         "budget": {"trials": n, "batch": n, "concurrency": 2},
         "cluster": {"address": shared_loopback.address},
-        "journal": "runs/out.jsonl",
+        "logbook": "runs/out.jsonl",
     })
     code, err = _run("run", str(spec), "--quiet")
     assert code == 0 and "Traceback" not in err, err
@@ -111,7 +111,7 @@ def test_call_objective_results(tmp_path: Path, shared_loopback: LoopbackCluster
         "space": {"case": {"categories": list(CALL_CASES)}},
         "budget": {"trials": n, "batch": n, "concurrency": 2},
         "cluster": {"address": shared_loopback.address},
-        "journal": "runs/calls.jsonl",
+        "logbook": "runs/calls.jsonl",
     })
     code, err = _run("run", str(spec), "--quiet")
     assert code == 0 and "Traceback" not in err, err
@@ -125,14 +125,14 @@ def test_nothing_scored_exits_1_with_one_line(tmp_path: Path, shared_loopback: L
         "space": {"x": {"float": [0.0, 1.0]}},
         "budget": {"trials": 2, "batch": 2, "concurrency": 2},
         "cluster": {"address": shared_loopback.address},
-        "journal": "runs/none.jsonl",
+        "logbook": "runs/none.jsonl",
     })
     code, err = _run("run", str(spec), "--quiet")
     assert code == 1 and err.strip() == "forebear: the search ran but no trial scored", err
 
 
 # --------------------------------------------------------------------------
-# history files and journals: refused before anything is written
+# history files and logbooks: refused before anything is written
 
 
 def _spec_with(tmp: Path, address: str | None = None, **extra: Any) -> Path:
@@ -144,15 +144,15 @@ def _spec_with(tmp: Path, address: str | None = None, **extra: Any) -> Path:
         # No scheduler listens on port 9 of this machine: a run that got as far as connecting would fail
         # with a different message than the one each case expects.
         "cluster": {"address": address or "tcp://127.0.0.1:9"},
-        "journal": "runs/store-17.jsonl",
+        "logbook": "runs/store-17.jsonl",
         "seed": 5,
     }
     spec.update(extra)
     return _write(tmp / "search.yaml", spec)
 
 
-def _earlier_journal(path: Path, space: dict[str, Any], *, garbage: bool = False, header: bool = True) -> Path:
-    j = Journal(path)
+def _earlier_logbook(path: Path, space: dict[str, Any], *, garbage: bool = False, header: bool = True) -> Path:
+    j = Logbook(path)
     if header:
         j.append(record("search", name="store-12", spec_hash="e", space=space, objective={"minimize": "loss"}, seed=1))
     for i in range(3):
@@ -187,47 +187,47 @@ def test_bad_history_table(tmp_path: Path, case: str) -> None:
     _refused(tmp_path, spec, message.format(csv=csv))
 
 
-def _refused(tmp: Path, spec: Path, message: str, journal: Path | None = None) -> None:
-    """``forebear run`` stops with one line holding ``message``, exit 2, and the journal is untouched."""
-    journal = journal or tmp / "runs" / "store-17.jsonl"
-    before = journal.read_bytes() if journal.exists() else None
+def _refused(tmp: Path, spec: Path, message: str, logbook: Path | None = None) -> None:
+    """``forebear run`` stops with one line holding ``message``, exit 2, and the logbook is untouched."""
+    logbook = logbook or tmp / "runs" / "store-17.jsonl"
+    before = logbook.read_bytes() if logbook.exists() else None
     code, err = _run("run", str(spec), "--quiet")
     assert code == 2, err
     lines = err.strip().splitlines()
     assert len(lines) == 1 and message in lines[0] and "Traceback" not in err, err
-    assert (journal.read_bytes() if journal.exists() else None) == before
+    assert (logbook.read_bytes() if logbook.exists() else None) == before
 
 
-def test_history_journal_with_garbage_line(tmp_path: Path) -> None:
-    past = _earlier_journal(tmp_path / "past" / "store-12.jsonl", {"x": {"float": [0, 1]}, "y": {"float": [-1, 1]}}, garbage=True)
+def test_history_logbook_with_garbage_line(tmp_path: Path) -> None:
+    past = _earlier_logbook(tmp_path / "past" / "store-12.jsonl", {"x": {"float": [0, 1]}, "y": {"float": [-1, 1]}}, garbage=True)
     spec = _spec_with(tmp_path, history=["past/store-*.jsonl"])
-    _refused(tmp_path, spec, f"history journal {past}: line 5: not a JSON record")
+    _refused(tmp_path, spec, f"history logbook {past}: line 5: not a JSON record")
 
 
-def test_history_journal_without_search_record(tmp_path: Path) -> None:
-    past = _earlier_journal(tmp_path / "past" / "store-12.jsonl", {"x": {"float": [0, 1]}}, header=False)
+def test_history_logbook_without_search_record(tmp_path: Path) -> None:
+    past = _earlier_logbook(tmp_path / "past" / "store-12.jsonl", {"x": {"float": [0, 1]}}, header=False)
     spec = _spec_with(tmp_path, history=["past/store-12.jsonl"])
-    _refused(tmp_path, spec, f"history journal {past}: line 1: no search record")
+    _refused(tmp_path, spec, f"history logbook {past}: line 1: no search record")
 
 
 def test_history_file_missing(tmp_path: Path) -> None:
     spec = _spec_with(tmp_path, history=["past/store-12.jsonl"])
-    _refused(tmp_path, spec, f"history journal {tmp_path / 'past' / 'store-12.jsonl'}: no such file")
+    _refused(tmp_path, spec, f"history logbook {tmp_path / 'past' / 'store-12.jsonl'}: no such file")
 
 
-def _own_journal(tmp: Path) -> Journal:
-    j = Journal(tmp / "runs" / "store-17.jsonl")
+def _own_logbook(tmp: Path) -> Logbook:
+    j = Logbook(tmp / "runs" / "store-17.jsonl")
     return j
 
 
-def test_journal_of_a_future_format(tmp_path: Path) -> None:
-    j = _own_journal(tmp_path)
+def test_logbook_of_a_future_format(tmp_path: Path) -> None:
+    j = _own_logbook(tmp_path)
     j.append({"v": 2, "at": 1.0, "kind": "search", "name": "store-17", "objective": {"minimize": "loss"}})
     _refused(tmp_path, _spec_with(tmp_path), "format version 2 is newer than this forebear reads (1); upgrade forebear")
 
 
-def test_journal_of_another_search(tmp_path: Path) -> None:
-    j = _own_journal(tmp_path)
+def test_logbook_of_another_search(tmp_path: Path) -> None:
+    j = _own_logbook(tmp_path)
     j.append(record("search", name="store-17", spec_hash="zz", space={"lr": {"float": [0.001, 0.1], "log": True}},
                     objective={"call": "other:fn", "minimize": "loss"}, seed=5))
     j.append(record("proposed", trial=0, round=0, config={"lr": 0.01}, source="initial", model=None, acquisition=None))
@@ -236,34 +236,34 @@ def test_journal_of_another_search(tmp_path: Path) -> None:
     assert "space.lr: removed" in err and "space.x: added" in err
 
 
-def test_journal_with_trial_records_and_no_search_record(tmp_path: Path) -> None:
-    _own_journal(tmp_path).append(record("proposed", trial=0, round=0, config={"x": 0.1}, source="initial", model=None, acquisition=None))
-    _refused(tmp_path, _spec_with(tmp_path), "has trial records but no search record; not a forebear journal")
+def test_logbook_with_trial_records_and_no_search_record(tmp_path: Path) -> None:
+    _own_logbook(tmp_path).append(record("proposed", trial=0, round=0, config={"x": 0.1}, source="initial", model=None, acquisition=None))
+    _refused(tmp_path, _spec_with(tmp_path), "has trial records but no search record; not a forebear logbook")
 
 
-def test_journal_path_is_someone_elses_file(tmp_path: Path, shared_loopback: LoopbackCluster) -> None:
+def test_logbook_path_is_someone_elses_file(tmp_path: Path, shared_loopback: LoopbackCluster) -> None:
     # A real cluster: before the fix the controller got as far as appending to the file and cut its last line.
     data = tmp_path / "runs" / "store-17.jsonl"
     data.parent.mkdir()
     data.write_bytes(b"region,demand\nnorth,120\nsouth,95")
-    _refused(tmp_path, _spec_with(tmp_path, shared_loopback.address), "holds no forebear records (3 unreadable line(s)); not a forebear journal")
+    _refused(tmp_path, _spec_with(tmp_path, shared_loopback.address), "holds no forebear records (3 unreadable line(s)); not a forebear logbook")
 
 
-def test_journal_path_is_a_folder(tmp_path: Path) -> None:
+def test_logbook_path_is_a_folder(tmp_path: Path) -> None:
     (tmp_path / "runs" / "store-17.jsonl").mkdir(parents=True)
     code, err = _run("run", str(_spec_with(tmp_path)), "--quiet")
     assert code == 2 and "Is a directory" in err and len(err.strip().splitlines()) == 1 and "Traceback" not in err, err
 
 
-def test_journal_with_garbage_lines_resumes_and_keeps_them(tmp_path: Path, shared_loopback: LoopbackCluster) -> None:
-    """One run covers two rows: a journal with garbage lines resumes, and a history of another space is noted."""
-    from forebear.controller import search_record
-    from forebear.spec import load
+def test_logbook_with_garbage_lines_resumes_and_keeps_them(tmp_path: Path, shared_loopback: LoopbackCluster) -> None:
+    """One run covers two rows: a logbook with garbage lines resumes, and a history of another space is noted."""
+    from forebear.core.spec import load
+    from forebear.loop.resume import search_record
 
-    _earlier_journal(tmp_path / "past" / "churn-3.jsonl", {"depth": {"int": [2, 12]}})
+    _earlier_logbook(tmp_path / "past" / "churn-3.jsonl", {"depth": {"int": [2, 12]}})
     spec = _spec_with(tmp_path, shared_loopback.address, history=["past/*.jsonl"], budget={"trials": 4, "batch": 2, "concurrency": 2})
     path = tmp_path / "runs" / "store-17.jsonl"
-    j = Journal(path)
+    j = Logbook(path)
     j.append(search_record(load(spec)))
     for i in range(2):
         j.append(record("proposed", trial=i, round=0, config={"x": 0.2 * i, "y": 0.1}, source="initial", model=None, acquisition=None))
@@ -280,7 +280,7 @@ def test_journal_with_garbage_lines_resumes_and_keeps_them(tmp_path: Path, share
     table = forebear.load(path)
     assert table.skipped == 3 and table.finished == 4 and table.trials[1].score == 0.4
     assert json.loads(_run_json("status", str(path)))["skipped_lines"] == 3
-    # The history journal of another space is skipped with a note, not an error.
+    # The history logbook of another space is skipped with a note, not an error.
     assert "history: history task 'store-12'" in err and "lacks parameter 'x' and the space gives it no default; task skipped" in err
     assert "history: 0 earlier search(es)" in err
 

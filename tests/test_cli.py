@@ -11,8 +11,8 @@ from pathlib import Path
 import pytest
 from click.testing import CliRunner
 
-from forebear.cli import main
-from forebear.journal import Journal, record
+from forebear.face.cli import main
+from forebear.records.logbook import Logbook, record
 
 SPEC = """\
 name: cli-test
@@ -25,8 +25,8 @@ budget: {trials: 10, concurrency: 20}
 
 
 @pytest.fixture()
-def journal(tmp_path: Path) -> Path:
-    j = Journal(tmp_path / "runs" / "x.jsonl")
+def logbook(tmp_path: Path) -> Path:
+    j = Logbook(tmp_path / "runs" / "x.jsonl")
     j.append(record("search", name="cli-test", spec_hash="h", space={}, objective={"call": "m:f", "minimize": "loss"}, seed=0))
     for t, (lr, score) in enumerate([(0.01, 0.5), (0.02, 0.3), (0.03, None), (0.04, 0.4)]):
         j.append(record("proposed", trial=t, round=0, config={"lr": lr, "booster": "tree"}, source="initial", model=None, acquisition=None))
@@ -63,36 +63,36 @@ def test_check_errors_exit_2(tmp_path: Path) -> None:
     assert "Traceback" not in err
 
 
-def test_status(journal: Path) -> None:
-    code, out, err = invoke("status", str(journal), "--json")
+def test_status(logbook: Path) -> None:
+    code, out, err = invoke("status", str(logbook), "--json")
     assert code == 0, err
     data = json.loads(out)
     assert data["counts"] == {"queued": 0, "running": 0, "scored": 3, "failed": 1}
     assert data["best"]["trial"] == 1
-    code, out, err = invoke("status", str(journal))
+    code, out, err = invoke("status", str(logbook))
     assert code == 0 and "best: trial 1" in err
 
 
-def test_best_json(journal: Path) -> None:
-    code, out, _ = invoke("best", str(journal), "--json")
+def test_best_json(logbook: Path) -> None:
+    code, out, _ = invoke("best", str(logbook), "--json")
     assert code == 0
     data = json.loads(out)
     assert data["trial"] == 1 and data["score"] == 0.3
     assert data["config"] == {"lr": 0.02, "booster": "tree"}
-    assert data["metric"] == "loss" and data["direction"] == "minimize"
+    assert data["minimize"] == "loss" and "metric" not in data and "sense" not in data
 
 
 def test_best_nothing_scored_exit_1(tmp_path: Path) -> None:
-    j = Journal(tmp_path / "e.jsonl")
+    j = Logbook(tmp_path / "e.jsonl")
     j.append(record("search", name="e", spec_hash="h", space={}, objective={"minimize": "loss"}, seed=0))
     j.append(record("proposed", trial=0, round=0, config={"x": 1}, source="initial", model=None, acquisition=None))
     code, _, err = invoke("best", str(j.path))
     assert code == 1 and "no trial has scored" in err
 
 
-def test_export_csv(journal: Path, tmp_path: Path) -> None:
+def test_export_csv(logbook: Path, tmp_path: Path) -> None:
     out_csv = tmp_path / "t.csv"
-    code, _, err = invoke("export", str(journal), "--csv", str(out_csv))
+    code, _, err = invoke("export", str(logbook), "--csv", str(out_csv))
     assert code == 0, err
     rows = list(csv.DictReader(out_csv.open()))
     assert len(rows) == 4
@@ -100,12 +100,12 @@ def test_export_csv(journal: Path, tmp_path: Path) -> None:
     assert rows[2]["state"] == "failed" and "ValueError" in rows[2]["error"]
 
 
-def test_missing_journal_exit_2(tmp_path: Path) -> None:
+def test_missing_logbook_exit_2(tmp_path: Path) -> None:
     code, _, err = invoke("status", str(tmp_path / "nope.jsonl"))
     assert code == 2 and "does not exist" in err
 
 
-def test_garbage_journal_exit_2(tmp_path: Path) -> None:
+def test_garbage_logbook_exit_2(tmp_path: Path) -> None:
     p = tmp_path / "g.jsonl"
     p.write_bytes(b"hello\nworld\n")
     code, _, err = invoke("best", str(p))

@@ -11,10 +11,11 @@ from typing import Any
 import pytest
 
 import forebear
-from forebear.controller import Controller, SpecChanged, spec_changes
-from forebear.journal import Journal, JournalBusy
-from forebear.progress import Progress
-from forebear.spec import load
+from forebear.core.spec import load
+from forebear.face.progress import Progress
+from forebear.loop.controller import Controller
+from forebear.loop.resume import SpecChanged, spec_changes
+from forebear.records.logbook import Logbook, LogbookBusy
 
 from .conftest import LoopbackCluster
 
@@ -28,14 +29,14 @@ def make_spec(tmp: Path, cluster: LoopbackCluster, call: str = "objectives:quadr
         "space": {"x": {"float": [0.0, 1.0]}, "y": {"float": [-1.0, 1.0]}},
         "budget": b,
         "cluster": {"address": cluster.address},
-        "journal": str(tmp / "runs" / "ctl.jsonl"),
+        "logbook": str(tmp / "runs" / "ctl.jsonl"),
         "seed": 3,
     }
 
 
-def kinds_by_trial(journal: Path) -> dict[int, list[str]]:
+def kinds_by_trial(logbook: Path) -> dict[int, list[str]]:
     out: dict[int, list[str]] = {}
-    for rec in Journal(journal).records():
+    for rec in Logbook(logbook).records():
         if "trial" in rec:
             out.setdefault(rec["trial"], []).append(rec["kind"])
     return out
@@ -83,7 +84,7 @@ def test_retry_errors_retries_then_fails(tmp_path: Path, shared_loopback: Loopba
     assert result.counts["failed"] == 1
     kinds = kinds_by_trial(tmp_path / "runs" / "ctl.jsonl")[0]
     assert kinds == ["proposed"] + ["started", "failed"] * 3
-    recs = [r for r in Journal(tmp_path / "runs" / "ctl.jsonl").records() if r["kind"] == "failed"]
+    recs = [r for r in Logbook(tmp_path / "runs" / "ctl.jsonl").records() if r["kind"] == "failed"]
     assert [r["retryable"] for r in recs] == [True, True, False]
 
 
@@ -108,14 +109,14 @@ def test_changed_spec_is_refused_with_the_changes(tmp_path: Path, shared_loopbac
         forebear.run(bigger)
     result = forebear.run(bigger, extend=True)
     assert result.counts["scored"] == 4
-    # The extended budget is now the journal's: a plain rerun is accepted.
+    # The extended budget is now the logbook's: a plain rerun is accepted.
     assert forebear.run(bigger).counts["scored"] == 4
 
 
 def test_spec_changes_rules(tmp_path: Path) -> None:
     base = {"objective": {"call": "m:f", "minimize": "loss"}, "space": {"x": {"float": [0, 1]}}, "budget": {"trials": 5, "batch": 2, "concurrency": 2}}
     s = load(base, base_dir=tmp_path)
-    from forebear.controller import search_record
+    from forebear.loop.resume import search_record
 
     header = search_record(s)
     assert spec_changes(header, s, extend=False) == ([], False)
@@ -128,10 +129,10 @@ def test_spec_changes_rules(tmp_path: Path) -> None:
 
 def test_second_controller_is_refused(tmp_path: Path, shared_loopback: LoopbackCluster) -> None:
     spec = load(make_spec(tmp_path, shared_loopback, trials=1))
-    from forebear.journal import ControllerLock
+    from forebear.records.logbook import ControllerLock
 
-    with ControllerLock(Journal(spec.journal)):
-        with pytest.raises(JournalBusy, match="is driven by pid"):
+    with ControllerLock(Logbook(spec.logbook)):
+        with pytest.raises(LogbookBusy, match="is driven by pid"):
             Controller(spec).run()
 
 
@@ -166,7 +167,7 @@ def test_plain_progress_lines() -> None:
 def test_each_trial_terminal_once(tmp_path: Path, shared_loopback: LoopbackCluster) -> None:
     spec = make_spec(tmp_path, shared_loopback, call="objectives:sleep_from_x", trials=6, concurrency=2, batch=3)
     forebear.run(spec)
-    terminal = Counter(r["trial"] for r in Journal(tmp_path / "runs" / "ctl.jsonl").records() if r["kind"] in ("scored", "failed"))
+    terminal = Counter(r["trial"] for r in Logbook(tmp_path / "runs" / "ctl.jsonl").records() if r["kind"] in ("scored", "failed"))
     assert sorted(terminal) == list(range(6)) and set(terminal.values()) == {1}
 
 
@@ -184,13 +185,13 @@ def _launch(tmp: Path, cluster: LoopbackCluster, *args: str, trials: int = 6) ->
     path.write_text(yaml.safe_dump(spec))
     proc = subprocess.Popen([sys.executable, "-m", "forebear", "run", str(path), *args], env=child_env(),
                             start_new_session=True, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
-    journal = Path(spec["journal"])
+    logbook = Path(spec["logbook"])
     deadline = time.monotonic() + 90
-    while not (journal.exists() and any(r["kind"] == "started" for r in Journal(journal).records())):
+    while not (logbook.exists() and any(r["kind"] == "started" for r in Logbook(logbook).records())):
         assert proc.poll() is None, proc.stderr.read() if proc.stderr else ""
         assert time.monotonic() < deadline, "no attempt started"
         time.sleep(0.05)
-    return proc, journal
+    return proc, logbook
 
 
 @pytest.mark.parametrize("cancel", [False, pytest.param(True, marks=pytest.mark.slow)])
@@ -200,18 +201,18 @@ def test_first_ctrl_c_stops_proposing(tmp_path: Path, shared_loopback: LoopbackC
 
     from .conftest import reap
 
-    proc, journal = _launch(tmp_path, shared_loopback, *(["--cancel-running"] if cancel else []))
+    proc, logbook = _launch(tmp_path, shared_loopback, *(["--cancel-running"] if cancel else []))
     try:
         os.kill(proc.pid, signal.SIGINT)
         _, err = proc.communicate(timeout=60)
     finally:
         reap(proc)
-    table = Journal(journal).fold()
+    table = Logbook(logbook).fold()
     assert table.closed is not None and table.closed["reason"] == "interrupted"
     # Two attempts ran; at most one more round (batch 2) was proposed ahead and stays queued.
     assert len(table) <= 2 + 2
     assert sum(1 for t in table if t.attempts) == 2
-    lost = [r for r in Journal(journal).records() if r["kind"] == "lost"]
+    lost = [r for r in Logbook(logbook).records() if r["kind"] == "lost"]
     if cancel:
         assert "cancelling running attempts" in err
         assert {r["reason"] for r in lost} == {"interrupted"} and table.counts()["scored"] == 0
@@ -229,7 +230,7 @@ def test_second_ctrl_c_stops_at_once(tmp_path: Path, shared_loopback: LoopbackCl
 
     from .conftest import reap
 
-    proc, journal = _launch(tmp_path, shared_loopback)
+    proc, logbook = _launch(tmp_path, shared_loopback)
     try:
         os.kill(proc.pid, signal.SIGINT)
         time.sleep(0.3)
@@ -239,14 +240,14 @@ def test_second_ctrl_c_stops_at_once(tmp_path: Path, shared_loopback: LoopbackCl
         assert time.monotonic() - t0 < 2.0 + 10  # well before the 2 s attempts plus teardown would end
     finally:
         reap(proc)
-    table = Journal(journal).fold()
+    table = Logbook(logbook).fold()
     assert table.closed is not None and table.closed["reason"] == "interrupted"
 
 
 def test_without_a_shared_filesystem_the_controller_writes(tmp_path: Path, shared_loopback: LoopbackCluster, monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]) -> None:
-    import forebear.controller as controller_mod
+    import forebear.loop.controller as controller_mod
 
-    # The workers look for the token at runner.PROBE_NAME; writing it elsewhere makes the journal's
+    # The workers look for the token at runner.PROBE_NAME; writing it elsewhere makes the logbook's
     # folder look unreachable to them, as on a machine without the shared filesystem.
     monkeypatch.setattr(controller_mod, "PROBE_NAME", ".probe-not-where-workers-look")
     spec = make_spec(tmp_path, shared_loopback, call="objectives:crash", trials=2)
@@ -260,26 +261,26 @@ def test_without_a_shared_filesystem_the_controller_writes(tmp_path: Path, share
     assert "Traceback" in log.read_text() and oct(log.stat().st_mode & 0o777) == "0o600"
 
 
-def test_journal_write_failure_stops_and_keeps_what_was_recorded(tmp_path: Path, shared_loopback: LoopbackCluster, monkeypatch: pytest.MonkeyPatch) -> None:
+def test_logbook_write_failure_stops_and_keeps_what_was_recorded(tmp_path: Path, shared_loopback: LoopbackCluster, monkeypatch: pytest.MonkeyPatch) -> None:
     import errno
 
-    import forebear.controller as controller_mod
-    from forebear.journal import JournalError
+    import forebear.loop.controller as controller_mod
+    from forebear.records.logbook import LogbookError
 
-    real = controller_mod.Journal.append_many
+    real = controller_mod.Logbook.append_many
     calls = {"n": 0}
 
-    def failing(self: Journal, recs: Any) -> None:
+    def failing(self: Logbook, recs: Any) -> None:
         calls["n"] += 1
         if calls["n"] > 4:  # the search record, a round or two, then the disk "fills up"
-            raise JournalError(errno.ENOSPC, f"journal {self.path}: write failed: No space left on device")
+            raise LogbookError(errno.ENOSPC, f"logbook {self.path}: write failed: No space left on device")
         real(self, recs)
 
-    monkeypatch.setattr(controller_mod.Journal, "append_many", failing)
+    monkeypatch.setattr(controller_mod.Logbook, "append_many", failing)
     spec = make_spec(tmp_path, shared_loopback, call="objectives:sleep_from_x", trials=20, concurrency=2, batch=1)
-    with pytest.raises(JournalError, match="No space left on device"):
+    with pytest.raises(LogbookError, match="No space left on device"):
         forebear.run(spec)
-    monkeypatch.setattr(controller_mod.Journal, "append_many", real)
+    monkeypatch.setattr(controller_mod.Logbook, "append_many", real)
     table = forebear.load(tmp_path / "runs" / "ctl.jsonl")
     assert table.header is not None and len(table) >= 1 and table.closed is None
     # Resuming after the disk has room again completes the search from what was recorded.

@@ -10,7 +10,7 @@ import torch
 from scipy.stats import spearmanr
 
 from forebear.bench.proposal import SPACE3, make_history, shifted_hartmann3
-from forebear.surrogate.deep_kernel import (
+from forebear.engine.surrogate.deep_kernel import (
     FORMAT,
     MetaModel,
     MetaPosterior,
@@ -18,7 +18,7 @@ from forebear.surrogate.deep_kernel import (
     _augment,
     cache_key,
 )
-from forebear.surrogate.gp import fit_gp
+from forebear.engine.surrogate.gp import fit_gp
 
 FAST = Settings(max_steps=300, eval_every=50, patience=3, tasks_per_step=4, seed=0)
 

@@ -11,10 +11,10 @@ import numpy as np
 import pytest
 from scipy.stats import spearmanr
 
-from forebear import demo
-from forebear.demo_forecast import REGIONS, SPACE, dataset, evaluate
-from forebear.journal import Journal
-from forebear.space import Space
+from forebear.core.space import Space
+from forebear.face import demo
+from forebear.face.demo_forecast import REGIONS, SPACE, dataset, evaluate
+from forebear.records.logbook import Logbook
 
 # Registering forebear's fail-fast plugin once per search on the demo's shared scheduler makes
 # distributed warn that it replaces the previous copy; the replacement is the same plugin.
@@ -63,11 +63,11 @@ def test_reduced_demo_end_to_end(tmp_path: Path, capsys: pytest.CaptureFixture[s
     err = capsys.readouterr().err
     assert "best configuration for coast:" in err and "gain from history:" in err
     for region in plan.history_regions:
-        table = Journal(folder / "runs" / "history" / f"region-{region}.jsonl").fold()
+        table = Logbook(folder / "runs" / "history" / f"region-{region}.jsonl").fold()
         assert (table.closed or {}).get("reason") == "budget"
         assert table.counts()["scored"] == 4
-    cold = Journal(folder / "runs" / "coast-cold.jsonl").fold()
-    warm = Journal(folder / "runs" / "coast-history.jsonl").fold()
+    cold = Logbook(folder / "runs" / "coast-cold.jsonl").fold()
+    warm = Logbook(folder / "runs" / "coast-history.jsonl").fold()
     assert cold.counts()["scored"] == warm.counts()["scored"] == 5
     assert cold.header["seed"] == warm.header["seed"]
     # Only the history differs: the warm search's model rounds used a history-aware model.
@@ -80,10 +80,10 @@ def test_reduced_demo_end_to_end(tmp_path: Path, capsys: pytest.CaptureFixture[s
     assert (folder / "report" / "report.html").exists()
     assert (folder / "specs" / "coast-history.yaml").exists()
     # The written specs are valid on their own (cluster: local), so a user can rerun them.
-    from forebear import spec as spec_mod
+    from forebear.core import spec as spec_mod
 
     s = spec_mod.load(folder / "specs" / "coast-history.yaml")
-    assert s.cluster.kind == "local" and s.history and s.journal.resolve() == folder.resolve() / "runs" / "coast-history.jsonl"
+    assert s.cluster.kind == "local" and s.history and s.logbook.resolve() == folder.resolve() / "runs" / "coast-history.jsonl"
 
 
 @pytest.mark.slow

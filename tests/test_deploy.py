@@ -16,7 +16,7 @@ from typing import Any
 import pytest
 import yaml
 
-from forebear import spec as spec_mod
+from forebear.core import spec as spec_mod
 
 ROOT = Path(__file__).resolve().parents[1]
 DEPLOY = ROOT / "deploy"
@@ -123,7 +123,7 @@ def test_kubernetes_pieces_fit_together(tmp_path: Path) -> None:
     assert args[0] == "tls://forebear-scheduler:8786"
     assert args[args.index("--resources") + 1] == "GPU=1"
 
-    pvc = _by_kind_name("PersistentVolumeClaim", "forebear-journal")
+    pvc = _by_kind_name("PersistentVolumeClaim", "forebear-logbook")
     assert "ReadWriteMany" in pvc["spec"]["accessModes"]
     job = _by_kind_name("Job", "forebear-search")
     for obj in (sched, worker, job):
@@ -131,7 +131,7 @@ def test_kubernetes_pieces_fit_together(tmp_path: Path) -> None:
             if "secret" in v:
                 assert v["secret"]["secretName"] == "forebear-tls"
             if "persistentVolumeClaim" in v:
-                assert v["persistentVolumeClaim"]["claimName"] == "forebear-journal"
+                assert v["persistentVolumeClaim"]["claimName"] == "forebear-logbook"
             if "configMap" in v:
                 assert v["configMap"]["name"] == "forebear-spec"
 
@@ -144,7 +144,7 @@ def test_kubernetes_pieces_fit_together(tmp_path: Path) -> None:
     assert s.cluster.kind == "address" and s.cluster.address == "tls://forebear-scheduler:8786"
     assert s.cluster.tls == {"ca": "/certs/ca.pem", "cert": "/certs/tls.crt", "key": "/certs/tls.key"}
     assert dict(s.resources) == {"GPU": 1}
-    assert str(s.journal).startswith("/journal/")
+    assert str(s.logbook).startswith("/logbook/")
     assert job["spec"]["template"]["spec"]["containers"][0]["command"][:3] == ["forebear", "run", "/spec/search.yaml"]
     kust = _docs(K8S / "kustomization.yaml")[0]
     assert sorted(kust["resources"]) == sorted(p.name for p in K8S.glob("*.yaml") if p.name != "kustomization.yaml")
@@ -211,7 +211,7 @@ def test_pbs_jobqueue_yaml_renders_a_gpu_job_script(tmp_path: Path, monkeypatch:
 @pytest.mark.parametrize("section", ["slurm", "pbs"])
 def test_deploy_specs_render_one_gpu_worker_per_job(section: str) -> None:
     """Through forebear's own dispatch: each job has one GPU, so exactly one worker may advertise it."""
-    from forebear.dispatch import jobqueue_cluster
+    from forebear.cluster.dispatch import jobqueue_cluster
 
     cluster = jobqueue_cluster(spec_mod.load(DEPLOY / section / "search.yaml"))
     try:
@@ -338,17 +338,17 @@ def test_local_scripts_start_and_stop_a_cluster_a_search_uses(tmp_path: Path) ->
             assert all(w["host"] == "127.0.0.1" and w["resources"] == {"GPU": 1} for w in workers)
         import dataclasses
 
-        import forebear.controller as controller
+        import forebear.face.api as controller
 
         # examples/cluster_gpu's own spec (a torch objective asking for one GPU per trial),
-        # pointed at this cluster's port, with a smaller budget and the journal under tmp_path.
+        # pointed at this cluster's port, with a smaller budget and the logbook under tmp_path.
         s = spec_mod.load(ROOT / "examples" / "cluster_gpu" / "search.yaml")
         assert dict(s.resources) == {"GPU": 1}
         s = dataclasses.replace(
             s,
             cluster=dataclasses.replace(s.cluster, address=address),
             budget=dataclasses.replace(s.budget, trials=4),
-            journal=tmp_path / "runs" / "returns.jsonl",
+            logbook=tmp_path / "runs" / "returns.jsonl",
         )
         result = controller.run(s)
         assert result.closed == "budget"

@@ -8,7 +8,7 @@ from typing import Any
 import psutil
 import pytest
 
-from forebear.dispatch import (
+from forebear.cluster.dispatch import (
     Dispatch,
     UnsatisfiableResources,
     connect,
@@ -16,7 +16,7 @@ from forebear.dispatch import (
     insecure_warning,
     jobqueue_cluster,
 )
-from forebear.spec import load
+from forebear.core.spec import load
 
 
 def base(tmp: Path, cluster: dict[str, Any], **extra: Any) -> Any:
@@ -25,7 +25,7 @@ def base(tmp: Path, cluster: dict[str, Any], **extra: Any) -> Any:
         "space": {"x": {"float": [0.0, 1.0]}},
         "budget": {"trials": 2, "concurrency": 2},
         "cluster": cluster,
-        "journal": str(tmp / "j.jsonl"),
+        "logbook": str(tmp / "j.jsonl"),
         **extra,
     }, base_dir=tmp)
 
@@ -159,11 +159,11 @@ def test_trials_run_on_workers_that_offer_the_resources(tmp_path: Path, loopback
         "budget": {"trials": 3, "concurrency": 2, "batch": 2},
         "cluster": {"address": cluster.address},
         "resources": {"GPU": 1},
-        "journal": str(tmp_path / "gpu.jsonl"),
+        "logbook": str(tmp_path / "gpu.jsonl"),
     }
     result = forebear.run(spec)
     assert result.counts["scored"] == 3
-    from forebear.journal import Journal
+    from forebear.records.logbook import Logbook
 
-    workers = {r["worker"] for r in Journal(tmp_path / "gpu.jsonl").records() if r["kind"] == "started"}
+    workers = {r["worker"] for r in Logbook(tmp_path / "gpu.jsonl").records() if r["kind"] == "started"}
     assert len(workers) == 1  # only the worker with the GPU resource ran trials

@@ -1,4 +1,4 @@
-"""docs/spec.md lists exactly the keys forebear.spec accepts, with the defaults of defaults.yaml."""
+"""docs/spec.md lists exactly the keys forebear.core.spec accepts, with the defaults of defaults.yaml."""
 
 from __future__ import annotations
 
@@ -9,7 +9,7 @@ from typing import Any
 import pytest
 import yaml
 
-from forebear import spec as spec_mod
+from forebear.core import spec as spec_mod
 
 ROOT = Path(__file__).resolve().parents[1]
 SPEC_MD = ROOT / "docs" / "spec.md"

@@ -16,9 +16,9 @@ from pathlib import Path
 
 import pytest
 
-from forebear import history as history_mod
-from forebear import spec as spec_mod
-from forebear._child import score_of_stdout
+from forebear.cluster.child import score_of_stdout
+from forebear.core import spec as spec_mod
+from forebear.records import history as history_mod
 
 ROOT = Path(__file__).resolve().parents[1]
 EXAMPLES = ROOT / "examples"
@@ -48,7 +48,7 @@ def test_example_has_spec_readme_and_script(name: str) -> None:
     for path in specs:
         s = spec_mod.load(path)
         assert s.budget.trials <= 20, f"{path}: an example should stay short"
-        assert s.journal.is_relative_to(folder / "runs"), f"{path}: the journal belongs in the example's runs/"
+        assert s.logbook.is_relative_to(folder / "runs"), f"{path}: the logbook belongs in the example's runs/"
         assert f"forebear run {path.name}" in run_sh.read_text() or path.name in readme
 
 
@@ -70,7 +70,7 @@ def test_command_objective_prints_a_score_forebear_reads() -> None:
 
 def test_csv_history_aligns_to_the_space_without_warnings() -> None:
     s = spec_mod.load(EXAMPLES / "script_csv_history" / "search.yaml")
-    hist = history_mod.load(s.history, s.space, s.objective.direction)
+    hist = history_mod.load(s.history, s.space, s.objective.sense)
     assert not hist.warnings, hist.warnings
     assert sorted(t.name for t in hist.tasks) == ["W1", "W2", "W3"]
     assert all(len(t.y) == 12 and t.X.shape == (12, s.space.dim) for t in hist.tasks)
@@ -90,11 +90,11 @@ def test_python_objectives_train_real_models() -> None:
 def _smaller(path: Path, tmp: Path, trials: int, **changes: object) -> spec_mod.Spec:
     s = spec_mod.load(path)
     budget = dataclasses.replace(s.budget, trials=trials, batch=min(s.budget.batch, 2), concurrency=2)
-    return dataclasses.replace(s, budget=budget, journal=tmp / "runs" / s.journal.name, **changes)
+    return dataclasses.replace(s, budget=budget, logbook=tmp / "runs" / s.logbook.name, **changes)
 
 
 def test_command_example_end_to_end(tmp_path: Path) -> None:
-    import forebear.controller as controller
+    import forebear.face.api as controller
 
     s = _smaller(EXAMPLES / "script_csv_history" / "search.yaml", tmp_path, trials=4)
     result = controller.run(s)
@@ -109,12 +109,12 @@ def test_command_example_end_to_end(tmp_path: Path) -> None:
 
 @pytest.mark.slow
 def test_churn_example_with_history_end_to_end(tmp_path: Path) -> None:
-    import forebear.controller as controller
+    import forebear.face.api as controller
 
     folder = EXAMPLES / "churn_history"
     for name in ("earlier-smb.yaml", "earlier-enterprise.yaml"):
         assert controller.run(_smaller(folder / name, tmp_path, trials=4)).closed == "budget"
-    hist = (spec_mod.HistorySource(journal=str(tmp_path / "runs" / "churn-*.jsonl")),)
+    hist = (spec_mod.HistorySource(logbook=str(tmp_path / "runs" / "churn-*.jsonl")),)
     result = controller.run(_smaller(folder / "consumer.yaml", tmp_path, trials=4, history=hist))
     assert len([t for t in result.trials if t.state == "scored"]) == 4
     models = {t.model for t in result.trials if t.source == "model"}

@@ -15,7 +15,7 @@ from typing import Any
 import pytest
 
 from forebear.bench import faults
-from forebear.journal import record
+from forebear.records.logbook import record
 
 from .conftest import LoopbackCluster
 
@@ -75,9 +75,9 @@ def test_worker_killed_before_the_attempt_started_uses_no_retry(tmp_path: Path, 
     import threading
     import time
 
-    from forebear.controller import Controller
-    from forebear.journal import Journal
-    from forebear.spec import load
+    from forebear.core.spec import load
+    from forebear.loop.controller import Controller
+    from forebear.records.logbook import Logbook
 
     cluster = loopback_factory(workers=1)
     (tmp_path / "slow_import_objective.py").write_text(SLOW_IMPORT)
@@ -90,14 +90,14 @@ def test_worker_killed_before_the_attempt_started_uses_no_retry(tmp_path: Path, 
         "space": {"x": {"float": [0.0, 1.0]}},
         "budget": {"trials": 1, "batch": 1, "concurrency": 1, "retries": 0},
         "cluster": {"address": cluster.address},
-        "journal": "runs/u.jsonl",
+        "logbook": "runs/u.jsonl",
     }))
     spec = load(spec_path)
     out: list[Any] = []
     thread = threading.Thread(target=lambda: out.append(Controller(spec).run()), daemon=True)
     thread.start()
     deadline = time.monotonic() + 120
-    while not (spec.journal.exists() and any(r["kind"] == "proposed" for r in Journal(spec.journal).records())):
+    while not (spec.logbook.exists() and any(r["kind"] == "proposed" for r in Logbook(spec.logbook).records())):
         assert time.monotonic() < deadline
         time.sleep(0.05)
     time.sleep(1.5)  # the task is on the worker, whose fork server is still importing the objective
@@ -105,9 +105,9 @@ def test_worker_killed_before_the_attempt_started_uses_no_retry(tmp_path: Path, 
     cluster.start_worker()
     thread.join(180)
     assert out and out[0].counts == {"queued": 0, "running": 0, "scored": 1, "failed": 0}, out
-    trail = [(r["kind"], r.get("attempt"), r.get("reason")) for r in Journal(spec.journal).records() if r["kind"] not in ("search", "proposed", "closed")]
+    trail = [(r["kind"], r.get("attempt"), r.get("reason")) for r in Logbook(spec.logbook).records() if r["kind"] not in ("search", "proposed", "closed")]
     assert trail == [("lost", 1, "worker"), ("started", 2, None), ("scored", 2, None)], trail
-    assert faults.check_invariants(Journal(spec.journal).records())["violations"] == []
+    assert faults.check_invariants(Logbook(spec.logbook).records())["violations"] == []
 
 
 @pytest.fixture(scope="module")
@@ -139,7 +139,7 @@ def test_full_disk(tmp_path: Path, cluster: LoopbackCluster) -> None:
 def test_failing_fsync_stops_the_controller(tmp_path: Path, cluster: LoopbackCluster) -> None:
     figures = faults.fsync_failure(cluster, tmp_path / "fs", trials=8, fail_after=2)
     assert figures["violations"] == [], figures
-    assert figures["message"].startswith("forebear: journal ") and "write failed: Input/output error" in figures["message"]
+    assert figures["message"].startswith("forebear: logbook ") and "write failed: Input/output error" in figures["message"]
 
 
 @pytest.mark.slow
@@ -150,9 +150,9 @@ def test_full_campaign(tmp_path: Path) -> None:
 
 
 def test_a_failed_started_write_leaves_the_attempt_process_usable(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
-    """A journal that cannot take the ``started`` record (full disk) must not leave the fork server mid-attempt."""
-    from forebear import runner
-    from forebear.journal import Journal, JournalError
+    """A logbook that cannot take the ``started`` record (full disk) must not leave the fork server mid-attempt."""
+    from forebear.cluster import runner
+    from forebear.records.logbook import Logbook, LogbookError
 
     logs = tmp_path / "runs" / "s.logs"
     logs.mkdir(parents=True)
@@ -160,18 +160,18 @@ def test_a_failed_started_write_leaves_the_attempt_process_usable(tmp_path: Path
 
     def task(trial: int) -> runner.AttemptTask:
         return runner.AttemptTask(search="s", trial=trial, attempt=1, config={"x": 0.5, "seconds": 1.0}, metric="loss",
-                                  call="forebear.bench.faults:sleeper", journal=str(tmp_path / "runs" / "s.jsonl"),
+                                  call="forebear.bench.faults:sleeper", logbook=str(tmp_path / "runs" / "s.jsonl"),
                                   logs=str(logs), token="tok", cwd=str(tmp_path))
 
-    real = Journal.append
+    real = Logbook.append
 
-    def full(self: Journal, rec: dict[str, Any]) -> None:
+    def full(self: Logbook, rec: dict[str, Any]) -> None:
         if rec["kind"] == "started" and rec["trial"] == 0:
-            raise JournalError(28, f"journal {self.path}: write failed: No space left on device")
+            raise LogbookError(28, f"logbook {self.path}: write failed: No space left on device")
         real(self, rec)
 
-    monkeypatch.setattr(Journal, "append", full)
-    with pytest.raises(JournalError):
+    monkeypatch.setattr(Logbook, "append", full)
+    with pytest.raises(LogbookError):
         runner.run_attempt(task(0))
     after = runner.run_attempt(task(1))  # the same fork server serves the next attempt
     assert after.outcome == "scored", after.error

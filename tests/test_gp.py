@@ -10,7 +10,7 @@ from sklearn.gaussian_process import GaussianProcessRegressor
 from sklearn.gaussian_process.kernels import RBF, ConstantKernel, Matern
 
 from forebear.bench.functions import branin
-from forebear.surrogate.gp import (
+from forebear.engine.surrogate.gp import (
     NOISE_FLOOR,
     Posterior,
     _ExactGP,

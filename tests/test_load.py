@@ -1,4 +1,4 @@
-"""Load: many trials of a no-op objective on the embedded cluster; overhead must not grow with the journal.
+"""Load: many trials of a no-op objective on the embedded cluster; overhead must not grow with the logbook.
 
 The default run is small (80 trials, 2 workers, windows of 25 trials) with a
 loose bound, because CI shares two cores with everything else; the full

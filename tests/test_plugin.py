@@ -11,7 +11,7 @@ from typing import Any
 
 import yaml
 
-from forebear.journal import Journal
+from forebear.records.logbook import Logbook
 
 from .conftest import LoopbackCluster, child_env
 
@@ -24,7 +24,7 @@ def spec_dict(tmp: Path, address: str | None, trials: int = 4, **extra: Any) -> 
         "objective": {"call": "objectives:quadratic", "minimize": "loss"},
         "space": {"x": {"float": [0.0, 1.0]}, "y": {"float": [-1.0, 1.0]}},
         "budget": {"trials": trials, "batch": 2, "concurrency": 2},
-        "journal": str(tmp / "runs" / "hosted.jsonl"),
+        "logbook": str(tmp / "runs" / "hosted.jsonl"),
         **extra,
     }
     if address:
@@ -32,14 +32,14 @@ def spec_dict(tmp: Path, address: str | None, trials: int = 4, **extra: Any) -> 
     return spec
 
 
-def wait_closed(journal: Path, cluster: LoopbackCluster, saw_status: list[dict[str, Any]] | None = None) -> dict[str, Any]:
+def wait_closed(logbook: Path, cluster: LoopbackCluster, saw_status: list[dict[str, Any]] | None = None) -> dict[str, Any]:
     deadline = time.monotonic() + DEADLINE
     while True:
-        table = Journal(journal).fold() if journal.exists() else None
+        table = Logbook(logbook).fold() if logbook.exists() else None
         if table is not None and table.closed is not None:
             return table.closed
         if table is not None and table.header is not None and saw_status is not None and not saw_status:
-            out = subprocess.run([sys.executable, "-m", "forebear", "status", str(journal), "--json"],
+            out = subprocess.run([sys.executable, "-m", "forebear", "status", str(logbook), "--json"],
                                  env=child_env(), capture_output=True, text=True, timeout=60)
             assert out.returncode == 0, out.stderr
             saw_status.append(json.loads(out.stdout))
@@ -59,7 +59,7 @@ def test_detached_search_completes_after_the_client_exits(tmp_path: Path, loopba
     closed = wait_closed(tmp_path / "runs" / "hosted.jsonl", loopback, status)
     assert closed["reason"] == "budget"
     assert status and status[0]["search"] == "hosted"
-    table = Journal(tmp_path / "runs" / "hosted.jsonl").fold()
+    table = Logbook(tmp_path / "runs" / "hosted.jsonl").fold()
     assert table.counts()["scored"] == 6
     best = subprocess.run([sys.executable, "-m", "forebear", "best", str(tmp_path / "runs" / "hosted.jsonl"), "--json"],
                           env=child_env(), capture_output=True, text=True, timeout=60)
@@ -69,16 +69,16 @@ def test_detached_search_completes_after_the_client_exits(tmp_path: Path, loopba
 def test_preload_runs_the_search_at_scheduler_start(tmp_path: Path, loopback_factory: Any) -> None:
     spec_path = tmp_path / "search.yaml"
     spec_path.write_text(yaml.safe_dump(spec_dict(tmp_path, None, trials=3)))
-    cluster = loopback_factory(scheduler_args=["--preload", "forebear.plugin", "--forebear-spec", str(spec_path)])
+    cluster = loopback_factory(scheduler_args=["--preload", "forebear.cluster.plugin", "--forebear-spec", str(spec_path)])
     closed = wait_closed(tmp_path / "runs" / "hosted.jsonl", cluster)
     assert closed["reason"] == "budget"
-    assert Journal(tmp_path / "runs" / "hosted.jsonl").fold().counts()["scored"] == 3
+    assert Logbook(tmp_path / "runs" / "hosted.jsonl").fold().counts()["scored"] == 3
 
 
 def test_preload_failure_is_loud_and_recorded(tmp_path: Path, loopback_factory: Any) -> None:
     bad = tmp_path / "bad.yaml"
     bad.write_text("objective: {call: nope}\n")
-    cluster = loopback_factory(workers=1, scheduler_args=["--preload", "forebear.plugin", "--forebear-spec", str(bad)])
+    cluster = loopback_factory(workers=1, scheduler_args=["--preload", "forebear.cluster.plugin", "--forebear-spec", str(bad)])
     deadline = time.monotonic() + 30
     while "preload could not load the spec" not in cluster.log("scheduler"):
         assert time.monotonic() < deadline, cluster.log("scheduler")
@@ -88,7 +88,7 @@ def test_preload_failure_is_loud_and_recorded(tmp_path: Path, loopback_factory: 
     spec = spec_dict(tmp_path, None, trials=2, resources={"TPU": 4})
     spec_path = tmp_path / "search.yaml"
     spec_path.write_text(yaml.safe_dump(spec))
-    cluster2 = loopback_factory(workers=1, scheduler_args=["--preload", "forebear.plugin", "--forebear-spec", str(spec_path)])
+    cluster2 = loopback_factory(workers=1, scheduler_args=["--preload", "forebear.cluster.plugin", "--forebear-spec", str(spec_path)])
     closed = wait_closed(tmp_path / "runs" / "hosted.jsonl", cluster2)
     assert closed["reason"] == "error" and "TPU" in closed["error"]
     assert "forebear: search hosted failed" in cluster2.log("scheduler")

@@ -10,8 +10,8 @@ import torch
 
 from forebear.bench.functions import BRANIN_MIN, branin
 from forebear.bench.proposal import SPACE2, SPACE3, _vec, make_history
-from forebear.proposer import Observation, Proposer
-from forebear.space import Space
+from forebear.core.space import Space
+from forebear.engine.proposer import Observation, Proposer
 
 DK = {"max_steps": 150, "eval_every": 50, "patience": 3, "tasks_per_step": 4}
 MIXED = Space.from_dict({

@@ -1,4 +1,4 @@
-"""forebear.report: report.html and its plots, from finished and running journals."""
+"""forebear.face.report: report.html and its plots, from finished and running logbooks."""
 
 from __future__ import annotations
 
@@ -12,30 +12,30 @@ from pathlib import Path
 import pytest
 from click.testing import CliRunner
 
-from forebear.cli import main as cli_main
-from forebear.journal import Journal, record
-from forebear.report import PLOTS, TOP_N, write_report
-from forebear.space import Param, Space
+from forebear.core.space import Param, Space
+from forebear.face.cli import main as cli_main
+from forebear.face.report import PLOTS, TOP_N, write_report
+from forebear.records.logbook import Logbook, record
 
 SPACE = Space((
     Param("learning_rate", "float", 1e-4, 0.3, log=True),
     Param("depth", "int", 2, 12),
-    Param("booster", "categorical", choices=("tree", "linear")),
+    Param("booster", "categorical", categories=("tree", "linear")),
 ))
 PNG_MAGIC = b"\x89PNG\r\n\x1a\n"
 
 
-def _header(direction: str = "minimize") -> dict:
+def _header(sense: str = "minimize") -> dict:
     return record("search", name="store-3-demand", spec_hash="abc123", space=SPACE.to_dict(),
-                  objective={"call": "demo:evaluate", direction: "val_loss"}, seed=3)
+                  objective={"call": "demo:evaluate", sense: "val_loss"}, seed=3)
 
 
-def _journal(path: Path, n: int = 16, *, direction: str = "minimize", close: bool = True, running: int = 0) -> Journal:
-    """A journal of ``n`` trials on three workers, with a failed trial, a lost attempt and
+def _logbook(path: Path, n: int = 16, *, sense: str = "minimize", close: bool = True, running: int = 0) -> Logbook:
+    """A logbook of ``n`` trials on three workers, with a failed trial, a lost attempt and
     ``running`` attempts still in flight; timestamps are spread so idle gaps exist."""
-    j = Journal(path)
+    j = Logbook(path)
     t0 = 1_700_000_000.0
-    recs = [{**_header(direction), "at": t0}]
+    recs = [{**_header(sense), "at": t0}]
     configs = SPACE.latin_hypercube(n + running, seed=1)
     clock = {w: t0 + 0.5 * i for i, w in enumerate(("tcp://127.0.0.1:4101", "tcp://127.0.0.1:4102", "tcp://127.0.0.1:4103"))}
     for i, cfg in enumerate(configs):
@@ -63,9 +63,9 @@ def _journal(path: Path, n: int = 16, *, direction: str = "minimize", close: boo
 
 
 def test_report_writes_page_and_plots(tmp_path: Path) -> None:
-    j = _journal(tmp_path / "runs" / "s.jsonl", n=16)
+    j = _logbook(tmp_path / "runs" / "s.jsonl", n=16)
     table = j.fold()
-    page = write_report(table, tmp_path / "rep", journal=j.path)
+    page = write_report(table, tmp_path / "rep", logbook=j.path)
     assert page == tmp_path / "rep" / "report.html"
     for png in PLOTS:
         data = (tmp_path / "rep" / png).read_bytes()
@@ -86,7 +86,7 @@ def test_report_writes_page_and_plots(tmp_path: Path) -> None:
 
 
 def test_report_maximize_ranks_highest_first(tmp_path: Path) -> None:
-    j = _journal(tmp_path / "m.jsonl", n=12, direction="maximize")
+    j = _logbook(tmp_path / "m.jsonl", n=12, sense="maximize")
     text = write_report(j.fold(), tmp_path / "rep").read_text()
     scores = [float(s) for s in re.findall(r"<tr><td>\d+</td><td>\d+</td><td>([^<]+)</td>", text)]
     assert scores == sorted(scores, reverse=True) and len(scores) == TOP_N
@@ -94,7 +94,7 @@ def test_report_maximize_ranks_highest_first(tmp_path: Path) -> None:
 
 def test_report_on_running_search(tmp_path: Path) -> None:
     """Attempts in flight and no closed record: the page says so and still draws every plot."""
-    j = _journal(tmp_path / "r.jsonl", n=6, close=False, running=3)
+    j = _logbook(tmp_path / "r.jsonl", n=6, close=False, running=3)
     table = j.fold()
     assert table.counts()["running"] == 3
     text = write_report(table, tmp_path / "rep").read_text()
@@ -105,7 +105,7 @@ def test_report_on_running_search(tmp_path: Path) -> None:
 
 
 def test_report_with_only_a_header(tmp_path: Path) -> None:
-    j = Journal(tmp_path / "h.jsonl")
+    j = Logbook(tmp_path / "h.jsonl")
     j.append(_header())
     text = write_report(j.fold(), tmp_path / "rep").read_text()
     assert "No trial has scored yet." in text
@@ -114,8 +114,8 @@ def test_report_with_only_a_header(tmp_path: Path) -> None:
 
 
 def test_report_while_a_writer_appends(tmp_path: Path) -> None:
-    """The report is drawn repeatedly while another thread keeps appending to the journal."""
-    j = Journal(tmp_path / "live.jsonl")
+    """The report is drawn repeatedly while another thread keeps appending to the logbook."""
+    j = Logbook(tmp_path / "live.jsonl")
     j.append(_header())
     stop = threading.Event()
     configs = SPACE.sample(400, 5)
@@ -134,7 +134,7 @@ def test_report_while_a_writer_appends(tmp_path: Path) -> None:
         seen = []
         for _ in range(3):
             table = j.fold()
-            write_report(table, tmp_path / "rep", journal=j.path)
+            write_report(table, tmp_path / "rep", logbook=j.path)
             seen.append(len(table))
             assert (tmp_path / "rep" / "report.html").read_text().endswith("</html>\n")
             time.sleep(0.05)
@@ -146,7 +146,7 @@ def test_report_while_a_writer_appends(tmp_path: Path) -> None:
 
 
 def test_cli_report(tmp_path: Path) -> None:
-    j = _journal(tmp_path / "c.jsonl", n=8)
+    j = _logbook(tmp_path / "c.jsonl", n=8)
     res = CliRunner().invoke(cli_main, ["report", str(j.path), "-o", str(tmp_path / "out")])
     assert res.exit_code == 0, res.output
     assert (tmp_path / "out" / "report.html").exists()
@@ -159,8 +159,8 @@ def _chromium() -> str | None:
 
 @pytest.mark.skipif(_chromium() is None, reason="headless Chromium is not installed (Debian package chromium; .ci/run installs it)")
 def test_report_renders_in_headless_chromium(tmp_path: Path) -> None:
-    j = _journal(tmp_path / "b.jsonl", n=20)
-    page = write_report(j.fold(), tmp_path / "rep", journal=j.path)
+    j = _logbook(tmp_path / "b.jsonl", n=20)
+    page = write_report(j.fold(), tmp_path / "rep", logbook=j.path)
     dom = _dump_dom(page, tmp_path / "profile")
     m = re.search(r'<body[^>]*data-images="([^"]+)"', dom)
     assert m, "the page's load handler did not run"
@@ -171,7 +171,7 @@ def test_report_renders_in_headless_chromium(tmp_path: Path) -> None:
 @pytest.mark.skipif(_chromium() is None, reason="headless Chromium is not installed (Debian package chromium; .ci/run installs it)")
 def test_chromium_check_detects_a_missing_plot(tmp_path: Path) -> None:
     """The marker really depends on the images: delete one PNG and it reports it missing."""
-    j = _journal(tmp_path / "b.jsonl", n=6)
+    j = _logbook(tmp_path / "b.jsonl", n=6)
     page = write_report(j.fold(), tmp_path / "rep")
     (tmp_path / "rep" / PLOTS[1]).unlink()
     dom = _dump_dom(page, tmp_path / "profile")

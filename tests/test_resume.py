@@ -14,9 +14,9 @@ from typing import Any
 import yaml
 
 import forebear
-from forebear.controller import Controller
-from forebear.journal import Journal, fold
-from forebear.spec import load
+from forebear.core.spec import load
+from forebear.loop.controller import Controller
+from forebear.records.logbook import Logbook, fold
 
 from .conftest import LoopbackCluster, child_env, reap
 
@@ -30,7 +30,7 @@ def write_spec(tmp: Path, cluster: LoopbackCluster, trials: int = 8) -> Path:
         "space": {"x": {"float": [0.0, 1.0]}, "y": {"float": [-1.0, 1.0]}},
         "budget": {"trials": trials, "batch": 2, "concurrency": 2, "retries": 1},
         "cluster": {"address": cluster.address},
-        "journal": "runs/resume.jsonl",
+        "logbook": "runs/resume.jsonl",
         "seed": 11,
     }
     path = tmp / "search.yaml"
@@ -40,7 +40,7 @@ def write_spec(tmp: Path, cluster: LoopbackCluster, trials: int = 8) -> Path:
 
 def test_controller_killed_mid_search_then_resumed(tmp_path: Path, shared_loopback: LoopbackCluster) -> None:
     spec_path = write_spec(tmp_path, shared_loopback)
-    journal = tmp_path / "runs" / "resume.jsonl"
+    logbook = tmp_path / "runs" / "resume.jsonl"
     proc = subprocess.Popen([sys.executable, "-m", "forebear", "run", str(spec_path), "--quiet"],
                             env=child_env(), start_new_session=True, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
     try:
@@ -48,7 +48,7 @@ def test_controller_killed_mid_search_then_resumed(tmp_path: Path, shared_loopba
         while True:
             assert proc.poll() is None, proc.stderr.read().decode() if proc.stderr else ""
             assert time.monotonic() < deadline, "the controller made no progress"
-            table = Journal(journal).fold() if journal.exists() else None
+            table = Logbook(logbook).fold() if logbook.exists() else None
             if table is not None and table.finished >= 2 and table.counts()["running"] >= 1:
                 break
             time.sleep(0.05)
@@ -56,13 +56,13 @@ def test_controller_killed_mid_search_then_resumed(tmp_path: Path, shared_loopba
         proc.wait(timeout=10)
     finally:
         reap(proc)
-    before = Journal(journal).fold()
+    before = Logbook(logbook).fold()
     assert before.closed is None and before.finished < 8
     running_before = {t.trial: t.last_attempt for t in before.by_state("running")}
 
     result = Controller(load(spec_path)).run()
     assert result.closed == "budget"
-    records = Journal(journal).records()
+    records = Logbook(logbook).records()
     table = fold(records)
     assert len(table) == 8 and table.finished == 8
     terminal = Counter(r["trial"] for r in records if r["kind"] in ("scored", "failed"))
@@ -73,4 +73,4 @@ def test_controller_killed_mid_search_then_resumed(tmp_path: Path, shared_loopba
         scored_meanwhile = any(r["kind"] == "scored" and r["trial"] == trial and r["attempt"] == attempt for r in records)
         assert scored_meanwhile or (trial, attempt) in lost
     assert all(r["reason"] == "restart" for r in records if r["kind"] == "lost")
-    assert forebear.load(journal).best().trial == result.best.trial
+    assert forebear.load(logbook).best().trial == result.best.trial

@@ -10,10 +10,10 @@ from pathlib import Path
 
 import pytest
 
-from forebear import runner
-from forebear._child import BadScore, score_of, score_of_stdout
-from forebear.journal import Journal, fold
-from forebear.runner import AttemptTask, run_attempt
+from forebear.cluster import runner
+from forebear.cluster.child import BadScore, score_of, score_of_stdout
+from forebear.cluster.runner import AttemptTask, run_attempt
+from forebear.records.logbook import Logbook, fold
 
 
 def task(call: str | None = None, **kw: object) -> AttemptTask:
@@ -105,14 +105,14 @@ def test_command_config_env() -> None:
     assert r.outcome == "scored" and r.records[-1]["score"] == pytest.approx(0.1)
 
 
-def test_writes_records_and_private_logs_when_the_journal_is_reachable(tmp_path: Path) -> None:
-    journal = tmp_path / "runs" / "s.jsonl"
+def test_writes_records_and_private_logs_when_the_logbook_is_reachable(tmp_path: Path) -> None:
+    logbook = tmp_path / "runs" / "s.jsonl"
     logs = tmp_path / "runs" / "s.logs"
     logs.mkdir(parents=True, mode=0o700)
     (logs / runner.PROBE_NAME).write_text("token-1")
-    j = Journal(journal)
+    j = Logbook(logbook)
     j.append({"v": 1, "at": 0, "kind": "proposed", "trial": 3, "round": 0, "config": {"x": 0.1}})
-    r = run_attempt(task("objectives:crash", journal=str(journal), logs=str(logs), token="token-1"))
+    r = run_attempt(task("objectives:crash", logbook=str(logbook), logs=str(logs), token="token-1"))
     assert r.written
     kinds = [rec["kind"] for rec in j.records()]
     assert kinds == ["proposed", "started", "failed"]
@@ -127,7 +127,7 @@ def test_returns_records_when_the_token_does_not_match(tmp_path: Path) -> None:
     logs = tmp_path / "logs"
     logs.mkdir()
     (logs / runner.PROBE_NAME).write_text("another controller")
-    r = run_attempt(task("objectives:quadratic", journal=str(tmp_path / "j.jsonl"), logs=str(logs), token="mine"))
+    r = run_attempt(task("objectives:quadratic", logbook=str(tmp_path / "j.jsonl"), logs=str(logs), token="mine"))
     assert not r.written and [x["kind"] for x in r.records] == ["started", "scored"]
     assert not (tmp_path / "j.jsonl").exists()
 

@@ -22,11 +22,11 @@ import yaml
 from click.testing import CliRunner
 
 import forebear
-from forebear.cli import main as cli_main
-from forebear.controller import Controller
-from forebear.dispatch import insecure_warning
-from forebear.journal import Journal, record
-from forebear.spec import load
+from forebear.cluster.dispatch import insecure_warning
+from forebear.core.spec import load
+from forebear.face.cli import main as cli_main
+from forebear.loop.controller import Controller
+from forebear.records.logbook import Logbook, record
 
 from .conftest import LoopbackCluster
 
@@ -100,7 +100,7 @@ def _spec(tmp: Path, cluster: dict[str, Any], **extra: Any) -> dict[str, Any]:
         "space": {"x": {"float": [0.2, 0.6]}, "y": {"float": [-1.0, 1.0]}},
         "budget": {"trials": 4, "batch": 2, "concurrency": 2},
         "cluster": cluster,
-        "journal": str(tmp / "runs" / "sec.jsonl"),
+        "logbook": str(tmp / "runs" / "sec.jsonl"),
     }
     spec.update(extra)
     return spec
@@ -120,7 +120,7 @@ def test_embedded_cluster_listens_on_loopback_only_while_a_search_runs(tmp_path:
     thread = threading.Thread(target=drive, daemon=True)
     thread.start()
     deadline = time.monotonic() + DEADLINE
-    while not (spec.journal.exists() and any(r["kind"] == "started" for r in Journal(spec.journal).records())):
+    while not (spec.logbook.exists() and any(r["kind"] == "started" for r in Logbook(spec.logbook).records())):
         assert time.monotonic() < deadline and not errors, errors or "no attempt started"
         time.sleep(0.1)
     me = psutil.Process()
@@ -266,7 +266,7 @@ def test_command_values_arrive_as_one_argv_item_and_files_are_private(tmp_path: 
         "space": {"arg": {"categories": HOSTILE}},
         "budget": {"trials": len(HOSTILE), "batch": len(HOSTILE), "concurrency": 2},
         "cluster": {"address": shared_loopback.address},
-        "journal": "runs/argv.jsonl",
+        "logbook": "runs/argv.jsonl",
     }))
     result = forebear.run(spec_path)
     assert result.counts["scored"] == len(HOSTILE), [t.error for t in result.trials]
@@ -299,17 +299,17 @@ class _Bomb:
         return (os.mkdir, (str(self.marker),))
 
 
-def test_pickle_payloads_in_journal_and_history_are_data(tmp_path: Path) -> None:
+def test_pickle_payloads_in_logbook_and_history_are_data(tmp_path: Path) -> None:
     marker = tmp_path / "UNPICKLED"
     raw = pickle.dumps(_Bomb(marker), protocol=0)
     text = raw.decode("latin-1")
-    journal = tmp_path / "runs" / "p.jsonl"
-    j = Journal(journal)
+    logbook = tmp_path / "runs" / "p.jsonl"
+    j = Logbook(logbook)
     j.append(record("search", name="p", spec_hash="h", space={"x": {"float": [0, 1]}, "tag": {"categories": [text, "plain"]}},
                     objective={"minimize": "loss"}, seed=0))
     j.append(record("proposed", trial=0, round=0, config={"x": 0.5, "tag": text}, source="initial", model=None, acquisition=None))
     j.append(record("scored", trial=0, attempt=1, score=0.25, metrics={"blob": text}, seconds=1.0))
-    with open(journal, "ab") as fh:
+    with open(logbook, "ab") as fh:
         fh.write(pickle.dumps(_Bomb(marker)) + b"\n")  # a raw binary pickle as a line of its own
     j.append(record("proposed", trial=1, round=0, config={"x": 0.1, "tag": "plain"}, source="initial", model=None, acquisition=None))
     past = tmp_path / "past.csv"
@@ -317,23 +317,23 @@ def test_pickle_payloads_in_journal_and_history_are_data(tmp_path: Path) -> None
         w = csv.writer(fh)
         w.writerow(["task", "x", "tag", "loss"])
         w.writerows([["t1", i / 10, text, i / 10] for i in range(3)])
-    earlier = Journal(tmp_path / "earlier" / "e.jsonl")  # the same payload in a clean journal used as history
+    earlier = Logbook(tmp_path / "earlier" / "e.jsonl")  # the same payload in a clean logbook used as history
     earlier.append_many([r for r in j.records() if r["kind"] != "proposed" or r["trial"] == 0])
 
-    table = forebear.load(journal)
+    table = forebear.load(logbook)
     assert table.skipped == 1 and table.trials[0].config["tag"] == text and table.trials[0].metrics["blob"] == text
     runner = CliRunner()
-    for args in (["status", str(journal)], ["best", str(journal), "--json"], ["export", str(journal), "--csv", str(tmp_path / "o.csv")]):
+    for args in (["status", str(logbook)], ["best", str(logbook), "--json"], ["export", str(logbook), "--csv", str(tmp_path / "o.csv")]):
         res = runner.invoke(cli_main, args)
         assert res.exit_code == 0, res.stderr
-    assert json.loads(runner.invoke(cli_main, ["best", str(journal), "--json"]).stdout)["config"]["tag"] == text
+    assert json.loads(runner.invoke(cli_main, ["best", str(logbook), "--json"]).stdout)["config"]["tag"] == text
 
-    from forebear.history import load as load_history
-    from forebear.spec import HistorySource
+    from forebear.core.spec import HistorySource
+    from forebear.records.history import load as load_history
 
-    space = load({"objective": {"call": "m:f", "minimize": "loss"}, "journal": str(tmp_path / "new.jsonl"),
+    space = load({"objective": {"call": "m:f", "minimize": "loss"}, "logbook": str(tmp_path / "new.jsonl"),
                   "space": {"x": {"float": [0.0, 1.0]}, "tag": {"categories": [text, "plain"]}}}).space
-    sources = [HistorySource(journal=str(tmp_path / "earlier" / "*.jsonl")), HistorySource(csv=str(past), task="task", score="loss")]
+    sources = [HistorySource(logbook=str(tmp_path / "earlier" / "*.jsonl")), HistorySource(csv=str(past), task="task", score="loss")]
     hist = load_history(sources, space, "minimize")
     assert len(hist) == 2 and hist.n_points == 4, hist.warnings
     assert all(c["tag"] == text for t in hist.tasks for c in t.configs)

@@ -9,7 +9,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from forebear.space import Param, Space
+from forebear.core.space import Param, Space
 
 SPACE = Space(
     (
@@ -17,8 +17,8 @@ SPACE = Space(
         Param("subsample", "float", 0.5, 1.0),
         Param("depth", "int", 2, 12),
         Param("leaves", "int", 4, 1024, log=True),
-        Param("booster", "categorical", choices=("tree", "linear", "dart")),
-        Param("flag", "categorical", choices=(True, False, 1)),
+        Param("booster", "categorical", categories=("tree", "linear", "dart")),
+        Param("flag", "categorical", categories=(True, False, 1)),
     )
 )
 
@@ -28,7 +28,7 @@ def configs(draw: st.DrawFn, space: Space = SPACE) -> dict:
     out = {}
     for p in space.params:
         if p.kind == "categorical":
-            out[p.name] = draw(st.sampled_from(p.choices))
+            out[p.name] = draw(st.sampled_from(p.categories))
         elif p.kind == "int":
             out[p.name] = draw(st.integers(int(p.low), int(p.high)))
         else:
@@ -93,7 +93,7 @@ def test_latin_hypercube_seeded() -> None:
 
 def test_latin_hypercube_spreads_categories() -> None:
     pts = SPACE.latin_hypercube(30, seed=0)
-    counts = {c: sum(p["booster"] == c for p in pts) for c in SPACE["booster"].choices}
+    counts = {c: sum(p["booster"] == c for p in pts) for c in SPACE["booster"].categories}
     assert set(counts.values()) == {10}
 
 
@@ -143,8 +143,8 @@ def test_continuous_mask() -> None:
         ({"kind": "float", "low": 1.0, "high": 0.0}, "must be <"),
         ({"kind": "float", "low": 0.0, "high": 1.0, "log": True}, "must be > 0 when log"),
         ({"kind": "int", "low": 0.5, "high": 3}, "whole numbers"),
-        ({"kind": "categorical", "choices": ()}, "at least one category"),
-        ({"kind": "categorical", "choices": ("a", "a")}, "distinct"),
+        ({"kind": "categorical", "categories": ()}, "at least one category"),
+        ({"kind": "categorical", "categories": ("a", "a")}, "distinct"),
         ({"kind": "float", "low": 0.0, "high": 1.0, "default": 2.0}, "outside"),
     ],
 )

@@ -1,4 +1,4 @@
-"""Spec loading: the valid example of DESIGN.md, the bad-spec corpus, number forms."""
+"""Spec loading: the full example spec of docs/spec.md, the bad-spec corpus, number forms."""
 
 from __future__ import annotations
 
@@ -7,8 +7,8 @@ from pathlib import Path
 
 import pytest
 
-from forebear import spec as spec_mod
-from forebear.spec import SpecError, load, parse_duration
+from forebear.core import spec as spec_mod
+from forebear.core.spec import SpecError, load, parse_duration
 
 DATA = Path(__file__).parent / "data"
 BAD = sorted((DATA / "bad_specs").glob("*.yaml"))
@@ -37,7 +37,7 @@ history:
 cluster:
   local: {workers: 4}
 resources: {GPU: 1}
-journal: runs/store-17.jsonl
+logbook: runs/store-17.jsonl
 lock: strict
 seed: 7
 """
@@ -49,19 +49,19 @@ def write(tmp_path: Path, text: str, name: str = "search.yaml") -> Path:
     return p
 
 
-def test_design_example_loads(tmp_path: Path) -> None:
+def test_full_example_spec_loads(tmp_path: Path) -> None:
     s = load(write(tmp_path, GOOD))
     assert s.name == "store-17-demand"
     assert s.objective.call == "mypkg.train:evaluate"
-    assert (s.objective.metric, s.objective.direction, s.objective.sign) == ("val_loss", "minimize", 1.0)
+    assert (s.objective.metric, s.objective.sense, s.objective.sign) == ("val_loss", "minimize", 1.0)
     assert s.space.names == ["learning_rate", "depth", "subsample", "booster"]
     assert s.space["learning_rate"].log and s.space["learning_rate"].low == pytest.approx(1e-4)
     assert s.space["subsample"].default == 1.0
     assert s.budget.trial_timeout == 1200 and s.budget.wall_time == 6 * 3600
     assert s.budget.trials == 60 and s.budget.batch == 8 and s.budget.concurrency == 4
     # Relative paths resolve against the spec's folder, not the working directory.
-    assert s.journal == tmp_path.resolve() / "runs" / "store-17.jsonl"
-    assert s.history[0].journal == str(tmp_path.resolve() / "runs" / "store-*.jsonl")
+    assert s.logbook == tmp_path.resolve() / "runs" / "store-17.jsonl"
+    assert s.history[0].logbook == str(tmp_path.resolve() / "runs" / "store-*.jsonl")
     assert s.history[1].csv == str(tmp_path.resolve() / "past" / "results.csv")
     assert (s.history[1].task, s.history[1].score) == ("store_id", "val_loss")
     assert s.cluster.kind == "local" and s.cluster.options["workers"] == 4
@@ -79,7 +79,7 @@ def test_defaults_fill_omitted_keys(tmp_path: Path) -> None:
     s = load(write(tmp_path, "objective: {call: m:f, maximize: acc}\nspace: {x: {float: [0, 1]}}\n", "tiny.yaml"))
     d = spec_mod.DEFAULTS["budget"]
     assert s.budget.trials == d["trials"] and s.budget.retries == d["retries"]
-    assert s.name == "tiny" and s.journal.name == "tiny.jsonl"
+    assert s.name == "tiny" and s.logbook.name == "tiny.jsonl"
     assert s.cluster.kind == "local" and s.objective.sign == -1.0
 
 
@@ -124,7 +124,7 @@ def test_scientific_notation_is_a_number(tmp_path: Path, text: str, value: float
 def test_quoted_scientific_stays_a_string(tmp_path: Path) -> None:
     body = 'objective: {call: m:f, minimize: l}\nspace:\n  x: {categories: ["1e-4", b]}\n'
     s = load(write(tmp_path, body))
-    assert s.space["x"].choices == ("1e-4", "b")
+    assert s.space["x"].categories == ("1e-4", "b")
 
 
 def test_concurrency_clamped_with_note(tmp_path: Path) -> None:
@@ -143,7 +143,7 @@ def test_command_objective(tmp_path: Path) -> None:
 
 def test_dict_source(tmp_path: Path) -> None:
     s = load({"objective": {"call": "m:f", "minimize": "l"}, "space": {"x": {"int": [1, 4]}}}, base_dir=tmp_path)
-    assert s.journal.parent == tmp_path / "runs"
+    assert s.logbook.parent == tmp_path / "runs"
     assert s.base_dir == tmp_path  # objectives run from here, as from a spec file's folder
     with pytest.raises(SpecError, match=r"space.x.int: inverted range") as info:
         load({"objective": {"call": "m:f", "minimize": "l"}, "space": {"x": {"int": [4, 1]}}})

@@ -16,7 +16,7 @@ from distributed import Client  # noqa: E402 - after the skip above
 from distributed.security import Security  # noqa: E402
 
 import forebear  # noqa: E402
-from forebear.dispatch import ClusterError  # noqa: E402
+from forebear.cluster.dispatch import ClusterError  # noqa: E402
 
 
 def write_certs(sec: Security, folder: Path) -> dict[str, str]:
@@ -64,7 +64,7 @@ def spec_for(tmp: Path, address: str, tls: dict[str, str] | None) -> dict[str, A
         "space": {"x": {"float": [0.0, 1.0]}},
         "budget": {"trials": 3, "batch": 2, "concurrency": 2},
         "cluster": {"address": address},
-        "journal": str(tmp / "runs" / "tls.jsonl"),
+        "logbook": str(tmp / "runs" / "tls.jsonl"),
     }
     if tls:
         spec["cluster"]["tls"] = tls

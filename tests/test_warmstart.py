@@ -7,9 +7,9 @@ import itertools
 import numpy as np
 import pytest
 
-from forebear.history import Task
-from forebear.space import Space
-from forebear.warmstart import evolve, initial_design, set_score
+from forebear.core.space import Space
+from forebear.engine.warmstart import evolve, initial_design, set_score
+from forebear.records.history import Task
 
 SPACE = Space.from_dict({"a": {"float": [0.0, 1.0]}, "b": {"int": [1, 9]}, "c": {"categories": ["x", "y"]}})
 

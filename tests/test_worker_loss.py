@@ -10,9 +10,10 @@ from typing import Any
 import psutil
 import pytest
 
-from forebear.controller import Controller, SearchResult
-from forebear.journal import Journal
-from forebear.spec import load
+from forebear.core.spec import load
+from forebear.loop.book import SearchResult
+from forebear.loop.controller import Controller
+from forebear.records.logbook import Logbook
 
 from .conftest import LoopbackCluster
 
@@ -28,13 +29,13 @@ def spec_for(tmp: Path, cluster: LoopbackCluster, call: str, **budget: Any) -> d
         "space": {"x": {"float": [0.0, 1.0]}, "seconds": {"float": [2.5, 3.0]}},
         "budget": b,
         "cluster": {"address": cluster.address},
-        "journal": str(tmp / "runs" / "loss.jsonl"),
+        "logbook": str(tmp / "runs" / "loss.jsonl"),
     }
 
 
-def attempts(journal: Path, trial: int) -> list[tuple[str, Any]]:
+def attempts(logbook: Path, trial: int) -> list[tuple[str, Any]]:
     out = []
-    for r in Journal(journal).records():
+    for r in Logbook(logbook).records():
         if r.get("trial") == trial and r["kind"] != "proposed":
             out.append((r["kind"], r.get("reason") or r.get("attempt")))
     return out
@@ -69,14 +70,14 @@ def test_killed_worker_mid_attempt_is_retried_elsewhere(tmp_path: Path, loopback
     assert not thread.is_alive(), "the controller did not finish"
     assert not errors, errors
     assert result[0].counts["scored"] == 1
-    trail = attempts(spec.journal, 0)
+    trail = attempts(spec.logbook, 0)
     assert trail == [("started", 1), ("lost", "worker"), ("started", 2), ("scored", 2)]
     # The attempt's own process died with its worker (the fork server kills its group on EOF).
     deadline = time.monotonic() + 20
     while child.is_running() and child.status() != psutil.STATUS_ZOMBIE:
         assert time.monotonic() < deadline, "the killed worker's attempt process survived"
         time.sleep(0.1)
-    started = [r for r in Journal(spec.journal).records() if r["kind"] == "started"]
+    started = [r for r in Logbook(spec.logbook).records() if r["kind"] == "started"]
     assert started[0]["worker"] != started[1]["worker"]
 
 
@@ -86,7 +87,7 @@ def test_hang_past_timeout_is_lost_then_retried_and_worker_keeps_serving(tmp_pat
     result = Controller(load(spec)).run()
     assert result.counts["scored"] == 2
     for trial in (0, 1):
-        assert attempts(Path(spec["journal"]), trial) == [("started", 1), ("lost", "timeout"), ("started", 2), ("scored", 2)]
+        assert attempts(Path(spec["logbook"]), trial) == [("started", 1), ("lost", "timeout"), ("started", 2), ("scored", 2)]
     assert time.monotonic() - t0 < 60
     assert shared_loopback.worker_count() == 2
 
@@ -95,7 +96,7 @@ def test_hang_without_retries_left_fails(tmp_path: Path, shared_loopback: Loopba
     spec = spec_for(tmp_path, shared_loopback, "objectives:hang", trials=1, trial_timeout="1s", retries=0)
     result = Controller(load(spec)).run()
     assert result.counts["failed"] == 1
-    assert attempts(Path(spec["journal"]), 0) == [("started", 1), ("lost", "timeout"), ("failed", 1)]
+    assert attempts(Path(spec["logbook"]), 0) == [("started", 1), ("lost", "timeout"), ("failed", 1)]
     assert "timed out after 1 s" in (result.trials[0].error or "")
 
 

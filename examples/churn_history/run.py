@@ -15,7 +15,7 @@ if __name__ == "__main__":  # the embedded cluster starts worker processes; keep
     best = result.best
     print(f"best trial {best.trial}: val_auc = {best.score:.4f}")
     print(best.config)
-    print(f"{len(result.trials)} trials, journal {result.journal}, closed: {result.closed}")
-    # The journal can be read back at any time, also while a search runs:
-    table = forebear.load(result.journal)
+    print(f"{len(result.trials)} trials, logbook {result.logbook}, closed: {result.closed}")
+    # The logbook can be read back at any time, also while a search runs:
+    table = forebear.load(result.logbook)
     print("sources of the trials:", sorted({t.source for t in table}))

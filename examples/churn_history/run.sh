@@ -1,6 +1,6 @@
 #!/usr/bin/env bash
 # The whole example from the command line: two earlier searches, then the new one
-# with their journals as history, then the best configuration and a report.
+# with their logbooks as history, then the best configuration and a report.
 set -euo pipefail
 cd "$(dirname "$0")"
 forebear check consumer.yaml

@@ -17,7 +17,7 @@ from pathlib import Path
 
 import train
 
-from forebear.space import Space
+from forebear.core.space import Space
 
 HERE = Path(__file__).resolve().parent
 SPACE = Space.from_dict({

@@ -1,6 +1,6 @@
 """``python -m forebear``: the command line."""
 
-from forebear.cli import main
+from forebear.face.cli import main
 
 if __name__ == "__main__":
     main()

@@ -36,8 +36,8 @@ import numpy as np
 from scipy.stats import qmc
 
 from forebear.bench import functions
-from forebear.history import History, Task
-from forebear.space import Param, Space
+from forebear.core.space import Param, Space
+from forebear.records.history import History, Task
 
 DATA = Path(__file__).parent / "data" / "hgb_tasks.csv.gz"
 
@@ -187,7 +187,7 @@ def read_table(path: Path = DATA) -> dict[str, list[dict[str, Any]]]:
                     msg = f"{path}: line {line}: no value for {p.name}"
                     raise ValueError(msg)
                 if p.kind == "categorical":
-                    config[p.name] = p.choices[p.index(float(cell))]
+                    config[p.name] = p.categories[p.index(float(cell))]
                 elif p.kind == "int":
                     config[p.name] = int(cell)
                 else:

@@ -3,11 +3,11 @@
 ``forebear bench faults`` runs every scenario against a loopback cluster of
 separate processes (a ``dask scheduler`` and ``dask worker`` processes on
 127.0.0.1, no nanny, so that SIGKILL of a worker is a real crash) and checks
-the journal afterwards with :func:`check_invariants`: every trial ends scored
+the logbook afterwards with :func:`check_invariants`: every trial ends scored
 or failed exactly once, no score is recorded twice, every lost attempt is
 followed by a retry, and the best configuration equals the best scored record.
-The torn-write and concurrent-writer scenarios are the journal tests
-(``tests/test_journal*.py``), run here by pytest so that their figures come
+The torn-write and concurrent-writer scenarios are the logbook tests
+(``tests/test_logbook*.py``), run here by pytest so that their figures come
 from the same code. ``--short`` is the size that CI runs (tests/test_faults.py
 calls the same functions).
 
@@ -154,8 +154,8 @@ class ProcessCluster:
 # what must hold after any fault
 
 
-def check_invariants(records: Sequence[Mapping[str, Any]], direction: str = "minimize") -> dict[str, Any]:
-    """Count what the journal holds and list every broken invariant (``violations``).
+def check_invariants(records: Sequence[Mapping[str, Any]], sense: str = "minimize") -> dict[str, Any]:
+    """Count what the logbook holds and list every broken invariant (``violations``).
 
     Invariants: each proposed trial has exactly one terminal record (``scored``,
     or ``failed`` that is not retryable); no trial has two ``scored`` records;
@@ -164,7 +164,7 @@ def check_invariants(records: Sequence[Mapping[str, Any]], direction: str = "min
     same trial or by the ``failed`` record that says no retries were left; and
     the fold's best trial is the best ``scored`` record.
     """
-    from forebear.journal import fold
+    from forebear.records.logbook import fold
 
     proposed: dict[int, dict[str, Any]] = {}
     terminal: Counter[int] = Counter()
@@ -214,7 +214,7 @@ def check_invariants(records: Sequence[Mapping[str, Any]], direction: str = "min
         if not any(a > att for a in attempts[tid]) and tid not in gave_up:
             violations.append(f"trial {tid} attempt {att}: lost ({reason}) and never retried")
     table = fold(records)
-    sign = -1.0 if direction == "maximize" else 1.0
+    sign = -1.0 if sense == "maximize" else 1.0
     firsts = {t: s[0] for t, s in scored.items() if s}
     best_record = min(firsts, key=lambda t: (sign * firsts[t], t)) if firsts else None
     best = table.best()
@@ -240,7 +240,7 @@ def check_invariants(records: Sequence[Mapping[str, Any]], direction: str = "min
 
 def write_spec(folder: Path, address: str | None, *, trials: int, concurrency: int, objective: str = SLEEPER,
                retries: int = 5, seed: int = 3, name: str = "faults", workers: int = 4) -> Path:
-    """A spec file for a campaign search; the journal is ``folder/runs/<name>.jsonl``."""
+    """A spec file for a campaign search; the logbook is ``folder/runs/<name>.jsonl``."""
     import yaml
 
     spec: dict[str, Any] = {
@@ -249,7 +249,7 @@ def write_spec(folder: Path, address: str | None, *, trials: int, concurrency: i
         "space": {"x": {"float": [0.0, 1.0]}, "y": {"float": [-1.0, 1.0]}},
         "budget": {"trials": trials, "batch": concurrency, "concurrency": concurrency, "retries": retries},
         "cluster": {"address": address} if address else {"local": {"workers": workers, "dashboard": False}},
-        "journal": f"runs/{name}.jsonl",
+        "logbook": f"runs/{name}.jsonl",
         "seed": seed,
     }
     folder.mkdir(parents=True, exist_ok=True)
@@ -258,16 +258,16 @@ def write_spec(folder: Path, address: str | None, *, trials: int, concurrency: i
     return path
 
 
-def _records(journal: Path) -> list[dict[str, Any]]:
-    from forebear.journal import Journal
+def _records(logbook: Path) -> list[dict[str, Any]]:
+    from forebear.records.logbook import Logbook
 
-    return Journal(journal).records()
+    return Logbook(logbook).records()
 
 
-def _finished(journal: Path) -> int:
-    if not journal.exists():
+def _finished(logbook: Path) -> int:
+    if not logbook.exists():
         return 0
-    return sum(1 for r in _records(journal) if r["kind"] in ("scored", "failed") and not r.get("retryable"))
+    return sum(1 for r in _records(logbook) if r["kind"] in ("scored", "failed") and not r.get("retryable"))
 
 
 def _cli(spec: Path) -> subprocess.Popen[bytes]:
@@ -284,10 +284,10 @@ def _wait(proc: subprocess.Popen[bytes], timeout: float) -> tuple[int, str]:
     return proc.returncode, err.decode(errors="replace")
 
 
-def _journal_of(spec: Path) -> Path:
+def _logbook_of(spec: Path) -> Path:
     import yaml
 
-    return spec.parent / yaml.safe_load(spec.read_text())["journal"]
+    return spec.parent / yaml.safe_load(spec.read_text())["logbook"]
 
 
 # --------------------------------------------------------------------------
@@ -315,8 +315,8 @@ def worker_kills(cluster: Any, folder: Path, *, trials: int = 200, kills: int = 
     that each kill interrupts an objective rather than a replacement worker
     that is still starting (which the other setting also exercises).
     """
-    from forebear.controller import Controller
-    from forebear.spec import load
+    from forebear.core.spec import load
+    from forebear.loop.controller import Controller
 
     n_workers = len([p for p in cluster.workers if p.poll() is None])
     spec_path = write_spec(folder, cluster.address, trials=trials, concurrency=n_workers, name="worker-kills", seed=seed)
@@ -329,7 +329,7 @@ def worker_kills(cluster: Any, folder: Path, *, trials: int = 200, kills: int = 
     def chaos() -> None:
         try:
             # Start once attempts run, so that the first kills hit attempts rather than idle workers.
-            while not done.is_set() and not any(r["kind"] == "started" for r in (_records(spec.journal) if spec.journal.exists() else [])):
+            while not done.is_set() and not any(r["kind"] == "started" for r in (_records(spec.logbook) if spec.logbook.exists() else [])):
                 time.sleep(0.1)
             while not done.is_set() and len(killed) < kills:
                 if done.wait(rng.uniform(*interval)):
@@ -356,7 +356,7 @@ def worker_kills(cluster: Any, folder: Path, *, trials: int = 200, kills: int = 
         done.set()
         thread.join(60)
     seconds = time.monotonic() - t0
-    figures = check_invariants(_records(spec.journal))
+    figures = check_invariants(_records(spec.logbook))
     if errors:
         figures["violations"].append(f"chaos thread failed: {errors[0]!r}")
     if result.best is None or result.best.trial != figures["best_trial"]:
@@ -370,24 +370,24 @@ def controller_kills(cluster: Any, folder: Path, *, trials: int = 60, kills: int
                      after: tuple[float, float] = (0.0, 2.0), deadline: float = 300.0) -> dict[str, Any]:
     """``kills`` SIGKILLs of a ``forebear run`` controller at random moments, each followed by a resume.
 
-    A kill comes a random ``after`` seconds once the controller's journal has
+    A kill comes a random ``after`` seconds once the controller's logbook has
     grown (the controller is connected and records are flowing); the last run
     finishes the search.
     """
     n_workers = len([p for p in cluster.workers if p.poll() is None])
     spec = write_spec(folder, cluster.address, trials=trials, concurrency=n_workers, name="controller-kills", seed=seed)
-    journal = _journal_of(spec)
+    logbook = _logbook_of(spec)
     rng = random.Random(seed)
     t0 = time.monotonic()
     done_kills = 0
     busy_refusals = 0
     doomed: list[Any] = []  # processes the killed controllers had started
     for _ in range(kills):
-        size = journal.stat().st_size if journal.exists() else 0
+        size = logbook.stat().st_size if logbook.exists() else 0
         proc = _cli(spec)
         try:
             end = time.monotonic() + deadline
-            while proc.poll() is None and (not journal.exists() or journal.stat().st_size <= size):
+            while proc.poll() is None and (not logbook.exists() or logbook.stat().st_size <= size):
                 if time.monotonic() > end:
                     raise AssertionError("a controller wrote nothing within the deadline")
                 time.sleep(0.05)
@@ -403,13 +403,13 @@ def controller_kills(cluster: Any, folder: Path, *, trials: int = 60, kills: int
                     busy_refusals += 1  # the dead controller's lock must not outlive it
         finally:
             _reap(proc)
-        if _finished(journal) >= trials:
+        if _finished(logbook) >= trials:
             break
     code, err = _wait(_cli(spec), deadline)
     seconds = time.monotonic() - t0
     # A proposer process may still be importing torch when its controller dies; it leaves at its next check.
     orphans = _outlived(doomed, 60.0)
-    records = _records(journal)
+    records = _records(logbook)
     figures = check_invariants(records)
     if code != 0:
         figures["violations"].append(f"the final run exited {code}: {err.strip()[-300:]}")
@@ -480,9 +480,9 @@ def fill_filesystem(folder: Path) -> Path:
 
 
 def full_disk(cluster: Any, folder: Path, *, trials: int = 16, fill_after: int = 4, deadline: float = 300.0) -> dict[str, Any]:
-    """The journal's filesystem fills up mid-search: the controller stops with one clear line, exit 2.
+    """The logbook's filesystem fills up mid-search: the controller stops with one clear line, exit 2.
 
-    The journal lives on a small tmpfs. After ``fill_after`` trials finish, a
+    The logbook lives on a small tmpfs. After ``fill_after`` trials finish, a
     thread fills the disk; ``forebear run`` (the command line's code, in this
     process) must stop with the writer's message, every record read before the
     fill must still be there, and once space is freed a resume completes the
@@ -490,25 +490,25 @@ def full_disk(cluster: Any, folder: Path, *, trials: int = 16, fill_after: int =
     """
     from click.testing import CliRunner
 
-    from forebear.cli import main as cli_main
+    from forebear.face.cli import main as cli_main
 
     n_workers = len([p for p in cluster.workers if p.poll() is None])
     with tiny_filesystem(folder / "tiny") as mnt:
         if mnt is None:
             return {"skipped": "cannot mount a tmpfs here (needs root on Linux); the injected failing-fsync scenario covers the controller's side"}
         spec = write_spec(mnt, cluster.address, trials=trials, concurrency=n_workers, name="full-disk")
-        journal = _journal_of(spec)
+        logbook = _logbook_of(spec)
         before: list[dict[str, Any]] = []
         filled = threading.Event()
         stop = threading.Event()
 
         def filler() -> None:
             end = time.monotonic() + deadline
-            while _finished(journal) < fill_after and not stop.is_set() and time.monotonic() < end:
+            while _finished(logbook) < fill_after and not stop.is_set() and time.monotonic() < end:
                 time.sleep(0.05)
             if stop.is_set():
                 return
-            before.extend(_records(journal))
+            before.extend(_records(logbook))
             fill_filesystem(mnt)
             filled.set()
 
@@ -520,7 +520,7 @@ def full_disk(cluster: Any, folder: Path, *, trials: int = 16, fill_after: int =
             stop.set()
             thread.join(30)
         err = res.stderr
-        after = _records(journal)
+        after = _records(logbook)
         violations: list[str] = []
         lines = [line for line in err.strip().splitlines() if line.strip()]
         if not filled.is_set():
@@ -535,7 +535,7 @@ def full_disk(cluster: Any, folder: Path, *, trials: int = 16, fill_after: int =
         res2 = CliRunner().invoke(cli_main, ["run", str(spec), "--quiet"])
         if res2.exit_code != 0:
             violations.append(f"the resume after freeing space exited {res2.exit_code}: {res2.stderr.strip()[-300:]}")
-        final = _records(journal)
+        final = _records(logbook)
         if final[: len(before)] != before:
             violations.append("the resume lost records written before the disk filled up")
         figures = check_invariants(final)
@@ -548,7 +548,7 @@ def full_disk(cluster: Any, folder: Path, *, trials: int = 16, fill_after: int =
 @contextlib.contextmanager
 def failing_fsync(after: int) -> Iterator[list[int]]:
     """Make ``os.fsync`` in this process fail with EIO after its first ``after`` calls."""
-    from forebear import journal as jmod
+    from forebear.records import logbook as jmod
 
     real = jmod.os.fsync
     calls = [0]
@@ -575,11 +575,11 @@ def fsync_failure(cluster: Any, folder: Path, *, trials: int = 12, fail_after: i
     """
     from click.testing import CliRunner
 
-    from forebear.cli import main as cli_main
+    from forebear.face.cli import main as cli_main
 
     n_workers = len([p for p in cluster.workers if p.poll() is None])
     spec = write_spec(folder, cluster.address, trials=trials, concurrency=n_workers, name="fsync")
-    journal = _journal_of(spec)
+    logbook = _logbook_of(spec)
     violations: list[str] = []
     with failing_fsync(fail_after) as calls:
         res = CliRunner().invoke(cli_main, ["run", str(spec), "--quiet"])
@@ -591,11 +591,11 @@ def fsync_failure(cluster: Any, folder: Path, *, trials: int = 12, fail_after: i
         violations.append(f"the controller exited {res.exit_code}, want 2 ({res.exception!r})")
     if "Traceback" in err or len(lines) != 1 or "Input/output error" not in lines[0]:
         violations.append(f"the controller's message is not one clear line: {err.strip()[-500:]!r}")
-    before = _records(journal)
+    before = _records(logbook)
     res2 = CliRunner().invoke(cli_main, ["run", str(spec), "--quiet"])
     if res2.exit_code != 0:
         violations.append(f"the resume exited {res2.exit_code}: {res2.stderr.strip()[-300:]}")
-    final = _records(journal)
+    final = _records(logbook)
     if final[: len(before)] != before:
         violations.append("the resume lost records written before the failure")
     figures = check_invariants(final)
@@ -603,18 +603,18 @@ def fsync_failure(cluster: Any, folder: Path, *, trials: int = 12, fail_after: i
     return {"message": lines[0] if lines else "", "fsync_calls": calls[0], **figures}
 
 
-def journal_tests(full: bool = True) -> dict[str, Any]:
-    """Run the torn-write and concurrent-writer tests (tests/test_journal*.py) and report them.
+def logbook_tests(full: bool = True) -> dict[str, Any]:
+    """Run the torn-write and concurrent-writer tests (tests/test_logbook*.py) and report them.
 
     They need the source checkout (the tests are not installed); without it
     the figures say so.
     """
     tests = Path(__file__).resolve().parents[3] / "tests"
-    names = ["test_journal.py::test_torn_writes_at_random_offsets", "test_journal.py::test_torn_write_with_whole_record_keeps_it",
-             "test_journal.py::test_eight_writers_while_controller_lock_held", "test_journal.py::test_controller_lock_released_when_holder_is_killed",
-             "test_journal_faults.py::test_writer_killed_mid_large_record", "test_journal_faults.py::test_full_disk_is_reported_and_nothing_lost",
-             "test_journal_faults.py::test_failing_fsync_keeps_earlier_records"]
-    if not (tests / "test_journal.py").is_file():
+    names = ["test_logbook.py::test_torn_writes_at_random_offsets", "test_logbook.py::test_torn_write_with_whole_record_keeps_it",
+             "test_logbook.py::test_eight_writers_while_controller_lock_held", "test_logbook.py::test_controller_lock_released_when_holder_is_killed",
+             "test_logbook_faults.py::test_writer_killed_mid_large_record", "test_logbook_faults.py::test_full_disk_is_reported_and_nothing_lost",
+             "test_logbook_faults.py::test_failing_fsync_keeps_earlier_records"]
+    if not (tests / "test_logbook.py").is_file():
         return {"skipped": f"no test tree at {tests} (run from a source checkout)"}
     env = _env()
     env["FOREBEAR_TEST_APPENDS"] = "1000" if full else "200"
@@ -647,13 +647,13 @@ def load_run(folder: Path, *, trials: int = 2000, workers: int = 4, window: int 
     Run it in a fresh process (:func:`load`) so that the peak memory is the
     controller's. The proposer is the real engine with its initial design
     (a Latin hypercube) covering the whole budget, so that model refits do not
-    hide what the controller, Dask and the journal cost per trial. Overhead
+    hide what the controller, Dask and the logbook cost per trial. Overhead
     per trial = worker-seconds per finished trial over a window of ``window``
     trials (the objective takes no time); ``propose`` calls are timed too.
     """
-    from forebear.controller import Controller
-    from forebear.proposer import Proposer
-    from forebear.spec import load as load_spec
+    from forebear.core.spec import load as load_spec
+    from forebear.engine.proposer import Proposer
+    from forebear.loop.controller import Controller
 
     spec = load_spec(write_spec(folder, None, trials=trials, concurrency=workers, objective=NOOP, name="load", workers=workers))
     proposer = Proposer(spec.space, seed=spec.seed, n_initial=trials)
@@ -683,7 +683,7 @@ def load_run(folder: Path, *, trials: int = 2000, workers: int = 4, window: int 
         stop.set()
         sampler.join(5)
     seconds = time.monotonic() - t0
-    records = _records(spec.journal)
+    records = _records(spec.logbook)
     ends = sorted(float(r["at"]) for r in records if r["kind"] == "scored")
     figures = check_invariants(records)
 
@@ -714,7 +714,7 @@ def load_run(folder: Path, *, trials: int = 2000, workers: int = 4, window: int 
         "controller_peak_rss_mib": round(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024, 1),
         "controller_rss_mib_early": round(rss[min(len(rss) - 1, 5)][1], 1) if rss else None,
         "controller_rss_mib_end": round(rss[-1][1], 1) if rss else None,
-        "journal_bytes": spec.journal.stat().st_size,
+        "logbook_bytes": spec.logbook.stat().st_size,
         **figures,
     }
 
@@ -773,7 +773,7 @@ def main(short: bool = False, folder: str | None = None) -> dict[str, Any]:
         keep("fsync", fsync_failure(cluster, base / "fsync", **sizes["fsync"]))
     finally:
         cluster.close()
-    keep("journal", journal_tests(full=not short))
+    keep("logbook", logbook_tests(full=not short))
     keep("load", load(base / "load", **sizes["load"]))
     out["ok"] = not any(v.get("violations") for v in out.values() if isinstance(v, dict))
     return out

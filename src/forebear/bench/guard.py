@@ -72,8 +72,8 @@ def diagnose(
     """
     import torch
 
-    from forebear.proposer import Observation, Proposer
-    from forebear.surrogate.gp import fit_gp
+    from forebear.engine.proposer import Observation, Proposer
+    from forebear.engine.surrogate.gp import fit_gp
 
     torch.set_num_threads(1)
     task = family.tasks[index]

@@ -27,7 +27,7 @@ from typing import Any
 import numpy as np
 from scipy.stats import qmc
 
-from forebear.space import Space
+from forebear.core.space import Space
 
 #: The tuned hyperparameters of HistGradientBoostingClassifier (six, mixed types).
 HGB_SPACE: dict[str, dict[str, Any]] = {

@@ -5,7 +5,7 @@ single-thread workers with ``concurrency = workers``. Each trial sleeps for a
 duration drawn from a log-normal distribution (median ``median`` s, shape
 ``sigma``), keyed by the trial id, so the durations do not depend on what the
 proposer proposes; the score is a quadratic of the configuration, so the
-proposer does its ordinary work. Figures, from the journal's records:
+proposer does its ordinary work. Figures, from the logbook's records:
 
 * ``utilization``: busy worker-seconds / available worker-seconds while trials
   remain to be started (for each worker, from its first to its last attempt
@@ -50,9 +50,9 @@ def timed_sleep(config: dict[str, Any]) -> float:
 
 
 def _search(folder: Path, name: str, trials: int, workers: int, median: float, sigma: float) -> dict[str, Any]:
-    from forebear.controller import run
-    from forebear.journal import Journal
-    from forebear.runner import shutdown_servers
+    from forebear.cluster.runner import shutdown_servers
+    from forebear.face.api import run
+    from forebear.records.logbook import Logbook
 
     spec = {
         "name": name,
@@ -66,13 +66,13 @@ def _search(folder: Path, name: str, trials: int, workers: int, median: float, s
         },
         "budget": {"trials": trials, "batch": workers, "concurrency": workers, "retries": 0},
         "cluster": {"local": {"workers": workers, "dashboard": False}},
-        "journal": str(folder / f"{name}.jsonl"),
+        "logbook": str(folder / f"{name}.jsonl"),
     }
     t0 = time.monotonic()
     result = run(spec, quiet=True)
     wall = time.monotonic() - t0
     shutdown_servers()
-    records = Journal(folder / f"{name}.jsonl").records()
+    records = Logbook(folder / f"{name}.jsonl").records()
     return {"records": records, "wall": wall, "result": result}
 
 

@@ -25,9 +25,9 @@ from typing import Any
 import numpy as np
 
 from forebear.bench.functions import BRANIN_MIN, HARTMANN3_MIN, branin, hartmann3
-from forebear.history import History, Task
-from forebear.proposer import Observation, Proposer
-from forebear.space import Space
+from forebear.core.space import Space
+from forebear.engine.proposer import Observation, Proposer
+from forebear.records.history import History, Task
 
 SPACE3 = Space.from_dict({f"x{i}": {"float": [0.0, 1.0]} for i in range(3)})
 SPACE2 = Space.from_dict({f"x{i}": {"float": [0.0, 1.0]} for i in range(2)})
@@ -197,7 +197,7 @@ def failures(seeds: int = 6, trials: int = 30, batch: int = 2) -> dict[str, Any]
 
 def subset(n: int = 2000, seed: int = 0) -> dict[str, Any]:
     """Subset-of-data posterior vs the exact posterior (same hyperparameters) on Hartmann-3."""
-    from forebear.surrogate.gp import MAX_EXACT, Posterior, as_tensor, fit_gp
+    from forebear.engine.surrogate.gp import MAX_EXACT, Posterior, as_tensor, fit_gp
 
     rng = np.random.default_rng(seed)
     X = rng.random((n, 3))

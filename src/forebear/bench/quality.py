@@ -134,7 +134,7 @@ def search(
 
     ``settings`` are extra Proposer keywords, overridden by the method's own.
     """
-    from forebear.proposer import Observation, Proposer
+    from forebear.engine.proposer import Observation, Proposer
 
     task = family.tasks[index]
     space = family.space
@@ -594,7 +594,7 @@ def _cli(argv: Sequence[str] | None = None) -> None:
             settings[key] = value
     if settings:
         from forebear.bench.families import unit_space
-        from forebear.proposer import Proposer
+        from forebear.engine.proposer import Proposer
 
         try:  # a bad setting is refused here, not in every worker
             Proposer(unit_space(2), None, cache_dir=False, **settings)

@@ -1,0 +1,492 @@
+"""What runs on a worker: one attempt of one trial, isolated in a child process.
+
+:func:`run_attempt` is the function the controller submits to Dask. It hands
+the attempt to a per-worker fork server (:mod:`forebear.cluster.child`) that has
+already imported the objective, waits for the child with the attempt's
+timeout, and kills the child's whole process group on timeout or when the
+Dask task is cancelled. A crash of the user's code (segfault, ``os._exit``,
+MemoryError, a hang) ends the child, never the worker.
+
+When the logbook's folder is reachable from the worker (a shared filesystem,
+proven by a token file the controller wrote), the runner appends its own
+``started`` and ``scored``/``failed`` records and writes the full log beside
+the logbook; otherwise it returns the records and the log for the controller
+to write. The runner never imports the surrogate.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import re
+import select
+import shutil
+import signal
+import socket
+import subprocess
+import sys
+import tempfile
+import threading
+import time
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from forebear.cluster import child as _child
+from forebear.cluster.child import BadScore, score_of_stdout
+from forebear.records.logbook import Logbook, ensure_folder, record
+
+PROBE_NAME = ".probe"
+LOG_TAIL_LINES = 20
+LOG_RETURN_BYTES = 1 << 20  # the log returned to the controller without a shared filesystem
+KILL_GRACE = 10.0  # seconds to wait for a killed child to be reaped
+POLL = 0.2  # how often a waiting runner checks whether its Dask task was cancelled
+
+
+class RunnerError(RuntimeError):
+    """The attempt machinery itself failed (not the objective)."""
+
+    def __reduce__(self) -> tuple[Any, ...]:
+        return (self.__class__, self.args)
+
+
+@dataclass(frozen=True)
+class AttemptTask:
+    """Everything a worker needs for one attempt (plain data, pickled to the worker)."""
+
+    search: str
+    trial: int
+    attempt: int
+    config: Mapping[str, Any]
+    metric: str
+    call: str | None = None
+    command: tuple[str, ...] | None = None
+    timeout: float | None = None
+    logbook: str | None = None
+    lock: str = "strict"
+    lock_lifetime: float = 60.0
+    logs: str | None = None
+    token: str | None = None
+    cwd: str | None = None
+    retryable: bool = False  # the value of ``retryable`` in a ``failed`` record for an objective error
+
+
+@dataclass
+class AttemptResult:
+    """What an attempt came to; ``records`` are already in the logbook when ``written``."""
+
+    trial: int
+    attempt: int
+    outcome: str  # scored, failed, timeout, cancelled
+    records: list[dict[str, Any]] = field(default_factory=list)
+    written: bool = False
+    error: str | None = None
+    seconds: float | None = None
+    worker: str | None = None
+    log_name: str | None = None
+    log_text: str | None = None
+
+
+def log_name(trial: int, attempt: int) -> str:
+    """The log file of an attempt inside the search's logs folder."""
+    return f"trial-{trial:05d}-attempt-{attempt}.log"
+
+
+# --------------------------------------------------------------------------
+# fork servers, one per objective per worker process
+
+
+class _Server:
+    """A :mod:`forebear.cluster.child` server process and its protocol pipes."""
+
+    def __init__(self, call: str | None, path: str | None, wait: float) -> None:
+        # Run the file, not ``-m forebear.cluster.child``: the package's imports (numpy, scipy, yaml) would
+        # add seconds to every server start, and the server needs only the standard library.
+        argv = [sys.executable, _child.__file__]
+        if call:
+            argv += ["--call", call]
+        if path:
+            argv += ["--path", path]
+        self.proc = subprocess.Popen(argv, stdin=subprocess.PIPE, stdout=subprocess.PIPE, close_fds=True)
+        assert self.proc.stdin is not None and self.proc.stdout is not None
+        self._in = self.proc.stdin
+        self._out = self.proc.stdout.fileno()
+        self._buf = b""
+        hello = self.read(wait)
+        if hello is None:
+            self.close()
+            raise RunnerError(f"the attempt process for {call or 'commands'} did not start within {wait:g} s")
+        if not hello.get("ready"):
+            self.close()
+            raise RunnerError(str(hello.get("error") or "the attempt process failed to start"))
+
+    @property
+    def alive(self) -> bool:
+        return self.proc.poll() is None
+
+    def send(self, payload: Mapping[str, Any]) -> None:
+        self._in.write((json.dumps(payload, default=str) + "\n").encode())
+        self._in.flush()
+
+    def read(self, timeout: float | None) -> dict[str, Any] | None:
+        """The next protocol line, or None on timeout; RunnerError when the server died."""
+        deadline = None if timeout is None else time.monotonic() + timeout
+        while b"\n" not in self._buf:
+            left = None if deadline is None else max(0.0, deadline - time.monotonic())
+            ready, _, _ = select.select([self._out], [], [], left)
+            if not ready:
+                return None
+            chunk = os.read(self._out, 65536)
+            if not chunk:
+                raise RunnerError(f"the attempt process server exited (status {self.proc.wait()})")
+            self._buf += chunk
+        line, self._buf = self._buf.split(b"\n", 1)
+        return json.loads(line)
+
+    def close(self) -> None:
+        try:
+            self._in.close()
+        except OSError:
+            pass
+        try:
+            self.proc.wait(timeout=5)
+        except subprocess.TimeoutExpired:
+            self.proc.kill()
+            self.proc.wait()
+
+
+_POOL: dict[tuple[str | None, str | None], list[_Server]] = {}
+_POOL_LOCK = threading.Lock()
+
+
+def _acquire(call: str | None, path: str | None, wait: float) -> _Server:
+    with _POOL_LOCK:
+        idle = _POOL.setdefault((call, path), [])
+        while idle:
+            server = idle.pop()
+            if server.alive:
+                return server
+    return _Server(call, path, wait)
+
+
+def _release(server: _Server, call: str | None, path: str | None) -> None:
+    if not server.alive:
+        return
+    with _POOL_LOCK:
+        _POOL.setdefault((call, path), []).append(server)
+
+
+def shutdown_servers() -> None:
+    """Stop this process's fork servers (tests and the overhead benchmark call it)."""
+    with _POOL_LOCK:
+        servers = [s for group in _POOL.values() for s in group]
+        _POOL.clear()
+    for s in servers:
+        s.close()
+
+
+# --------------------------------------------------------------------------
+# where the worker is
+
+
+def _worker_identity() -> tuple[str, Callable[[], bool]]:
+    """This worker's address and a check whether the running Dask task was cancelled."""
+    try:
+        from distributed.worker import get_worker, thread_state
+
+        worker = get_worker()
+        key = thread_state.key
+    except (ImportError, ValueError, AttributeError):
+        return f"pid-{os.getpid()}", lambda: False
+
+    def cancelled() -> bool:
+        ts = worker.state.tasks.get(key)
+        return ts is None or ts.state in ("cancelled", "released", "forgotten")
+
+    return str(worker.address), cancelled
+
+
+_SHARED: dict[tuple[str, str], bool] = {}
+
+
+def reachable(logs: str | None, token: str | None) -> bool:
+    """True when the controller's token file is visible here: same filesystem as the logbook."""
+    if not logs or not token:
+        return False
+    key = (logs, token)
+    if key not in _SHARED:
+        try:
+            _SHARED[key] = (Path(logs) / PROBE_NAME).read_text().strip() == token
+        except OSError:
+            _SHARED[key] = False
+    return _SHARED[key]
+
+
+def tail(path: Path, lines: int = LOG_TAIL_LINES, max_bytes: int = 8192) -> str:
+    """The last ``lines`` lines of a file (decoded leniently), or '' when it is missing."""
+    try:
+        with open(path, "rb") as fh:
+            fh.seek(0, os.SEEK_END)
+            size = fh.tell()
+            fh.seek(max(0, size - max_bytes))
+            data = fh.read()
+    except OSError:
+        return ""
+    text = data.decode("utf-8", errors="replace")
+    return "\n".join(text.splitlines()[-lines:])
+
+
+def _exit_reason(status: int) -> str:
+    if os.WIFSIGNALED(status):
+        sig = os.WTERMSIG(status)
+        try:
+            name = signal.Signals(sig).name
+        except ValueError:
+            name = f"signal {sig}"
+        hint = " (out of memory, or killed from outside?)" if sig == signal.SIGKILL else ""
+        return f"the objective process was killed by {name} ({sig}){hint}"
+    return f"the objective process exited with status {os.waitstatus_to_exitcode(status)} before returning a result"
+
+
+# --------------------------------------------------------------------------
+# one attempt
+
+
+def run_attempt(task: AttemptTask) -> AttemptResult:
+    """Run one attempt of a trial in a child process and report it (the Dask task)."""
+    worker, cancelled = _worker_identity()
+    shared = reachable(task.logs, task.token)
+    logbook = Logbook(task.logbook, task.lock, task.lock_lifetime) if shared and task.logbook else None
+    scratch = Path(tempfile.mkdtemp(prefix=f"forebear-t{task.trial}-"))
+    try:
+        return _run(task, worker, cancelled, logbook, scratch)
+    finally:
+        shutil.rmtree(scratch, ignore_errors=True)
+
+
+def _run(task: AttemptTask, worker: str, cancelled: Callable[[], bool], logbook: Logbook | None, scratch: Path) -> AttemptResult:
+    name = log_name(task.trial, task.attempt)
+    if logbook is not None and task.logs:
+        ensure_folder(Path(task.logs))
+        log = Path(task.logs) / name
+    else:
+        log = scratch / name
+    out = log.with_suffix(".out") if task.command else None
+    config_file = scratch / "config.json"
+    fd = os.open(config_file, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o600)
+    config_json = json.dumps(dict(task.config), default=str)
+    try:
+        os.write(fd, config_json.encode())
+    finally:
+        os.close(fd)
+    env = {
+        "FOREBEAR_CONFIG": config_json,
+        "FOREBEAR_CONFIG_FILE": str(config_file),
+        "FOREBEAR_TRIAL": str(task.trial),
+        "FOREBEAR_ATTEMPT": str(task.attempt),
+        "FOREBEAR_SEARCH": task.search,
+    }
+    request: dict[str, Any] = {
+        "op": "run",
+        "log": str(log),
+        "out": str(out) if out else None,
+        "result": str(scratch / "result.json"),
+        "env": env,
+        "cwd": task.cwd,
+        "metric": task.metric,
+        "config": dict(task.config),
+    }
+    if task.command:
+        request.update(kind="exec", argv=[_substitute(a, task.config) for a in task.command])
+    else:
+        request.update(kind="call")
+    result = AttemptResult(task.trial, task.attempt, "failed", worker=worker, log_name=name)
+    key_call = task.call if not task.command else None
+    try:
+        server = _acquire(key_call, task.cwd, max(60.0, task.timeout or 0.0))
+    except RunnerError as exc:
+        # The objective cannot be imported here: the attempt fails, it did not start anything.
+        started = record("started", trial=task.trial, attempt=task.attempt, worker=worker, host=socket.gethostname(), pid=None)
+        if logbook is not None:
+            logbook.append(started)
+        return _finish(task, result, logbook, started, None, str(exc), 0.0, log, out)
+    try:
+        outcome, status, started, seconds = _supervise(server, request, task, worker, logbook, cancelled)
+    except RunnerError as exc:
+        server.close()
+        started = record("started", trial=task.trial, attempt=task.attempt, worker=worker, host=socket.gethostname(), pid=None)
+        return _finish(task, result, logbook, started, None, str(exc), 0.0, log, out)
+    finally:
+        _release(server, key_call, task.cwd)
+    if outcome in ("timeout", "cancelled"):
+        result.outcome = outcome
+        result.records = [started]
+        result.written = logbook is not None
+        result.seconds = seconds
+        what = f"the attempt timed out after {task.timeout:g} s" if outcome == "timeout" else "the attempt was cancelled"
+        result.error = _with_tail(what, log, out)
+        if logbook is None:
+            result.log_text = _read_log(log, out)
+        return result
+    return _finish(task, result, logbook, started, status, None, seconds, log, out, scratch / "result.json")
+
+
+def _supervise(
+    server: _Server, request: Mapping[str, Any], task: AttemptTask, worker: str, logbook: Logbook | None, cancelled: Callable[[], bool]
+) -> tuple[str, int | None, dict[str, Any], float]:
+    """Start the child, write ``started``, wait; returns (outcome, wait status, started record, seconds)."""
+    server.send(request)
+    hello = server.read(60.0)
+    if hello is None or "pid" not in hello:
+        raise RunnerError("the attempt process server did not fork a child within 60 s")
+    pid = int(hello["pid"])
+    t0 = time.monotonic()
+    started = record("started", trial=task.trial, attempt=task.attempt, worker=worker, host=socket.gethostname(), pid=pid)
+    if logbook is not None:
+        try:
+            logbook.append(started)
+        except BaseException:
+            # The logbook cannot be written (a full disk): stop the child and retire this server, whose
+            # protocol would otherwise still owe the child's exit to the next attempt it is given.
+            _killpg(pid)
+            server.close()
+            raise
+    deadline = None if task.timeout is None else t0 + task.timeout
+    outcome = "done"
+    killed_at: float | None = None
+    while True:
+        now = time.monotonic()
+        wait = POLL if deadline is None or outcome != "done" else max(0.0, min(POLL, deadline - now))
+        msg = server.read(wait)
+        if msg is not None and "exit" in msg:
+            return outcome, int(msg["exit"]), started, time.monotonic() - t0
+        now = time.monotonic()
+        if outcome == "done":
+            if deadline is not None and now >= deadline:
+                outcome = "timeout"
+            elif cancelled():
+                outcome = "cancelled"
+            if outcome != "done":
+                killed_at = now
+                _killpg(pid)
+        elif killed_at is not None and now - killed_at > KILL_GRACE:
+            # The child ignores SIGKILL only when stuck in the kernel (D state); give up on it.
+            server.close()
+            return outcome, None, started, now - t0
+
+
+def _killpg(pid: int) -> None:
+    try:
+        os.killpg(pid, signal.SIGKILL)
+    except (ProcessLookupError, PermissionError):
+        pass
+
+
+_PLACEHOLDER = re.compile(r"\{([A-Za-z_][\w.-]*)\}")
+
+
+def _substitute(item: str, config: Mapping[str, Any]) -> str:
+    """Fill ``{name}`` placeholders of one argv item; the item stays one argument.
+
+    Only names of the configuration are replaced; any other braces (a JSON
+    snippet, a Python one-liner) stay as written.
+    """
+    return _PLACEHOLDER.sub(lambda m: str(config[m.group(1)]) if m.group(1) in config else m.group(0), item)
+
+
+def _read_log(log: Path, out: Path | None) -> str:
+    parts = []
+    for p in (out, log):
+        if p is None:
+            continue
+        try:
+            size = p.stat().st_size
+            with open(p, "rb") as fh:
+                fh.seek(max(0, size - LOG_RETURN_BYTES))
+                text = fh.read().decode("utf-8", errors="replace")
+        except OSError:
+            continue
+        if out is not None:
+            parts.append(f"--- {'stdout' if p == out else 'stderr'} ---\n{text}")
+        else:
+            parts.append(text)
+    return "\n".join(parts)
+
+
+def _with_tail(reason: str, log: Path, out: Path | None) -> str:
+    lines = tail(log)
+    if out is not None:
+        so = tail(out, lines=5)
+        if so:
+            lines = (lines + "\n" if lines else "") + "stdout: " + so.replace("\n", "\nstdout: ")
+    return f"{reason}\n--- last lines of the log ---\n{lines}" if lines else reason
+
+
+def _finish(
+    task: AttemptTask,
+    result: AttemptResult,
+    logbook: Logbook | None,
+    started: dict[str, Any],
+    status: int | None,
+    error: str | None,
+    seconds: float,
+    log: Path,
+    out: Path | None,
+    result_file: Path | None = None,
+) -> AttemptResult:
+    score: float | None = None
+    metrics: dict[str, Any] = {}
+    payload: dict[str, Any] | None = None
+    if error is None and result_file is not None and result_file.exists():
+        try:
+            payload = json.loads(result_file.read_text())
+        except (OSError, ValueError):
+            payload = None
+    if error is None:
+        if status is None:
+            error = "the objective process could not be reaped after SIGKILL"
+        elif payload is not None and not payload.get("ok"):
+            error = str(payload.get("error"))
+        elif task.command:
+            code = os.waitstatus_to_exitcode(status)
+            if code != 0:
+                error = _exit_reason(status) if code < 0 else f"the command exited with status {code}"
+            else:
+                try:
+                    score, metrics = score_of_stdout(_read_text(out), task.metric)
+                except BadScore as exc:
+                    error = f"bad result: {exc}"
+        elif payload is not None:
+            score, metrics = float(payload["score"]), dict(payload.get("metrics") or {})
+        else:
+            error = _exit_reason(status)
+    if error is None and score is not None:
+        final = record("scored", trial=task.trial, attempt=task.attempt, score=score, metrics=metrics, seconds=round(seconds, 6))
+        result.outcome = "scored"
+    else:
+        result.error = _with_tail(error or "no result", log, out)
+        final = record("failed", trial=task.trial, attempt=task.attempt, error=result.error, retryable=task.retryable)
+        result.outcome = "failed"
+    result.seconds = seconds
+    if logbook is not None:
+        logbook.append(final)
+        result.records = [started, final]
+        result.written = True
+    else:
+        result.records = [started, final]
+        result.log_text = _read_log(log, out)
+    return result
+
+
+def _read_text(path: Path | None) -> str:
+    if path is None:
+        return ""
+    try:
+        with open(path, "rb") as fh:
+            fh.seek(0, os.SEEK_END)
+            size = fh.tell()
+            fh.seek(max(0, size - 65536))  # the score is on the last line; 10 MB of stdout is not read whole
+            return fh.read().decode("utf-8", errors="replace")
+    except OSError:
+        return ""

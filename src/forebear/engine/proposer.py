@@ -1,0 +1,460 @@
+"""The proposal engine's one entry point for the controller.
+
+The controller hands over what it knows (observations, failures, pending
+configurations) and asks for ``n`` configurations; it never sees the
+surrogate, the acquisition or the warm start directly. Scores given to the
+proposer are lower-is-better (the controller multiplies a ``maximize``
+metric by -1).
+
+How a call is answered (docs/engine.md has the reasons and the figures):
+
+1. The initial design (warm start from history, else a Latin hypercube) is
+   proposed first, source ``initial``.
+2. Then the surrogate: the plain GP without history; with history, the
+   meta-trained deep kernel (its offset, amplitude and residual refitted in
+   closed form on the current search) under the transfer guard, which scores
+   both models prequentially across rounds. Failed configurations enter the targets with the worst
+   observed score. Pending configurations and earlier points of the same
+   batch enter as constant lies. Source ``model``.
+3. Random configurations fill what the model cannot (too few scores yet),
+   source ``random``.
+
+The meta-trained state is cached on disk (``cache_dir``, default
+``$FOREBEAR_CACHE`` or ``~/.cache/forebear``) as a ``state_dict`` of tensors,
+keyed by a hash of the history contents, the space and the settings, and
+loaded with ``torch.load(weights_only=True)``.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import math
+import os
+import pickle
+import tempfile
+import time
+from collections.abc import Iterator, Mapping, Sequence
+from dataclasses import dataclass, replace
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import torch
+
+from forebear.core.space import Space
+from forebear.engine import acquisition
+from forebear.engine.surrogate.deep_kernel import MetaModel, Settings, cache_key
+from forebear.engine.surrogate.gp import Posterior, as_tensor, fit_gp
+from forebear.engine.surrogate.select import Choice, Prequential, choose
+from forebear.engine.warmstart import initial_design
+
+MODELS = ("auto", "gp", "deep-kernel")
+FAILED = ("impute", "classifier")
+HISTORY_SHARE = 1.0  # of the initial design from history; 0.5 measured worse (docs/engine.md)
+GUARD_FROM = 3  # observations before the guard fits the plain GP next to the deep kernel
+DEFAULT_FAILED = "impute"  # chosen by `python -m forebear.bench.proposal failures` (docs/engine.md)
+
+
+@dataclass(frozen=True)
+class Proposal:
+    """One proposed configuration and where it came from.
+
+    ``source`` is ``initial``, ``model`` or ``random``; ``model`` names the
+    surrogate that proposed it (``gp``, ``deep-kernel``, ``mix``) or is
+    ``None``; ``acquisition`` is the log-EI of the point when it was chosen.
+    """
+
+    config: dict[str, Any]
+    source: str
+    model: str | None = None
+    acquisition: float | None = None
+
+
+@dataclass(frozen=True)
+class Observation:
+    """A finished trial as the proposer sees it: lower ``score`` is better."""
+
+    config: Mapping[str, Any]
+    score: float
+
+
+def default_cache_dir() -> Path:
+    """``$FOREBEAR_CACHE`` when set, else ``~/.cache/forebear``."""
+    env = os.environ.get("FOREBEAR_CACHE")
+    return Path(env) if env else Path.home() / ".cache" / "forebear"
+
+
+class Proposer:
+    """Proposes batches for one search.
+
+    Parameters
+    ----------
+    space
+        The search space.
+    history
+        Earlier searches aligned to ``space`` (``forebear.records.history.History``) or ``None``.
+    seed
+        Seed for every random choice.
+    warm_start
+        With history, start from the evolutionary warm start; otherwise a Latin hypercube.
+    augment
+        Task augmentation during meta-training.
+    fine_tune
+        At each refit, choose the deep kernel's residual amplitude on the current
+        search (offset and amplitude are always refitted; the feature map never is).
+    guard
+        With ``model="auto"``, the transfer guard picks or mixes deep kernel and plain GP.
+    model
+        ``"auto"`` (deep kernel with the guard when there is history, plain GP
+        otherwise), ``"gp"`` or ``"deep-kernel"`` (no guard).
+    lie
+        Constant-liar value: ``"min"``, ``"mean"`` or ``"max"`` of the observed scores.
+    device
+        ``"cpu"`` or ``"cuda"`` (for the deep kernel and the GP).
+    cache_dir
+        Folder of the meta-trained cache; ``False`` turns the cache off.
+    failed
+        ``"impute"`` (worst observed score as target) or ``"classifier"`` (EI times
+        a probability of feasibility) for crashed or timed-out configurations.
+    n_initial
+        Size of the initial design; default: the first batch size (at least
+        ``min(dim + 1, 10)`` without history, so the plain GP has points to fit).
+    threads
+        torch threads while proposing (restored afterwards); ``None`` leaves them alone.
+    deep_kernel
+        :class:`forebear.engine.surrogate.Settings` or a mapping of its fields.
+    n_candidates
+        Quasi-random candidates per batch.
+    history_share
+        With history and ``warm_start``, the fraction of the initial design
+        taken from history; a Latin hypercube fills the rest, a hedge against
+        history that misleads.
+    """
+
+    def __init__(
+        self,
+        space: Space,
+        history: Any = None,
+        seed: int = 0,
+        *,
+        warm_start: bool = True,
+        augment: bool = True,
+        fine_tune: bool = True,
+        guard: bool = True,
+        model: str = "auto",
+        lie: str = acquisition.DEFAULT_LIE,
+        device: str = "cpu",
+        cache_dir: str | os.PathLike[str] | bool | None = None,
+        failed: str = DEFAULT_FAILED,
+        n_initial: int | None = None,
+        threads: int | None = 1,
+        deep_kernel: Settings | Mapping[str, Any] | None = None,
+        n_candidates: int = 2048,
+        history_share: float = HISTORY_SHARE,
+        **more: Any,
+    ) -> None:
+        if more:
+            msg = f"Proposer got unknown settings: {', '.join(sorted(more))}"
+            raise TypeError(msg)
+        if model not in MODELS:
+            msg = f"model must be one of {MODELS}, got {model!r}"
+            raise ValueError(msg)
+        if lie not in acquisition.LIES:
+            msg = f"lie must be one of {acquisition.LIES}, got {lie!r}"
+            raise ValueError(msg)
+        if failed not in FAILED:
+            msg = f"failed must be one of {FAILED}, got {failed!r}"
+            raise ValueError(msg)
+        if device not in ("cpu", "cuda") and not str(device).startswith("cuda:"):
+            msg = f"device must be 'cpu' or 'cuda', got {device!r}"
+            raise ValueError(msg)
+        if str(device).startswith("cuda") and not torch.cuda.is_available():
+            msg = f"device {device!r} asked for, but torch finds no CUDA device"
+            raise ValueError(msg)
+        tasks = [t for t in (getattr(history, "tasks", history) or []) if len(t.y) >= 2]
+        if model == "deep-kernel" and not tasks:
+            raise ValueError("model 'deep-kernel' needs a history with at least one task of two or more scored trials")
+        self.space = space
+        self.history = history
+        self.tasks = tasks
+        self.seed = seed
+        self.warm_start, self.guard, self.fine_tune = warm_start, guard, fine_tune
+        self.model, self.lie, self.failed, self.device = model, lie, failed, device
+        self.n_initial, self.threads, self.n_candidates = n_initial, threads, n_candidates
+        if not 0.0 <= history_share <= 1.0:
+            msg = f"history_share must be in [0, 1], got {history_share}"
+            raise ValueError(msg)
+        self.history_share = history_share
+        dk = deep_kernel if isinstance(deep_kernel, Settings) else Settings(**dict(deep_kernel or {}))
+        # Meta-training uses the deep-kernel settings' own seed (0 unless given), not the search's:
+        # searches that share a history then share one cache entry.
+        self.settings = replace(dk, augment=augment)
+        self.use_meta = bool(tasks) and model in ("auto", "deep-kernel")
+        if cache_dir is False:
+            self.cache_dir: Path | None = None
+        elif cache_dir is None or cache_dir is True:
+            self.cache_dir = default_cache_dir()
+        else:
+            self.cache_dir = Path(cache_dir)
+        self._rng = np.random.default_rng(seed)
+        self._initial: list[dict[str, Any]] | None = None
+        self._k: int | None = None
+        self._meta: MetaModel | None = None
+        self._gp_state: dict[str, torch.Tensor] | None = None
+        self._gp_fits = 0
+        # Encodings of configurations seen so far (None: outside the space). A search hands the
+        # same observations to every round; each is validated and encoded once, not per round.
+        self._rows: dict[tuple[Any, ...], np.ndarray | None] = {}
+        self.meta_seconds: float | None = None  # time spent meta-training or loading the cache
+        self.meta_cached: bool | None = None  # whether the state came from the cache
+        self.last_choice: Choice | None = None
+        # The transfer guard's state across rounds: running prequential scores, and the
+        # observations (by encoding) that the kept models have already seen or scored.
+        self._preq = Prequential()
+        self._scored_keys: set[bytes] = set()
+
+    # -- meta-training and its cache -----------------------------------------
+
+    def meta_model(self) -> MetaModel | None:
+        """The meta-trained deep kernel (trained or loaded on first use), or ``None``."""
+        if not self.use_meta:
+            return None
+        if self._meta is None:
+            with _threads(self.threads):
+                self._meta = self._load_or_train()
+        return self._meta
+
+    def cache_path(self) -> Path | None:
+        if self.cache_dir is None or not self.use_meta:
+            return None
+        key = cache_key(self.history_hash(), self.space.to_dict(), self.settings)
+        return self.cache_dir / f"deep-kernel-{key}.pt"
+
+    def history_hash(self) -> str:
+        h = getattr(self.history, "hash", None)
+        if callable(h):
+            return str(h())
+        from forebear.records.history import History  # a plain list of tasks hashes like a History
+
+        return History(list(self.tasks)).hash()
+
+    def _load_or_train(self) -> MetaModel:
+        start = time.perf_counter()
+        meta = MetaModel(self.space.dim, self.settings, self.device)
+        path = self.cache_path()
+        if path is not None and path.is_file():
+            try:
+                meta.load_state_dict(torch.load(path, map_location=self.device, weights_only=True))
+                self.meta_seconds, self.meta_cached = time.perf_counter() - start, True
+                return meta
+            except (OSError, RuntimeError, ValueError, KeyError, EOFError, pickle.UnpicklingError):
+                meta = MetaModel(self.space.dim, self.settings, self.device)  # unreadable entry: retrain, overwrite
+        meta.meta_train([(t.X, t.y) for t in self.tasks])
+        self.meta_seconds, self.meta_cached = time.perf_counter() - start, False
+        if path is not None:
+            _save_state(meta.state_dict(), path)
+        return meta
+
+    # -- proposing -----------------------------------------------------------
+
+    def propose(
+        self,
+        n: int,
+        observed: Sequence[Observation],
+        failed: Sequence[Mapping[str, Any]] = (),
+        pending: Sequence[Mapping[str, Any]] = (),
+    ) -> list[Proposal]:
+        """``n`` new configurations, distinct from ``observed``, ``failed``, ``pending`` and each other."""
+        if n <= 0:
+            return []
+        with _threads(self.threads):
+            obs = [o for o in observed if self._row(o.config) is not None]
+            fail = [c for c in failed if self._row(c) is not None]
+            pend = [c for c in pending if self._row(c) is not None]
+            seen = set(acquisition.keys(self._encode([o.config for o in obs] + fail + pend)))
+            out: list[Proposal] = []
+            # The initial design covers the first k trials of a search; a search that already
+            # has k trials (say, one resumed from its logbook) goes straight to the model.
+            k = self._initial_size(n)
+            room = k - (len(obs) + len(fail) + len(pend))
+            if self._initial is None and room > 0:
+                self._initial = self._design(k)
+            for config in self._initial or ():
+                if len(out) >= min(n, room):
+                    break
+                key = acquisition.keys(self.space.encode(config)[None, :])[0]
+                if key not in seen:
+                    seen.add(key)
+                    out.append(Proposal(dict(config), "initial"))
+            scored = [o for o in obs if _finite(o.score)]
+            if len(out) < n and len(scored) >= (1 if self.use_meta else 2):
+                extra = pend + [p.config for p in out]
+                for p in self._model_batch(n - len(out), scored, fail, extra, seen):
+                    out.append(p)
+            tries = 0
+            while len(out) < n and tries < 200 * n:
+                tries += 1
+                config = self.space.sample(1, self._rng)[0]
+                key = acquisition.keys(self.space.encode(config)[None, :])[0]
+                if key not in seen:
+                    seen.add(key)
+                    out.append(Proposal(config, "random"))
+        return out
+
+    def _row(self, config: Mapping[str, Any]) -> np.ndarray | None:
+        """The encoding of ``config`` (memoised), or ``None`` when it lies outside the space."""
+        key = tuple((k, type(v).__name__, v) for k, v in sorted(config.items()))
+        if key not in self._rows:
+            self._rows[key] = self.space.encode(config) if self.space.contains(config) else None
+        return self._rows[key]
+
+    def _encode(self, configs: Sequence[Mapping[str, Any]]) -> np.ndarray:
+        """Encodings of configurations already checked by :meth:`_row`, shape ``(n, dim)``."""
+        rows = [self._row(c) for c in configs]
+        return np.vstack(rows) if rows else np.zeros((0, self.space.dim))
+
+    def _initial_size(self, n: int) -> int:
+        if self._k is None:
+            if self.n_initial is not None:
+                self._k = self.n_initial
+            elif self.tasks and self.warm_start:
+                self._k = n
+            else:
+                self._k = max(n, min(self.space.dim + 1, 10))
+        return self._k
+
+    def _design(self, k: int) -> list[dict[str, Any]]:
+        if not (self.tasks and self.warm_start):
+            return self.space.latin_hypercube(k, seed=self.seed)
+        meta = self.meta_model()
+        impute = None
+        if meta is not None:
+            tasks = self.tasks
+
+            def impute(j: int, Xq: np.ndarray) -> np.ndarray:
+                return meta.impute(tasks[j].X, tasks[j].y, Xq)
+
+        return initial_design(self.space, k, tasks=self.tasks, impute=impute, seed=self.seed, share=self.history_share)
+
+    def _model_batch(
+        self,
+        m: int,
+        scored: Sequence[Observation],
+        failed: Sequence[Mapping[str, Any]],
+        pending: Sequence[Mapping[str, Any]],
+        seen: set[bytes],
+    ) -> list[Proposal]:
+        X = self._encode([o.config for o in scored])
+        y = np.array([float(o.score) for o in scored])
+        Xf = self._encode(failed)
+        feas = None
+        if len(Xf) and self.failed == "impute":
+            # Failed configurations count as the worst observed score (docs/engine.md: measured better).
+            X, y = np.vstack([X, Xf]), np.concatenate([y, np.full(len(Xf), y.max())])
+        elif len(Xf):
+            feas = self._feasibility(X, Xf)
+        choice = self._choose(X, y, scored)
+        self.last_choice = choice
+        dev = choice.models[0].X.device
+        scorer = acquisition.Scorer(choice.models, choice.weights, float(y.min()), feas)
+        lie = acquisition.lie_value(y, self.lie)
+        Xp = self._encode(pending)
+        if len(Xp):
+            scorer = scorer.condition(as_tensor(Xp, dev), as_tensor(np.full(len(Xp), lie), dev))
+        taken = np.vstack([X, Xf, Xp]) if len(Xp) or len(Xf) else X
+        anchors = X[np.argsort(y, kind="stable")[:5]]
+        picks = acquisition.batch(
+            self.space, scorer, m, lie, taken=taken, anchors=anchors, rng=self._rng, n_sobol=self.n_candidates,
+        )
+        out = []
+        for x, value in picks:
+            config = self.space.decode(x)
+            key = acquisition.keys(self.space.encode(config)[None, :])[0]
+            if key in seen:
+                continue
+            seen.add(key)
+            out.append(Proposal(config, "model", choice.name, value if math.isfinite(value) else None))
+        return out
+
+    def _choose(self, X: np.ndarray, y: np.ndarray, scored: Sequence[Observation]) -> Choice:
+        """This round's models (deep kernel and/or plain GP) and the guard's choice among them.
+
+        Under the guard, the models kept from the previous round first score the
+        observations that are new this round (prequential log score), then this
+        round's models are kept for the next one.
+        """
+        models: dict[str, Any] = {}
+        meta = self.meta_model()
+        if meta is not None:
+            models["deep-kernel"] = meta.posterior(X, y, fine_tune=self.fine_tune, seed=self.seed)
+        guarded = meta is not None and self.model == "auto" and self.guard
+        if meta is None or (guarded and len(y) >= GUARD_FROM):
+            models["gp"] = self._fit_gp(X, y)
+        if not guarded:
+            return choose(models, None, prefer="deep-kernel")
+        keys = acquisition.keys(self._encode([o.config for o in scored]))
+        new = [i for i, k in enumerate(keys) if k not in self._scored_keys]
+        if new:
+            Xn = self._encode([scored[i].config for i in new])
+            self._preq.score(Xn, np.array([float(scored[i].score) for i in new]))
+            self._scored_keys.update(keys[i] for i in new)
+        choice = choose(models, self._preq, prefer="deep-kernel")
+        self._preq.keep(models)
+        return choice
+
+    def _fit_gp(self, X: np.ndarray, y: np.ndarray) -> Posterior:
+        # Warm-started from the previous round's hyperparameters; every fourth refit (and the
+        # first) also tries gpytorch's default start, so a poor local optimum is not kept forever.
+        self._gp_fits += 1
+        if self._gp_state is None:
+            restarts = 3 if len(y) <= 100 else 1  # a cold fit on many points is slow; one start
+        else:
+            restarts = 2 if self._gp_fits % 4 == 0 else 1
+        fit = fit_gp(X, y, restarts=restarts, init=self._gp_state, seed=self.seed, device=self.device)
+        self._gp_state = fit.state
+        return fit.posterior
+
+    def _feasibility(self, X_ok: np.ndarray, X_bad: np.ndarray) -> Posterior:
+        """GP regression on +1 (scored) / -1 (failed) labels (least-squares classification,
+        Rasmussen & Williams 2006, sec. 6.5); its probit gives a probability of feasibility."""
+        Xl = np.vstack([X_ok, X_bad])
+        labels = np.concatenate([np.ones(len(X_ok)), -np.ones(len(X_bad))])
+        return fit_gp(Xl, labels, restarts=1, seed=self.seed, device=self.device).posterior
+
+
+def _save_state(state: dict[str, torch.Tensor], path: Path) -> None:
+    """Write atomically (temporary file, then rename); a failed write leaves no partial entry."""
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True, mode=0o700)
+        fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=".deep-kernel-", suffix=".tmp")
+        os.close(fd)
+        try:
+            torch.save(state, tmp)
+            os.replace(tmp, path)
+        finally:
+            if os.path.exists(tmp):
+                os.unlink(tmp)
+    except OSError:
+        pass  # the cache is an optimisation; an unwritable cache folder must not stop a search
+
+
+@contextlib.contextmanager
+def _threads(n: int | None) -> Iterator[None]:
+    """Run with ``n`` torch threads, restoring the process-wide setting afterwards.
+
+    Small GP matrices gain nothing from more threads, and on a shared machine
+    extra threads spin and slow everything down.
+    """
+    old = torch.get_num_threads()
+    if n is None or n == old:
+        yield
+        return
+    torch.set_num_threads(n)
+    try:
+        yield
+    finally:
+        torch.set_num_threads(old)
+
+
+def _finite(x: Any) -> bool:
+    return isinstance(x, (int, float, np.floating)) and not isinstance(x, bool) and math.isfinite(float(x))

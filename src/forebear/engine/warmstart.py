@@ -1,0 +1,161 @@
+"""The initial design of a search.
+
+With history: an evolutionary search over history configurations for the
+``k`` configurations that minimise the sum over history tasks of the
+task-normalised best score within the set. A set member that a task did not
+observe gets that task's score imputed by the meta-trained model (or, without
+one, the task's worst normalised score, 1). Mutation replaces one member with
+another history configuration; crossover draws a child from the union of two
+good sets. Without history: a Latin hypercube scaled to the space (log
+parameters on their log scale).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Sequence
+from typing import Any
+
+import numpy as np
+
+from forebear.core.space import Space
+from forebear.engine.acquisition import keys
+
+# impute(task_index, X_query) -> task-normalised predicted scores in [0, 1]
+Imputer = Callable[[int, np.ndarray], np.ndarray]
+
+
+def initial_design(
+    space: Space,
+    k: int,
+    *,
+    tasks: Sequence[Any] = (),
+    impute: Imputer | None = None,
+    seed: int = 0,
+    generations: int = 120,
+    population: int = 24,
+    per_task: int | None = None,
+    share: float = 1.0,
+) -> list[dict[str, Any]]:
+    """``k`` distinct configurations to evaluate first.
+
+    Parameters
+    ----------
+    tasks
+        History tasks (``forebear.records.history.Task``); empty for a Latin hypercube.
+    impute
+        Predicts a task's normalised scores where it has none.
+    per_task
+        Each task contributes its ``per_task`` best configurations to the pool
+        (default ``max(2 k, 8)``).
+    share
+        Fraction of the ``k`` configurations taken from history (at least one);
+        a Latin hypercube fills the rest.
+    """
+    if not 0.0 <= share <= 1.0:
+        msg = f"share must be in [0, 1], got {share}"
+        raise ValueError(msg)
+    if k <= 0:
+        return []
+    tasks = [t for t in tasks if len(t.y)]
+    if not tasks:
+        return space.latin_hypercube(k, seed=seed)
+    rng = np.random.default_rng(seed)
+    pool_X, pool_cfg = _pool(tasks, per_task or max(2 * k, 8))
+    S = _score_matrix(tasks, pool_X, impute)
+    n_hist = max(1, int(round(share * k)))
+    chosen = evolve(S, min(n_hist, len(pool_cfg)), rng, generations=generations, population=population)
+    out = [pool_cfg[i] for i in chosen]
+    if len(out) < k:
+        # The share left to exploration, or too few distinct history configurations: a Latin hypercube.
+        have = set(keys(space.encode_many(out)))
+        for c in space.latin_hypercube(2 * k, seed=seed):
+            if len(out) >= k:
+                break
+            key = keys(space.encode(c)[None, :])[0]
+            if key not in have:
+                have.add(key)
+                out.append(c)
+    return out
+
+
+def _pool(tasks: Sequence[Any], per_task: int) -> tuple[np.ndarray, list[dict[str, Any]]]:
+    seen: dict[bytes, int] = {}
+    rows, cfgs = [], []
+    for t in tasks:
+        for i in np.argsort(t.y, kind="stable")[:per_task]:
+            key = keys(t.X[i : i + 1])[0]
+            if key not in seen:
+                seen[key] = len(rows)
+                rows.append(t.X[i])
+                cfgs.append(dict(t.configs[i]))
+    return np.asarray(rows), cfgs
+
+
+def _score_matrix(tasks: Sequence[Any], pool_X: np.ndarray, impute: Imputer | None) -> np.ndarray:
+    """``S[p, t]``: task-normalised score of pool member ``p`` on task ``t`` (observed or imputed)."""
+    pool_keys = keys(pool_X)
+    S = np.ones((len(pool_X), len(tasks)))
+    for j, t in enumerate(tasks):
+        lo, hi = float(t.y.min()), float(t.y.max())
+        norm = (t.y - lo) / (hi - lo) if hi > lo else np.zeros_like(t.y)
+        observed = dict(zip(keys(t.X), norm, strict=False))
+        if impute is not None:
+            S[:, j] = np.clip(impute(j, pool_X), 0.0, 1.0)
+        for p, key in enumerate(pool_keys):
+            if key in observed:
+                S[p, j] = observed[key]
+    return S
+
+
+def set_score(S: np.ndarray, members: np.ndarray) -> float:
+    """Sum over tasks of the best normalised score within the set."""
+    return float(S[members].min(axis=0).sum())
+
+
+def evolve(
+    S: np.ndarray,
+    k: int,
+    rng: np.random.Generator,
+    *,
+    generations: int = 120,
+    population: int = 24,
+) -> list[int]:
+    """Evolutionary search for the ``k`` rows of ``S`` with the lowest :func:`set_score`."""
+    P = len(S)
+    if k >= P:
+        return list(range(P))
+    pop = [_greedy(S, k)] + [rng.choice(P, size=k, replace=False) for _ in range(population - 1)]
+    fit = [set_score(S, m) for m in pop]
+    for _ in range(generations):
+        children = []
+        for _ in range(population):
+            a, b = _tournament(fit, rng), _tournament(fit, rng)
+            union = np.union1d(pop[a], pop[b])
+            child = rng.choice(union, size=k, replace=False) if len(union) > k else pop[a].copy()
+            # Mutation: one member replaced by a history configuration outside the set.
+            outside = np.setdiff1d(np.arange(P), child)
+            child[int(rng.integers(k))] = outside[int(rng.integers(len(outside)))]
+            children.append(child)
+        allp = pop + children
+        allf = fit + [set_score(S, c) for c in children]
+        order = np.argsort(allf, kind="stable")[:population]
+        pop, fit = [allp[i] for i in order], [allf[i] for i in order]
+    best = pop[int(np.argmin(fit))]
+    return [int(i) for i in sorted(best, key=lambda i: S[i].sum())]
+
+
+def _greedy(S: np.ndarray, k: int) -> np.ndarray:
+    members: list[int] = []
+    cur = np.full(S.shape[1], np.inf)
+    for _ in range(k):
+        gain = np.minimum(S, cur).sum(axis=1)
+        gain[members] = np.inf
+        i = int(np.argmin(gain))
+        members.append(i)
+        cur = np.minimum(cur, S[i])
+    return np.asarray(members)
+
+
+def _tournament(fit: list[float], rng: np.random.Generator) -> int:
+    a, b = rng.integers(len(fit), size=2)
+    return int(a if fit[a] <= fit[b] else b)

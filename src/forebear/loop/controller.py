@@ -1,0 +1,451 @@
+"""The controller: fold the logbook, propose, submit, collect, record.
+
+One controller drives a logbook at a time (:class:`forebear.records.logbook.ControllerLock`).
+It keeps at most ``concurrency`` attempts in flight; when slots free up it
+asks the proposer for a round of up to ``batch`` configurations (running
+trials are its pending points), records them as ``proposed`` and submits one
+attempt each. Results come back through ``as_completed``. A worker death
+(KilledWorker or a lost future) or a timeout is a ``lost`` attempt and is
+retried up to ``retries`` times, then the trial is ``failed``; an objective
+error is retried only with ``retry_errors``.
+
+Resuming: a logbook that already holds the search is continued. A spec that
+changed is refused with the list of changes (``extend`` allows a larger
+``trials`` or ``wall_time`` only). Attempts that were running when the last
+controller died and have no result in the logbook become ``lost`` (reason
+``restart``) and are resubmitted; results recorded meanwhile are kept.
+"""
+
+from __future__ import annotations
+
+import logging
+import os
+import secrets
+import signal
+import threading
+import time
+from collections import deque
+from collections.abc import Callable
+from concurrent.futures import Future
+from typing import Any
+
+from distributed import as_completed
+
+from forebear.cluster.dispatch import KEY_PREFIX, Dispatch, connect
+from forebear.cluster.runner import PROBE_NAME
+from forebear.core.spec import Spec
+from forebear.engine.proposer import Observation, Proposer
+from forebear.loop.attempts import Attempts
+from forebear.loop.book import Book, SearchResult
+from forebear.loop.proposing import ProposalEngine
+from forebear.loop.resume import SpecChanged, search_record, spec_changes
+from forebear.loop.stopping import Stop, deadline
+from forebear.records.logbook import (
+    ControllerLock,
+    Logbook,
+    LogbookError,
+    LogbookMismatch,
+    TrialTable,
+    check_header,
+    ensure_folder,
+    fold,
+    record,
+)
+
+log = logging.getLogger("forebear.loop.controller")
+
+RETRY_REASONS = ("worker", "timeout")  # lost attempts that use up a retry; restarts and interrupts do not
+BUDGET_KEYS = ("trials", "batch", "concurrency", "trial_timeout", "retries", "retry_errors", "wall_time")
+EXTENDABLE = ("trials", "wall_time")
+LOOKAHEAD = 2  # a new round starts when fewer proposals than free slots + this are ready
+RESOURCE_CHECK_EVERY = 5.0  # seconds between checks that some worker still offers the trials' resources
+
+
+# --------------------------------------------------------------------------
+# the loop
+
+
+class Controller(Attempts):
+    """Drives one search to its budget (see the module docstring).
+
+    Parameters
+    ----------
+    spec
+        The validated spec.
+    extend
+        Allow a larger ``trials`` / ``wall_time`` than the logbook's search had.
+    quiet
+        No progress display.
+    cancel_running
+        On Ctrl-C (or at the wall-time limit), kill running attempts instead of waiting.
+    dispatch
+        An existing :class:`Dispatch` to use instead of the spec's cluster (the plugin's).
+    handle_signals
+        Install the two-stage Ctrl-C handler (only possible in the main thread).
+    proposer
+        A :class:`Proposer` to use instead of the default one for the spec (benchmarks
+        configure the engine this way; the spec's history is then not loaded).
+    display
+        Makes the live progress display: called as ``display(trials, metric=..., quiet=...,
+        done=...)``, it returns an object with ``message``, ``update`` and ``close``
+        (:class:`forebear.face.progress.Progress`). Without it, messages go to stderr
+        unless ``quiet``.
+    """
+
+    def __init__(
+        self,
+        spec: Spec,
+        *,
+        extend: bool = False,
+        quiet: bool = True,
+        cancel_running: bool = False,
+        dispatch: Dispatch | None = None,
+        handle_signals: bool = True,
+        proposer: Proposer | None = None,
+        display: Callable[..., Any] | None = None,
+    ) -> None:
+        self.spec = spec
+        self._display = display
+        self._proposer = proposer
+        self.extend = extend
+        self.quiet = quiet
+        self.cancel_running = cancel_running
+        self.logbook = Logbook(spec.logbook, spec.lock, spec.lock_lifetime)
+        self.logs = spec.logbook.with_name(spec.logbook.stem + ".logs")
+        self._dispatch = dispatch
+        self._own_dispatch = dispatch is None
+        self.handle_signals = handle_signals and threading.current_thread() is threading.main_thread()
+        self.stop = Stop()
+        self.session = secrets.token_hex(4)
+        self.token = secrets.token_hex(16)
+        self.progress: Any = None  # the live display, made by ``display`` when the loop starts
+        self.book = Book()
+        self.inflight: dict[Any, tuple[int, int, dict[str, Any]]] = {}
+        self.retry_queue: deque[int] = deque()
+        self.shared: bool | None = None
+        self.ready: deque[int] = deque()  # proposed, recorded, not yet submitted
+        self._job: Future[list[Any]] | None = None
+        self._job_size = 0
+        self._exhausted = False
+        self._ac: as_completed | None = None
+        self._next_resource_check = time.monotonic() + RESOURCE_CHECK_EVERY
+
+    # -- output ---------------------------------------------------------------
+
+    def say(self, text: str) -> None:
+        log.info(text)
+        if self.progress is not None:
+            self.progress.message(text)
+        elif not self.quiet:
+            import sys
+
+            print(text, file=sys.stderr, flush=True)
+
+    # -- entry ----------------------------------------------------------------
+
+    def run(self) -> SearchResult:
+        """Run or resume the search; returns the folded result when it closes."""
+        lock = ControllerLock(self.logbook)
+        lock.acquire()
+        try:
+            return self._run_locked()
+        finally:
+            lock.release()
+
+    def _run_locked(self) -> SearchResult:
+        spec = self.spec
+        records, skipped = self.logbook.read()
+        if skipped and not records and b"\n" in spec.logbook.read_bytes():
+            # Whole lines and none of them ours: someone else's file. Writing would append to it and
+            # cut its last line as a torn record. (A lone torn first record has no newline: resumable.)
+            raise LogbookMismatch(
+                f"logbook {spec.logbook}: holds no forebear records ({skipped} unreadable line(s)); "
+                "not a forebear logbook, so nothing is written to it"
+            )
+        table = fold(records)
+        table.skipped = skipped
+        check_header(table, spec.logbook)
+        headers = [r for r in records if r.get("kind") == "search"]
+        new_header: dict[str, Any] | None = None
+        if headers:
+            changes, grew = spec_changes(headers[-1], spec, self.extend)
+            if changes:
+                raise SpecChanged(str(spec.logbook), changes)
+            if grew:
+                new_header = search_record(spec)
+        else:
+            new_header = search_record(spec)
+        self.book = Book.from_table(table)
+        if table.closed and self.book.finished >= spec.budget.trials and new_header is None:
+            self.say(f"search {spec.name} is already complete ({self.book.finished} trials finished); nothing to do")
+            return SearchResult.from_table(table, spec.logbook, str(table.closed.get("reason")))
+        proposer = self._proposer or Proposer(spec.space, history=load_history(spec, self.say), seed=spec.seed)
+        engine = ProposalEngine(proposer, self.say)
+        try:
+            if self._dispatch is None:
+                self._dispatch = connect(spec, self.say)
+            self._dispatch.check_resources(spec.resources)
+            if new_header is not None:
+                self.logbook.append(new_header)
+            return self._drive(engine, table)
+        finally:
+            engine.shutdown()
+            if self._own_dispatch and self._dispatch is not None:
+                self._dispatch.close()
+                self._dispatch = None
+
+    # -- setup ----------------------------------------------------------------
+
+    def _probe(self) -> None:
+        """Write the token workers look for to decide whether they share the logbook's filesystem."""
+        ensure_folder(self.logs)
+        path = self.logs / PROBE_NAME
+        fd = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o600)
+        try:
+            os.write(fd, self.token.encode())
+        finally:
+            os.close(fd)
+
+    def _check_shared(self) -> None:
+        from forebear.cluster.runner import reachable
+
+        assert self._dispatch is not None
+        fut = self._dispatch.client.submit(reachable, str(self.logs), self.token, pure=False, key=f"{KEY_PREFIX}probe-{self.session}")
+        try:
+            self.shared = bool(fut.result(timeout=30))
+        except Exception:  # noqa: BLE001 - no worker yet, or it cannot tell: results come back either way
+            self.shared = None
+            return
+        if not self.shared:
+            self.say(
+                f"note: the workers cannot see {self.logs.parent} (no shared filesystem); "
+                "the controller writes their records and logs from the results it collects"
+            )
+
+    def _reconcile(self, table: TrialTable) -> list[dict[str, Any]]:
+        """Records that settle what the last controller left: lost attempts and exhausted retries."""
+        recs: list[dict[str, Any]] = []
+        for t in table:
+            if t.terminal:
+                continue
+            if t.state == "running":
+                recs.append(record("lost", trial=t.trial, attempt=t.last_attempt, reason="restart"))
+                self.say(f"trial {t.trial}: attempt {t.last_attempt} was running when the last controller stopped; resubmitting")
+            self.book.state[t.trial] = "queued"
+            self.retry_queue.append(t.trial)
+        return recs
+
+    # -- the loop -------------------------------------------------------------
+
+    def _drive(self, engine: ProposalEngine, table: TrialTable) -> SearchResult:
+        spec = self.spec
+        budget = spec.budget
+        self._probe()
+        self._check_shared()
+        recs = self._reconcile(table)
+        if recs:
+            self.logbook.append_many(recs)
+        if self._display is not None:
+            self.progress = self._display(budget.trials, metric=spec.objective.metric, quiet=self.quiet, done=self.book.finished)
+        ends = deadline(budget.wall_time)
+        ac = as_completed(with_results=False)
+        self._ac = ac
+        previous = signal.getsignal(signal.SIGINT) if self.handle_signals else None
+        if self.handle_signals:
+            signal.signal(signal.SIGINT, self._on_sigint)
+        closed = "budget"
+        try:
+            while True:
+                if ends is not None and time.monotonic() >= ends and self.stop.reason is None:
+                    self.stop.reason = "wall_time"
+                    self.stop.cancel = True
+                    self.say(f"wall time {budget.wall_time:g} s reached: cancelling {len(self.inflight)} running attempt(s)")
+                if self.stop.cancel and self.inflight:
+                    self._cancel_all()
+                if self.stop.reason is None:
+                    self._harvest()
+                    self._fill(ac)
+                    self._propose_ahead(engine)
+                if not self.inflight:
+                    if self.stop.reason is not None:
+                        closed = self.stop.reason
+                        break
+                    if self._job is None and not self.ready and not self.retry_queue:
+                        if len(self.book.configs) < budget.trials:
+                            self.say("the proposer has no new configuration to offer (space exhausted); closing")
+                        break
+                self._watch_resources()
+                wait = 0.5 if ends is None else max(0.0, min(0.5, ends - time.monotonic()))
+                events = [self._collect(fut) for fut in _ready(ac, wait, self)]
+                if events and self.stop.reason is None:
+                    self._harvest()
+                    self._fill(ac)  # refill before showing, so "running" counts the new attempts
+                for event in events:
+                    if event:
+                        self._show(event)
+        except KeyboardInterrupt:
+            closed = "interrupted"
+            self.say("stopping at once")
+            self._cancel_all()
+            self._close(closed)
+            raise
+        except LogbookError:
+            # The logbook cannot be written: stop without writing more; what is recorded stays recorded.
+            self._cancel_all(record_lost=False)
+            raise
+        except BaseException as exc:
+            self._cancel_all(record_lost=False)
+            try:
+                self._close("error", error=f"{type(exc).__name__}: {exc}")
+            except LogbookError:
+                pass
+            raise
+        finally:
+            if self.handle_signals:
+                signal.signal(signal.SIGINT, previous)
+            if self.progress is not None:
+                self.progress.close()
+        return self._close(closed)
+
+    def _watch_resources(self) -> None:
+        """Fail instead of waiting forever when the workers that could run a trial are gone."""
+        if not self.spec.resources or self._dispatch is None:
+            return
+        now = time.monotonic()
+        if now < self._next_resource_check:
+            return
+        self._next_resource_check = now + RESOURCE_CHECK_EVERY
+        self._dispatch.check_resources(self.spec.resources)
+
+    def _close(self, reason: str, error: str | None = None) -> SearchResult:
+        table = self.logbook.fold()
+        best = table.best()
+        fields: dict[str, Any] = {"reason": reason, "best": best.trial if best else None}
+        if error:
+            fields["error"] = error
+        self.logbook.append(record("closed", **fields))
+        self.say(
+            f"search {self.spec.name} closed ({reason}): {table.counts()['scored']} scored, {table.counts()['failed']} failed"
+            + (f"; best trial {best.trial}: {self.spec.objective.metric} = {best.score:.6g}" if best else "; nothing scored")
+        )
+        return SearchResult.from_table(table, self.spec.logbook, reason)
+
+    def _on_sigint(self, signum: int, frame: Any) -> None:
+        self.stop.presses += 1
+        if self.stop.presses > 1:
+            raise KeyboardInterrupt
+        self.stop.reason = "interrupted"
+        if self.cancel_running:
+            self.stop.cancel = True
+            self.say("interrupted: cancelling running attempts (Ctrl-C again to stop at once)")
+        else:
+            self.say(f"interrupted: no new trials; waiting for {len(self.inflight)} running attempt(s) (Ctrl-C again to stop at once)")
+
+    def request_stop(self, cancel: bool = False) -> None:
+        """Stop proposing (and cancel running attempts with ``cancel``), as the first Ctrl-C does."""
+        self.stop.reason = "interrupted"
+        self.stop.cancel = cancel
+
+    # -- proposing ------------------------------------------------------------
+
+    def _propose_ahead(self, engine: ProposalEngine) -> None:
+        """Start a round of up to ``batch`` proposals off the loop when few are ready.
+
+        The round is computed while the workers run and starts while proposals are still
+        ready (``LOOKAHEAD``), so a worker that finishes gets its next trial without waiting
+        for a refit; a refit has about ``LOOKAHEAD`` trial completions' time to finish.
+        """
+        if self._job is not None or self._exhausted:
+            return
+        budget = self.spec.budget
+        free = budget.concurrency - len(self.inflight) - len(self.retry_queue)
+        left = budget.trials - len(self.book.configs)
+        if left <= 0 or len(self.ready) >= max(0, free) + LOOKAHEAD:
+            return
+        n = min(budget.batch, left)
+        sign = self.spec.objective.sign
+        observed = [Observation(self.book.configs[t], sign * s) for t, s in self.book.scores.items()]
+        failed = [self.book.configs[t] for t, s in self.book.state.items() if s == "failed"]
+        pending = [self.book.configs[t] for t, s in self.book.state.items() if s in ("queued", "running")]
+        self._job = engine.submit(n, observed, failed, pending)
+        self._job_size = n
+        self._job.add_done_callback(self._wake)
+
+    def _wake(self, _job: Any) -> None:
+        ac = self._ac
+        if ac is not None:
+            with ac.thread_condition:
+                ac.thread_condition.notify_all()
+
+    def _harvest(self) -> None:
+        """Record a finished round as ``proposed`` and queue its trials."""
+        job = self._job
+        if job is None or not job.done():
+            return
+        self._job = None
+        proposals = job.result()[: self._job_size]
+        if not proposals:
+            self._exhausted = True
+            return
+        round_no = self.book.rounds
+        self.book.rounds += 1
+        first = max(self.book.configs, default=-1) + 1
+        recs = []
+        for i, p in enumerate(proposals):
+            tid = first + i
+            recs.append(record("proposed", trial=tid, round=round_no, config=p.config, source=p.source, model=p.model, acquisition=p.acquisition))
+        self.logbook.append_many(recs)
+        for rec in recs:
+            tid = rec["trial"]
+            self.book.configs[tid] = dict(rec["config"])
+            self.book.state[tid] = "queued"
+            self.book.attempts[tid] = 0
+            self.book.charged[tid] = 0
+            self.ready.append(tid)
+
+    def _show(self, event: str) -> None:
+        if self.progress is None:
+            return
+        best_trial = None
+        best = None
+        if self.book.scores:
+            sign = self.spec.objective.sign
+            best_trial = min(self.book.scores, key=lambda t: (sign * self.book.scores[t], t))
+            best = self.book.scores[best_trial]
+        self.progress.update(
+            scored=self.book.count("scored"),
+            failed=self.book.count("failed"),
+            running=len(self.inflight),
+            best=best,
+            best_trial=best_trial,
+            event=event,
+        )
+
+
+def _ready(ac: as_completed, timeout: float, controller: Controller) -> list[Any]:
+    """Futures that completed, waiting up to ``timeout`` s for the first one or a finished round."""
+    # Check and wait under the iterator's condition: as_completed puts a future in its queue and
+    # then notifies under this condition, so a completion cannot slip between the check and the wait.
+    with ac.thread_condition:
+        job = controller._job
+        if not ac.has_ready() and not (job is not None and job.done()):
+            ac.thread_condition.wait(timeout)
+    return ac.next_batch(block=False) if ac.has_ready() else []
+
+
+def load_history(spec: Spec, say: Any) -> Any:
+    """The spec's history (``forebear.records.history.History``), or None for a cold start."""
+    if not spec.history:
+        return None
+    try:
+        from forebear.records import history as history_mod
+    except ImportError:
+        say("warning: forebear.records.history is not available in this build; starting without history")
+        return None
+    hist = history_mod.load(spec.history, spec.space, spec.objective.sense, exclude=[spec.logbook])
+    for w in getattr(hist, "warnings", []) or []:
+        say(f"history: {w}")
+    say(f"history: {len(hist)} earlier search(es)")
+    return hist if len(hist) else None
+
+

@@ -1,0 +1,4 @@
+"""Records: the logbook (the file-locked event log of a search, folded into a trial table) and history.
+
+Imports only :mod:`forebear.core`.
+"""

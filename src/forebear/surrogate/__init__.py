@@ -1,9 +1,0 @@
-"""Surrogate models: the plain GP, the meta-trained deep kernel, and the transfer guard."""
-
-from __future__ import annotations
-
-from forebear.surrogate.deep_kernel import MetaModel, Settings
-from forebear.surrogate.gp import GPFit, Posterior, fit_gp
-from forebear.surrogate.select import Choice, choose
-
-__all__ = ["Choice", "GPFit", "MetaModel", "Posterior", "Settings", "choose", "fit_gp"]
