@@ -173,3 +173,20 @@ def test_cuda_matches_cpu(trained: MetaModel) -> None:
     gpu.load_state_dict(trained.state_dict())
     X, y, Xs, _ = new_task(10)
     np.testing.assert_allclose(gpu.posterior(X, y).predict(Xs)[0], trained.posterior(X, y).predict(Xs)[0], atol=1e-8)
+
+
+def test_the_model_matern_equals_gpytorchs() -> None:
+    # Rasmussen & Williams 2006, eq. 4.17, against gpytorch's MaternKernel(nu=2.5); the
+    # training form (clamped distances) and the prediction form (cdist) agree.
+    import gpytorch
+
+    from forebear.engine.surrogate.deep_kernel import _cdist, _dist, _matern_r
+
+    rng = np.random.default_rng(0)
+    A, B = torch.as_tensor(rng.random((7, 3))), torch.as_tensor(rng.random((5, 3)))
+    ls = torch.tensor([0.2, 0.5, 1.3], dtype=torch.float64)
+    ref = gpytorch.kernels.MaternKernel(nu=2.5, ard_num_dims=3).double()
+    ref.lengthscale = ls
+    want = ref.forward(A, B).detach()
+    torch.testing.assert_close(_matern_r(_dist(A / ls, B / ls)), want, rtol=1e-6, atol=1e-9)
+    torch.testing.assert_close(_matern_r(_cdist(A / ls, B / ls)), want, rtol=1e-6, atol=1e-9)
