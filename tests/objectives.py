@@ -149,8 +149,68 @@ def stall_signal(config: dict[str, Any]) -> float:
     return quadratic(config)
 
 
+def gated(config: dict[str, Any]) -> float:
+    """Wait until ``$FOREBEAR_TEST_SIGNAL/open`` exists (at most 120 s), then score the bowl.
+
+    Keeps attempts running for exactly as long as a test needs them to.
+    """
+    gate = Path(os.environ["FOREBEAR_TEST_SIGNAL"]) / "open"
+    deadline = time.monotonic() + 120.0
+    while not gate.exists() and time.monotonic() < deadline:
+        time.sleep(0.05)
+    return quadratic(config)
+
+
 def lognormal_sleep(config: dict[str, Any]) -> float:
     """Sleep ``config['seconds']`` and return that duration (the overhead benchmark uses its own copy)."""
     seconds = float(config["seconds"])
     time.sleep(seconds)
     return seconds
+
+
+def huge_metrics(config: dict[str, Any]) -> dict[str, Any]:
+    """A good score beside a 3.5 MB text metric, a list and a NaN side metric (issue 15, item 2)."""
+    return {"loss": 0.125, "acc": 0.5, "blob": "b" * 3_500_000, "curve": [0.1] * 10, "side": float("nan")}
+
+
+def beyond_float(config: dict[str, Any]) -> int:
+    """An int too large for a double: scoring it must fail as a bad result, not as the objective."""
+    return 10**400
+
+
+def leave_processes(config: dict[str, Any]) -> float:
+    """Start a plain child and a grandchild that calls setsid, write their pids, then return (or hang).
+
+    The grandchild escapes the attempt's process group; only a subreaper finds it (issue 15, item 3).
+    """
+    import subprocess
+    import sys
+
+    plain = subprocess.Popen(["sleep", "300"])
+    # The middle process starts the setsid sleeper and exits at once: the sleeper is an orphan.
+    code = "import os, subprocess, sys; d = subprocess.DEVNULL; p = subprocess.Popen(['sleep', '301'], start_new_session=True, stdin=d, stdout=d, stderr=d); print(p.pid)"
+    escaped = int(subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout)
+    Path(config["pidfile"]).write_text(f"{plain.pid} {escaped}")
+    if config.get("hang"):
+        hang(config)
+    return 0.5
+
+
+def loud(config: dict[str, Any]) -> float:
+    """Print 50 MB to stdout and stderr together, then score (issue 15, item 12)."""
+    import sys
+
+    line = "x" * 1023 + "\n"
+    for i in range(50 * 1024):
+        (sys.stdout if i % 2 else sys.stderr).write(line)
+    sys.stderr.flush()
+    print("the last line", flush=True)
+    return 0.5
+
+
+def touch_memory(config: dict[str, Any]) -> float:
+    """Allocate and touch ``config['mb']`` MB (issue 15, item 6: cluster.local.memory_limit)."""
+    block = bytearray(int(config["mb"]) * 1024 * 1024)
+    for i in range(0, len(block), 4096):
+        block[i] = 1
+    return 0.5

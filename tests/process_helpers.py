@@ -39,3 +39,12 @@ def processes(target: Callable[..., Any], args: Sequence[tuple[Any, ...]], deadl
             if p.is_alive():
                 p.kill()
                 p.join(5)
+
+
+def until(check: Callable[[], Any], what: str, timeout: float) -> None:
+    """Poll ``check`` every 0.1 s until it is true; fail naming ``what`` after ``timeout`` seconds."""
+    deadline = time.monotonic() + timeout
+    while not check():
+        if time.monotonic() > deadline:
+            raise AssertionError(f"not within {timeout:g} s: {what}")
+        time.sleep(0.1)

@@ -9,8 +9,18 @@ from scipy.stats import norm
 
 from forebear.bench.functions import branin
 from forebear.core.space import Space
-from forebear.engine.acquisition import Scorer, batch, keys, lie_value, log_ei, log_h, project
+from forebear.engine.acquisition import (
+    POSTERIOR,
+    Scorer,
+    batch,
+    keys,
+    lie_value,
+    log_ei,
+    log_h,
+    project,
+)
 from forebear.engine.surrogate.gp import as_tensor, fit_gp
+from tests.test_gp import fixed_gp
 
 
 def closed_form_ei(mu: np.ndarray, s: np.ndarray, best: float) -> np.ndarray:
@@ -120,7 +130,45 @@ def test_project_equals_round_trip_on_a_mixed_space() -> None:
 
 
 def test_lie_values() -> None:
-    y = np.array([3.0, 1.0, 2.0])
-    assert [lie_value(y, k) for k in ("min", "mean", "max")] == [1.0, 2.0, 3.0]
+    # CL-min, CL-mean and CL-max of Ginsbourger, Le Riche and Carraro (2010), sec. 4: the lie is
+    # the minimum, mean or maximum of the scores observed so far (from memory). Unsorted, with a
+    # negative score and a mean that is no observation, so position or rounding would show.
+    y = np.array([0.5, -1.25, 4.0, 2.0])
+    assert [lie_value(y, k) for k in ("min", "mean", "max")] == [-1.25, 1.3125, 4.0]
+    assert lie_value(y, "posterior") == POSTERIOR
     with pytest.raises(ValueError, match="lie must be one of"):
         lie_value(y, "median")
+
+
+@pytest.mark.parametrize("lie", ["posterior", "max"])
+def test_a_pending_point_under_the_lie_is_an_observation_of_that_value(lie: str) -> None:
+    # Reference: scikit-learn's GaussianProcessRegressor with optimizer=None and the same fixed
+    # kernel (ConstantKernel * Matern(nu=2.5), alpha = noise), fitted with the pending points added
+    # as observations of the lie: a lie conditions the GP exactly as such an observation would
+    # (Ginsbourger, Le Riche & Carraro 2010, "Kriging is well-suited to parallelize
+    # optimization"; "posterior" is their kriging believer, "max" the constant liar CL-max).
+    # Targets are standardised once with the scores seen before the lie, as Posterior keeps
+    # them, so the reference uses normalize_y=False on the same standardised targets.
+    from sklearn.gaussian_process import GaussianProcessRegressor
+    from sklearn.gaussian_process.kernels import ConstantKernel, Matern
+
+    rng = np.random.default_rng(11)
+    X, Xp, Xs = rng.random((15, 2)), rng.random((3, 2)), rng.random((40, 2))
+    y = np.array([branin(x) for x in X])
+    ls, amp, noise = np.array([0.25, 0.4]), 1.3, 1e-4
+    post = fixed_gp(X, y, ls, amp, noise)
+    shift, scale = post.shift, post.scale
+    kernel = ConstantKernel(amp, "fixed") * Matern(length_scale=ls, length_scale_bounds="fixed", nu=2.5)
+    before = GaussianProcessRegressor(kernel, alpha=noise, optimizer=None).fit(X, (y - shift) / scale)
+    if lie == "posterior":
+        lies = shift + scale * before.predict(Xp)  # the model's own mean at each pending point
+    else:
+        lies = np.full(len(Xp), float(lie_value(y, lie)))
+    ref = GaussianProcessRegressor(kernel, alpha=noise, optimizer=None)
+    ref.fit(np.vstack([X, Xp]), (np.concatenate([y, lies]) - shift) / scale)
+    m_ref, s_ref = ref.predict(Xs, return_std=True)
+    scorer = Scorer([post], [1.0], float(y.min())).lie(as_tensor(Xp), lie_value(y, lie))
+    m, v = scorer.models[0].predict(Xs)
+    np.testing.assert_allclose(m, shift + scale * m_ref, rtol=1e-6, atol=1e-6 * scale)
+    np.testing.assert_allclose(v, (scale * s_ref) ** 2, rtol=1e-6, atol=1e-6 * scale**2)
+    assert scorer.best == float(y.min())  # neither lie is better than the best observed score

@@ -58,15 +58,35 @@ def test_search_completes_and_records_everything(tmp_path: Path, shared_loopback
     assert again.counts == result.counts
 
 
-def test_concurrency_never_exceeded(tmp_path: Path, shared_loopback: LoopbackCluster, monkeypatch: pytest.MonkeyPatch) -> None:
-    # The counter folder is read by the objective on the workers; the workers were started with this
-    # environment variable unset, so pass the folder through the configuration's seconds and a fixed path.
+def test_concurrency_never_exceeded(tmp_path: Path, shared_loopback: LoopbackCluster) -> None:
     counter = shared_loopback.folder / "counter"
     spec = make_spec(tmp_path, shared_loopback, call="objectives:counted", trials=6, concurrency=1, batch=1)
     result = forebear.run(spec)
     assert result.counts["scored"] == 6
     assert int((counter / "peak").read_text()) == 1
     assert int((counter / "running").read_text()) == 0
+
+
+def test_concurrency_three_runs_three_at_once_and_no_more(tmp_path: Path, loopback_factory: Any) -> None:
+    # Four workers, so the limit and not the cluster's size holds the count down; trials of 0.8
+    # to 1 s overlap, so three really run at once. The objective counts the attempts in flight on
+    # the workers under a file lock (tests/objectives.py:counted).
+    cluster = loopback_factory(workers=4)
+    counter = cluster.folder / "counter"
+    spec = make_spec(tmp_path, cluster, call="objectives:counted", trials=7, concurrency=3, batch=3)
+    spec["space"] = {"x": {"float": [0.0, 1.0]}, "seconds": {"float": [0.8, 1.0]}}
+    result = forebear.run(spec)
+    assert result.counts["scored"] == 7
+    assert int((counter / "peak").read_text()) == 3
+    assert int((counter / "running").read_text()) == 0
+    # The logbook agrees: never more than three attempts between `started` and `scored`.
+    recs = Logbook(tmp_path / "runs" / "ctl.jsonl").records()
+    events = sorted([(r["at"], +1) for r in recs if r["kind"] == "started"] + [(r["at"], -1) for r in recs if r["kind"] == "scored"])
+    level = peak = 0
+    for _, step in events:
+        level += step
+        peak = max(peak, level)
+    assert peak <= 3
 
 
 def test_objective_errors_fail_without_retry(tmp_path: Path, shared_loopback: LoopbackCluster) -> None:

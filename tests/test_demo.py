@@ -77,6 +77,15 @@ def test_reduced_demo_end_to_end(tmp_path: Path, capsys: pytest.CaptureFixture[s
         if line.startswith("  with history ") or line.startswith("  cold start "):
             values = [float(v) for v in line.split()[2:]]
             assert values == sorted(values, reverse=True), f"best-so-far must not rise: {line}"
+    # The gain it prints is the logbooks' own: the cold search's best minus the warm one's.
+    cold_best, warm_best = cold.best().score, warm.best().score
+    [gain_line] = [line for line in err.splitlines() if line.startswith("gain from history:")]
+    if cold_best - warm_best > 0:
+        assert gain_line == (f"gain from history: the final best is {cold_best - warm_best:.3f} points of MAPE lower "
+                             f"({warm_best:.3f} against {cold_best:.3f})")
+    else:
+        assert gain_line == (f"gain from history: none this time; the cold start ended {warm_best - cold_best:.3f} points "
+                             f"lower ({cold_best:.3f} against {warm_best:.3f})")
     assert (folder / "report" / "report.html").exists()
     assert (folder / "specs" / "coast-history.yaml").exists()
     # The written specs are valid on their own (cluster: local), so a user can rerun them.

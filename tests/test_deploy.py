@@ -3,7 +3,6 @@ TLS certificates work with a real scheduler, the local scripts start and stop a 
 
 from __future__ import annotations
 
-import importlib.util
 import os
 import re
 import shutil
@@ -178,7 +177,6 @@ def _with_jobqueue_config(section: str) -> dict[str, Any]:
     return {f"jobqueue.{section}.{k}": v for k, v in cfg.items()}
 
 
-@pytest.mark.skipif(importlib.util.find_spec("dask_jobqueue") is None, reason="dask-jobqueue is not installed (the slurm extra)")
 def test_slurm_jobqueue_yaml_renders_a_gpu_job_script(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
     import dask
 
@@ -193,7 +191,6 @@ def test_slurm_jobqueue_yaml_renders_a_gpu_job_script(tmp_path: Path, monkeypatc
     assert "--resources GPU=1" in script and "--nthreads 4" in script
 
 
-@pytest.mark.skipif(importlib.util.find_spec("dask_jobqueue") is None, reason="dask-jobqueue is not installed (the slurm extra)")
 def test_pbs_jobqueue_yaml_renders_a_gpu_job_script(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
     import dask
 
@@ -207,7 +204,6 @@ def test_pbs_jobqueue_yaml_renders_a_gpu_job_script(tmp_path: Path, monkeypatch:
     assert "--resources GPU=1" in script
 
 
-@pytest.mark.skipif(importlib.util.find_spec("dask_jobqueue") is None, reason="dask-jobqueue is not installed (the slurm extra)")
 @pytest.mark.parametrize("section", ["slurm", "pbs"])
 def test_deploy_specs_render_one_gpu_worker_per_job(section: str) -> None:
     """Through forebear's own dispatch: each job has one GPU, so exactly one worker may advertise it."""

@@ -53,7 +53,7 @@ def test_local_cluster_listens_on_loopback_only(tmp_path: Path) -> None:
     said: list[str] = []
     with connect(base(tmp_path, {"local": {"workers": 2}}), said.append) as d:
         assert d.kind == "local" and len(d.worker_resources()) == 2
-        assert any(s.startswith("dashboard: http://127.0.0.1:") for s in said)
+        assert d.dashboard is not None and d.dashboard.startswith("http://127.0.0.1:")  # the controller says the page link
         me = psutil.Process()
         listening = []
         for proc in [me, *me.children(recursive=True)]:
@@ -99,7 +99,6 @@ def _jobqueue_spec(tmp: Path, kind: str, certs: dict[str, str] | None, gpus: int
 
 
 def test_slurm_job_script(tmp_path: Path) -> None:
-    pytest.importorskip("dask_jobqueue")
     certs = _write_temporary_certs(tmp_path)
     cluster = jobqueue_cluster(_jobqueue_spec(tmp_path, "slurm", certs))
     try:
@@ -117,7 +116,6 @@ def test_slurm_job_script(tmp_path: Path) -> None:
 
 
 def test_pbs_job_script(tmp_path: Path) -> None:
-    pytest.importorskip("dask_jobqueue")
     cluster = jobqueue_cluster(_jobqueue_spec(tmp_path, "pbs", None, gpus=None))
     try:
         script = cluster.job_script()
@@ -139,7 +137,6 @@ def test_declared_resources(tmp_path: Path) -> None:
 
 
 def _write_temporary_certs(tmp: Path) -> dict[str, str]:
-    pytest.importorskip("cryptography")
     from distributed.security import Security
 
     from .test_tls import write_certs
@@ -167,3 +164,24 @@ def test_trials_run_on_workers_that_offer_the_resources(tmp_path: Path, loopback
 
     workers = {r["worker"] for r in Logbook(tmp_path / "gpu.jsonl").records() if r["kind"] == "started"}
     assert len(workers) == 1  # only the worker with the GPU resource ran trials
+
+
+def test_local_cluster_threads_memory_limit_and_dashboard_port(tmp_path: Path) -> None:
+    import socket
+    import urllib.request
+
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        port = s.getsockname()[1]
+    said: list[str] = []
+    spec = base(tmp_path, {"local": {"workers": 1, "threads": 2, "memory_limit": "1GiB", "dashboard": port}})
+    with connect(spec, said.append) as d:
+        workers = d.client.scheduler_info(n_workers=-1)["workers"]
+        assert len(workers) == 1
+        [info] = workers.values()
+        assert info["nthreads"] == 2
+        assert info["memory_limit"] == 2**30  # dask parses "1GiB" as 1024^3 bytes
+        assert said == [f"dashboard: http://127.0.0.1:{port}/status"], said
+        # The dashboard really serves on that port, on loopback.
+        with urllib.request.urlopen(f"http://127.0.0.1:{port}/health", timeout=10) as resp:
+            assert resp.status == 200 and resp.read() == b"ok"

@@ -10,31 +10,82 @@ from forebear.bench.families import (
     ANALYTIC,
     DATA,
     analytic_family,
+    held_out,
     hgb_family,
+    make_family,
     read_table,
+    searched,
     unit_space,
 )
 from forebear.bench.metadata import COLUMNS, TASKS, design, hgb_space, score
 
+# Published minimisers and minimum values, typed here from the Virtual Library of Simulation
+# Experiments (S. Surjanovic and D. Bingham, https://www.sfu.ca/~ssurjano/: branin.html,
+# hart3.html, hart6.html), from memory; independent of the constants in bench/functions.py.
+BRANIN_FSTAR = 0.397887
+BRANIN_XSTAR = ((-np.pi, 12.275), (np.pi, 2.275), (9.42478, 2.475))  # on [-5, 10] x [0, 15]
+HARTMANN3_FSTAR = -3.86278
+HARTMANN3_XSTAR = (0.114614, 0.555649, 0.852547)
+HARTMANN6_FSTAR = -3.32237
+HARTMANN6_XSTAR = (0.20169, 0.150011, 0.476874, 0.275332, 0.311652, 0.6573)
+PUBLISHED = {
+    "branin": (BRANIN_FSTAR, tuple(((a + 5.0) / 15.0, b / 15.0) for a, b in BRANIN_XSTAR)),
+    "hartmann3": (HARTMANN3_FSTAR, (HARTMANN3_XSTAR,)),
+    "hartmann6": (HARTMANN6_FSTAR, (HARTMANN6_XSTAR,)),
+}
+
+
+@pytest.mark.parametrize("name", sorted(PUBLISHED))
+def test_functions_take_the_published_minimum_at_the_published_minimisers(name: str) -> None:
+    fstar, minimisers = PUBLISHED[name]
+    f = ANALYTIC[name][0]
+    rng = np.random.default_rng(0)
+    for xstar in minimisers:
+        x = np.asarray(xstar)
+        # The library gives f* to 6 significant digits and x* to 5 or 6.
+        assert f(x) == pytest.approx(fstar, abs=2e-5), (name, xstar)
+        # A local minimum: no point of a small neighbourhood does better.
+        near = np.clip(x + rng.uniform(-0.01, 0.01, (400, len(x))), 0.0, 1.0)
+        assert min(f(z) for z in near) >= fstar - 2e-5
+    # A global one: a dense quasi-random design of the whole cube finds nothing lower.
+    from forebear.bench.families import sobol
+
+    assert min(f(z) for z in sobol(len(minimisers[0]), 4096, seed=1)) >= fstar - 2e-5
+
+
+def test_branin_in_its_own_coordinates() -> None:
+    # All three published minimisers in Branin's own domain, and the module's constants agree.
+    for x1, x2 in BRANIN_XSTAR:
+        assert functions.branin_raw(x1, x2) == pytest.approx(BRANIN_FSTAR, abs=1e-6)
+    assert functions.BRANIN_MIN == BRANIN_FSTAR and functions.HARTMANN3_MIN == HARTMANN3_FSTAR
+    assert functions.HARTMANN6_MIN == HARTMANN6_FSTAR
+    assert np.allclose(functions.BRANIN_ARGMIN, BRANIN_XSTAR, atol=1e-5)
+    # A point away from the minimisers, from the published formula by hand: at (0, 0)
+    # (0 - 6)^2 + 10 (1 - 1/(8 pi)) cos 0 + 10 = 56 - 10/(8 pi).
+    assert functions.branin_raw(0.0, 0.0) == pytest.approx(56.0 - 10.0 / (8.0 * np.pi), abs=1e-9)
+
 
 @pytest.mark.parametrize("name", sorted(ANALYTIC))
 def test_analytic_tasks_keep_the_published_minimum_inside(name: str) -> None:
-    # Minima and minimisers: Virtual Library of Simulation Experiments (see tests/references.md).
+    fstar, minimisers = PUBLISHED[name]
     fam = analytic_family(name, n_tasks=6, n_points=64, seed=3)
-    f, dim, fmin, argmin = ANALYTIC[name]
+    dim = len(minimisers[0])
     assert fam.space.dim == dim and len(fam.tasks) == 6
+    # Branin's family keeps the published minimiser (pi, 2.275) inside the square.
+    xstar = np.asarray(minimisers[1] if name == "branin" else minimisers[0])
     for task in fam.tasks:
         t = np.asarray(task.notes["shift"])
         s = task.notes["scale"]
         assert np.all(np.abs(t) <= 0.25) and 0.75 <= s <= 1.25
-        xstar = np.asarray(argmin) + t
-        assert np.all((xstar >= -1e-4) & (xstar <= 1 + 1e-4))
-        at_min = task.objective(fam.space.decode(np.clip(xstar, 0, 1)))
-        # notes round t to 4 digits, so the minimiser is only known to ~1e-4.
-        assert at_min == pytest.approx(task.low, abs=2e-3 * abs(fmin) + 2e-3)
-        assert task.low == pytest.approx(s * fmin, rel=1e-3)
+        shifted = xstar + t
+        assert np.all((shifted >= -1e-4) & (shifted <= 1 + 1e-4))
+        # The task is s * f(x - t): at the shifted published minimiser it takes s * f*
+        # (notes round t and s to 4 digits, hence the tolerance).
+        at_min = task.objective(fam.space.decode(np.clip(shifted, 0, 1)))
+        assert at_min == pytest.approx(s * fstar, rel=2e-4, abs=1e-4)
+        assert task.low == pytest.approx(s * fstar, rel=2e-4)
         # No design point beats the published minimum; the worst bound covers the design.
-        assert np.min(task.y) >= task.low - 1e-9
+        assert np.min(task.y) >= s * fstar * (1 + np.sign(fstar) * 2e-4) - 1e-9
         assert np.max(task.y) <= task.high
         r = task.regret(task.y)
         assert np.all((r >= 0) & (r <= 1))
@@ -45,10 +96,14 @@ def test_branin_family_uses_the_published_function() -> None:
     task = fam.tasks[0]
     t = np.asarray(task.notes["shift"])
     s = task.notes["scale"]
-    x = np.array([0.9, 0.7])
-    # Branin-Hoo (Virtual Library of Simulation Experiments), scaled and shifted.
-    expect = s * functions.branin(np.clip(x - t, 0, 1))
-    assert task.objective({"x0": 0.9, "x1": 0.7}) == pytest.approx(expect, rel=1e-3)
+    # The task at x is s * Branin(x - t) in Branin's own coordinates (the published formula
+    # written out here, Virtual Library of Simulation Experiments), at points away from the minima.
+    for u in ((0.7, 0.7), (0.4, 0.3), (0.3, 0.6)):  # x - t stays in the square
+        v = np.asarray(u) - t
+        x1, x2 = -5.0 + 15.0 * v[0], 15.0 * v[1]
+        b, c, r, w = 5.1 / (4 * np.pi**2), 5 / np.pi, 6.0, 1 / (8 * np.pi)
+        expect = s * ((x2 - b * x1**2 + c * x1 - r) ** 2 + 10 * (1 - w) * np.cos(x1) + 10)
+        assert task.objective({"x0": u[0], "x1": u[1]}) == pytest.approx(expect, rel=1e-3)
 
 
 def test_families_are_deterministic_and_tasks_differ() -> None:
@@ -77,6 +132,39 @@ def test_bad_family_arguments_name_the_problem() -> None:
         analytic_family("rosen")
     with pytest.raises(ValueError, match="n_tasks >= 2"):
         analytic_family("branin", n_tasks=1)
+
+
+def test_history_size_grows_the_family_but_keeps_the_held_out_tasks() -> None:
+    small = make_family("branin", n_tasks=3, n_points=16)
+    big = make_family("branin", n_tasks=3, n_points=16, history_tasks=4)
+    assert len(big.tasks) == 5 and held_out(big, 10) == [0, 1, 2]
+    # Task k is the same whatever the family's size, so runs with 3, 10 and 30 history tasks
+    # search the same held-out tasks.
+    assert [t.notes for t in big.tasks[:3]] == [t.notes for t in small.tasks]
+    assert [t.name for t in big.history_for(2).tasks] == [f"branin-{i}" for i in (0, 1, 3, 4)]
+    big.history_tasks = 2
+    assert [t.name for t in big.history_for(0).tasks] == ["branin-1", "branin-2"]
+    with pytest.raises(ValueError, match="history_kind must be one of sobol, searches"):
+        make_family("branin", history_kind="grid")
+    with pytest.raises(ValueError, match="family hgb has 24 tasks: at most 23 history tasks, got 30"):
+        make_family("hgb", history_tasks=30)
+
+
+def test_searched_history_is_a_cached_gp_search_near_each_optimum(tmp_path) -> None:
+    fam = make_family("branin", n_tasks=3, n_points=64, history_kind="searches")
+    fam.search_trials, fam.cache_dir = (10, 10), tmp_path
+    hist = fam.history_for(0)
+    assert [len(t.y) for t in hist.tasks] == [10, 10]
+    for t, j in zip(hist.tasks, (1, 2), strict=True):
+        task = fam.tasks[j]
+        assert np.allclose(t.y, [task.objective(c) for c in t.configs])
+        # A search's points sit nearer the optimum than the Sobol design's (median regret).
+        assert np.median(task.regret(t.y)) < np.median(task.regret(task.y))
+    assert len(list(tmp_path.glob("branin-branin-*.json"))) == 2
+    # The second time it is read from the cache: the objective is not called again.
+    fam.tasks[1].objective = None  # type: ignore[assignment]
+    configs, y = searched(fam, 1)
+    assert configs == hist.tasks[0].configs and np.array_equal(y, hist.tasks[0].y)
 
 
 def test_unit_space_is_identity_encoded() -> None:

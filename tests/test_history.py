@@ -149,3 +149,40 @@ def test_history_error_pickles() -> None:
     err = HistoryError("history table x.csv: line 3: bad")
     back = pickle.loads(pickle.dumps(err))
     assert type(back) is HistoryError and str(back) == str(err)
+
+
+SPEC_HEAD = """\
+objective: {call: m:f, minimize: val_loss}
+space:
+  learning_rate: {float: [1.0e-4, 0.3], log: true}
+  depth: {int: [2, 12]}
+  subsample: {float: [0.5, 1.0], default: 1.0}
+  booster: {categories: [tree, linear]}
+"""
+
+
+@pytest.mark.parametrize(
+    ("entry", "names"),
+    [
+        # A mapping with a glob, relative to the spec's folder: every matching logbook, in order.
+        ("history: {logbook: 'past/store-*.jsonl'}\n", ["store-1", "store-2"]),
+        # A single string entry (no list) naming one logbook.
+        ("history: past/store-2.jsonl\n", ["store-2"]),
+        # A single mapping entry naming one logbook.
+        ("history: {logbook: past/other.jsonl}\n", ["other"]),
+    ],
+)
+def test_history_forms_in_a_spec_file(tmp_path: Path, monkeypatch: pytest.MonkeyPatch, entry: str, names: list[str]) -> None:
+    from forebear.core import spec as spec_mod
+
+    folder = tmp_path / "project"
+    (folder / "past").mkdir(parents=True)
+    write_logbook(folder / "past" / "store-1.jsonl", [(cfg(depth=3), 0.5), (cfg(depth=5), 0.3)], name="store-1")
+    write_logbook(folder / "past" / "store-2.jsonl", [(cfg(depth=6), 0.7)], name="store-2")
+    write_logbook(folder / "past" / "other.jsonl", [(cfg(depth=8), 0.2)], name="other")
+    (folder / "search.yaml").write_text(SPEC_HEAD + entry)
+    monkeypatch.chdir(tmp_path)  # relative paths follow the spec's folder, not the working folder
+    s = spec_mod.load(folder / "search.yaml")
+    assert len(s.history) == 1 and s.history[0].logbook.startswith(str(folder.resolve()))
+    hist = load(s.history, s.space, s.objective.sense)
+    assert [t.name for t in hist.tasks] == names and not hist.warnings

@@ -235,21 +235,3 @@ def test_check_header(tmp_path: Path) -> None:
         check_header(fold([future]), p)
     with pytest.raises(LogbookMismatch, match="no search record"):
         check_header(fold([proposed(0)]), p)
-
-
-def test_write_failure_is_reported(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
-    from forebear.records import logbook as jmod
-
-    j = Logbook(tmp_path / "a.jsonl")
-    j.append(header())
-    before = j.path.read_bytes()
-
-    def failing_fsync(fd: int) -> None:
-        raise OSError(28, "No space left on device")
-
-    monkeypatch.setattr(jmod.os, "fsync", failing_fsync)
-    with pytest.raises(jmod.LogbookError, match="write failed: No space left on device"):
-        j.append(proposed(0))
-    monkeypatch.undo()
-    assert j.path.read_bytes().startswith(before)
-    assert j.read()[0][0] == json.loads(before)

@@ -77,18 +77,23 @@ def test_full_disk_is_reported_and_nothing_lost(tiny_fs: Path) -> None:
     assert recs[: len(kept)] == kept and recs[-1] == closing and skipped == 0
 
 
-def test_failing_fsync_keeps_earlier_records(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+@pytest.mark.parametrize(("code", "text"), [(5, "Input/output error"), (28, "No space left on device")])
+def test_failing_fsync_keeps_earlier_records(tmp_path: Path, monkeypatch: pytest.MonkeyPatch, code: int, text: str) -> None:
+    """A failing fsync (EIO from a dying disk, ENOSPC from a full one) is reported with the
+    system's words, and every record written before it stays readable byte for byte."""
     from forebear.records import logbook as jmod
 
     j = Logbook(tmp_path / "a.jsonl")
     kept = [record("proposed", trial=i, round=0, config={"x": i}, source="initial", model=None, acquisition=None) for i in range(5)]
     j.append_many(kept)
+    before = j.path.read_bytes()
 
-    def eio(fd: int) -> None:
-        raise OSError(5, "Input/output error")
+    def failing(fd: int) -> None:
+        raise OSError(code, text)
 
-    monkeypatch.setattr(jmod.os, "fsync", eio)
-    with pytest.raises(LogbookError, match="write failed: Input/output error"):
+    monkeypatch.setattr(jmod.os, "fsync", failing)
+    with pytest.raises(LogbookError, match=f"write failed: {text}"):
         j.append(record("closed", reason="budget", best=None))
     monkeypatch.undo()
+    assert j.path.read_bytes().startswith(before)
     assert j.read()[0][:5] == kept

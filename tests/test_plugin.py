@@ -3,9 +3,11 @@
 from __future__ import annotations
 
 import json
+import re
 import subprocess
 import sys
 import time
+import urllib.request
 from pathlib import Path
 from typing import Any
 
@@ -47,6 +49,12 @@ def wait_closed(logbook: Path, cluster: LoopbackCluster, saw_status: list[dict[s
         time.sleep(0.1)
 
 
+def served(link: str) -> dict[str, Any]:
+    """The page's status.json, loaded from the scheduler's HTTP server."""
+    with urllib.request.urlopen(link.replace("/forebear/?", "/forebear/status.json?"), timeout=30) as resp:
+        return json.load(resp)
+
+
 def test_detached_search_completes_after_the_client_exits(tmp_path: Path, loopback: LoopbackCluster) -> None:
     spec_path = tmp_path / "search.yaml"
     spec_path.write_text(yaml.safe_dump(spec_dict(tmp_path, loopback.address, trials=6)))
@@ -54,10 +62,13 @@ def test_detached_search_completes_after_the_client_exits(tmp_path: Path, loopba
                               env=child_env(), capture_output=True, text=True, timeout=120)
     assert launched.returncode == 0, launched.stderr
     assert "detached" in launched.stderr and "forebear status" in launched.stderr
+    link = next(line.split("dashboard: ", 1)[1] for line in launched.stderr.splitlines() if line.startswith("dashboard: "))
     # The launching process is gone; the search goes on inside the scheduler.
     status: list[dict[str, Any]] = []
     closed = wait_closed(tmp_path / "runs" / "hosted.jsonl", loopback, status)
     assert closed["reason"] == "budget"
+    # The scheduler's dashboard serves the search's page, its counts those of `forebear status`.
+    assert served(link)["counts"] == Logbook(tmp_path / "runs" / "hosted.jsonl").fold().counts()
     assert status and status[0]["search"] == "hosted"
     table = Logbook(tmp_path / "runs" / "hosted.jsonl").fold()
     assert table.counts()["scored"] == 6
@@ -73,6 +84,9 @@ def test_preload_runs_the_search_at_scheduler_start(tmp_path: Path, loopback_fac
     closed = wait_closed(tmp_path / "runs" / "hosted.jsonl", cluster)
     assert closed["reason"] == "budget"
     assert Logbook(tmp_path / "runs" / "hosted.jsonl").fold().counts()["scored"] == 3
+    found = re.search(r"search hosted: live page (\S+)", cluster.log("scheduler"))
+    assert found, cluster.log("scheduler")
+    assert served(found.group(1))["counts"]["scored"] == 3
 
 
 def test_preload_failure_is_loud_and_recorded(tmp_path: Path, loopback_factory: Any) -> None:

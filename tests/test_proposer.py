@@ -31,8 +31,8 @@ def mixed_score(c: dict) -> float:
 
 def test_cold_search_initial_then_model_and_never_repeats() -> None:
     p = Proposer(MIXED, seed=1)
-    first = p.propose(4, [])
-    assert [x.source for x in first] == ["initial"] * 4 and all(x.model is None for x in first)
+    first = p.propose(5, [])  # min(dim + 1, 10) with dim 4 (the categorical takes two coordinates)
+    assert [x.source for x in first] == ["initial"] * 5 and all(x.model is None for x in first)
     obs = [Observation(x.config, mixed_score(x.config)) for x in first]
     pending = [MIXED.sample(1, 7)[0]]
     nxt = p.propose(6, obs, pending=pending)
@@ -45,11 +45,24 @@ def test_cold_search_initial_then_model_and_never_repeats() -> None:
         MIXED.validate(x.config)
 
 
-def test_too_few_scores_fall_back_to_random() -> None:
+def test_too_few_scores_extend_the_design_instead_of_random_points() -> None:
     p = Proposer(SPACE2, seed=0, n_initial=2)
     first = p.propose(2, [])
     out = p.propose(3, [], failed=[first[0].config], pending=[first[1].config])
-    assert [x.source for x in out] == ["random"] * 3
+    assert [x.source for x in out] == ["initial"] * 3
+    # Space-filling: every new point keeps its distance from the two taken ones and from each other.
+    X = SPACE2.encode_many([x.config for x in first] + [x.config for x in out])
+    gaps = np.linalg.norm(X[:, None] - X[None, :], axis=2)[np.triu_indices(len(X), 1)]
+    assert gaps.min() > 0.2
+
+
+def test_initial_design_size_at_any_batch_size() -> None:
+    space6 = Space.from_dict({f"x{i}": {"float": [0.0, 1.0]} for i in range(6)})
+    big = Space.from_dict({f"x{i}": {"float": [0.0, 1.0]} for i in range(14)})
+    assert [Proposer(space6).initial_size(b) for b in (1, 4, 12)] == [7, 7, 12]
+    assert Proposer(big).initial_size(1) == 10 and Proposer(space6, n_initial=3).initial_size(8) == 3
+    first = Proposer(space6, seed=2).propose(7, [])
+    assert [x.source for x in first] == ["initial"] * 7
 
 
 def test_failed_configurations_are_not_proposed_again() -> None:
@@ -64,12 +77,43 @@ def test_failed_configurations_are_not_proposed_again() -> None:
     assert len(q.propose(5, obs, failed=failed)) == 5
 
 
+def test_failed_region_is_avoided_by_imputation_and_by_the_classifier() -> None:
+    """Scores improve towards a = 1, but every configuration with a > 0.7 failed (a crash region).
+
+    Told nothing of the failures the model follows the trend into the region; with
+    ``failed="impute"`` the failures enter the fit at the worst observed score, and with
+    ``failed="classifier"`` EI is multiplied by a probability of feasibility; both stay out.
+    """
+    space = Space.from_dict({"a": {"float": [0.0, 1.0]}, "b": {"float": [0.0, 1.0]}})
+    rng = np.random.default_rng(0)
+    ok = [{"a": float(a), "b": float(b)} for a, b in zip(rng.uniform(0, 0.6, 12), rng.random(12), strict=True)]
+    bad = [{"a": float(a), "b": float(b)} for a, b in zip(rng.uniform(0.7, 1.0, 10), rng.random(10), strict=True)]
+    obs = [Observation(c, (c["a"] - 1) ** 2 + (c["b"] - 0.5) ** 2) for c in ok]
+    worst = max(o.score for o in obs)
+
+    def region(out: list) -> int:
+        assert [x.source for x in out] == ["model"] * 4
+        return sum(x.config["a"] > 0.7 for x in out)
+
+    blind = Proposer(space, seed=0, n_initial=0)
+    assert region(blind.propose(4, obs)) >= 2
+    imputed = Proposer(space, seed=0, n_initial=0, failed="impute")
+    assert region(imputed.propose(4, obs, failed=bad)) == 0
+    # The fit saw the failures, each at the worst observed score.
+    model = imputed.last_choice.models[0]
+    assert len(model.X) == len(ok) + len(bad)
+    np.testing.assert_allclose(model.y[len(ok):].numpy(), worst)
+    classed = Proposer(space, seed=0, n_initial=0, failed="classifier")
+    assert region(classed.propose(4, obs, failed=bad)) == 0
+    assert len(classed.last_choice.models[0].X) == len(ok)  # failures stay out of the regression
+
+
 def test_history_warm_start_deep_kernel_then_guard(tmp_path: Path) -> None:
     hist = make_history(6, 40, seed=0)
     p = Proposer(SPACE3, hist, seed=0, deep_kernel=DK, cache_dir=tmp_path)
-    first = p.propose(3, [])
+    first = p.propose(4, [])  # the warm-start design: min(dim + 1, 10) configurations
     pool = {key(c) for t in hist.tasks for c in t.configs}
-    assert [x.source for x in first] == ["initial"] * 3 and all(key(x.config) in pool for x in first)
+    assert [x.source for x in first] == ["initial"] * 4 and all(key(x.config) in pool for x in first)
     f = lambda c: float(np.sum((_vec(SPACE3, c) - 0.3) ** 2))  # noqa: E731
     obs = [Observation(x.config, f(x.config)) for x in first]
     second = p.propose(3, obs)
@@ -106,7 +150,7 @@ def test_switches_are_real(tmp_path: Path) -> None:
     hist = make_history(4, 30, seed=2)
     gp = Proposer(SPACE3, hist, seed=0, model="gp", cache_dir=tmp_path)
     assert gp.meta_model() is None
-    first = gp.propose(3, [])
+    first = gp.propose(4, [])
     obs = [Observation(x.config, float(_vec(SPACE3, x.config).sum())) for x in first]
     assert {x.model for x in gp.propose(2, obs)} == {"gp"}
     cold = Proposer(SPACE3, hist, seed=0, warm_start=False, deep_kernel=DK, cache_dir=tmp_path)
@@ -135,10 +179,33 @@ def test_bad_arguments_are_named() -> None:
 
 
 def test_threads_are_restored() -> None:
+    # The setting is applied while proposing (observed from inside the proposer's own design
+    # and model steps) and the process-wide value comes back afterwards.
+    inside: list[int] = []
+
+    class Watched(Proposer):
+        def _design(self, k: int):  # noqa: ANN202 - the parent's return type
+            inside.append(torch.get_num_threads())
+            return super()._design(k)
+
+        def _model_batch(self, *args, **kwargs):  # noqa: ANN002, ANN003, ANN202
+            inside.append(torch.get_num_threads())
+            return super()._model_batch(*args, **kwargs)
+
     before = torch.get_num_threads()
-    p = Proposer(SPACE2, seed=0, threads=1)
-    p.propose(2, [])
-    assert torch.get_num_threads() == before
+    torch.set_num_threads(2)
+    try:
+        p = Watched(SPACE2, seed=0, threads=1)
+        first = p.propose(3, [])
+        obs = [Observation(x.config, branin(_vec(SPACE2, x.config))) for x in first]
+        p.propose(1, obs)
+        assert inside == [1, 1] and torch.get_num_threads() == 2
+        # threads=None leaves the process's setting alone, also inside.
+        inside.clear()
+        Watched(SPACE2, seed=0, threads=None).propose(2, [])
+        assert inside == [2] and torch.get_num_threads() == 2
+    finally:
+        torch.set_num_threads(before)
 
 
 def branin_run(seed: int, trials: int = 30) -> float:

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import os
 import re
 import shutil
 import subprocess
@@ -9,6 +10,7 @@ import threading
 import time
 from pathlib import Path
 
+import numpy as np
 import pytest
 from click.testing import CliRunner
 
@@ -85,6 +87,67 @@ def test_report_writes_page_and_plots(tmp_path: Path) -> None:
     assert "scored 15" in text and "failed 1" in text
 
 
+def test_plots_show_the_logbooks_data(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    """The figures write_report saves, read back through their axes: the best-so-far line is the
+    running minimum of the scores in the order the logbook records them finishing; the timeline
+    has one bar per attempt, as long as the attempt ran; each parameter panel plots every scored
+    trial at its value and score."""
+    from forebear.face import report as report_mod
+
+    figures: dict[str, object] = {}
+    real = report_mod._save
+
+    def keep(fig, path: Path) -> None:  # noqa: ANN001 - a matplotlib Figure
+        figures[path.name] = fig
+        real(fig, path)
+
+    monkeypatch.setattr(report_mod, "_save", keep)
+    j = _logbook(tmp_path / "p.jsonl", n=16)
+    write_report(j.fold(), tmp_path / "rep", logbook=j.path)
+    recs = j.records()
+
+    # Independently of the report's code: first terminal record of each trial, in logbook order.
+    finished: dict[int, dict] = {}
+    for r in sorted((r for r in recs if r["kind"] in ("scored", "failed")), key=lambda r: r["at"]):
+        finished.setdefault(r["trial"], r)
+    order = list(finished.values())
+    running, best = [], None
+    for r in order:
+        if r["kind"] == "scored":
+            best = r["score"] if best is None else min(best, r["score"])
+        running.append(best)
+    ax = figures["best_so_far.png"].axes[0]
+    [line] = [ln for ln in ax.get_lines() if ln.get_label() == "best so far"]
+    xs = [i for i, b in enumerate(running, start=1) if b is not None]
+    np.testing.assert_array_equal(line.get_xdata(), xs)
+    np.testing.assert_allclose(line.get_ydata(), [b for b in running if b is not None])
+    assert line.get_ydata()[-1] == pytest.approx(min(r["score"] for r in recs if r["kind"] == "scored"))
+    [fails] = [ln for ln in ax.get_lines() if ln.get_label() == "failed"]
+    assert list(fails.get_xdata()) == [i for i, r in enumerate(order, start=1) if r["kind"] == "failed"]
+
+    # Timeline: one bar per started attempt, width = end - start (the lost attempt ends at its record).
+    ax = figures["timeline.png"].axes[0]
+    bars = sorted(round(b.get_width(), 6) for b in ax.patches)
+    starts = {(r["trial"], r["attempt"]): r["at"] for r in recs if r["kind"] == "started"}
+    ends: dict[tuple[int, int], float] = {}
+    for r in recs:
+        if r["kind"] in ("scored", "failed", "lost"):
+            ends[(r["trial"], r.get("attempt", 1))] = r["at"]
+    assert bars == sorted(round(ends[k] - starts[k], 6) for k in starts)
+
+    # Parameters: each panel's points are the scored trials' (value, score) pairs.
+    table = j.fold()
+    scored = {t.trial: t for t in table.scored()}
+    panels = {a.get_title(): a for a in figures["parameters.png"].axes if a.get_visible()}
+    assert set(panels) == {p.name for p in SPACE.params}
+    for p in SPACE.params:
+        points = panels[p.name].collections[0].get_offsets()
+        assert len(points) == len(scored) == 15
+        np.testing.assert_allclose(sorted(points[:, 1]), sorted(t.score for t in scored.values()))
+        if p.kind != "categorical":
+            np.testing.assert_allclose(sorted(points[:, 0]), sorted(t.config[p.name] for t in scored.values()))
+
+
 def test_report_maximize_ranks_highest_first(tmp_path: Path) -> None:
     j = _logbook(tmp_path / "m.jsonl", n=12, sense="maximize")
     text = write_report(j.fold(), tmp_path / "rep").read_text()
@@ -157,7 +220,16 @@ def _chromium() -> str | None:
     return shutil.which("chromium") or shutil.which("chromium-browser") or shutil.which("google-chrome")
 
 
-@pytest.mark.skipif(_chromium() is None, reason="headless Chromium is not installed (Debian package chromium; .ci/run installs it)")
+# Outside CI a missing browser is a missing system dependency: skip and say so. In CI (CI=true)
+# .ci/run installs Chromium, so the test runs and a missing browser fails it.
+IN_CI = os.environ.get("CI", "").lower() == "true"
+NEEDS_CHROMIUM = pytest.mark.skipif(
+    _chromium() is None and not IN_CI,
+    reason="headless Chromium is not installed (Debian package chromium; .ci/run installs it)",
+)
+
+
+@NEEDS_CHROMIUM
 def test_report_renders_in_headless_chromium(tmp_path: Path) -> None:
     j = _logbook(tmp_path / "b.jsonl", n=20)
     page = write_report(j.fold(), tmp_path / "rep", logbook=j.path)
@@ -168,7 +240,7 @@ def test_report_renders_in_headless_chromium(tmp_path: Path) -> None:
     assert "<table id=\"best\">" in dom
 
 
-@pytest.mark.skipif(_chromium() is None, reason="headless Chromium is not installed (Debian package chromium; .ci/run installs it)")
+@NEEDS_CHROMIUM
 def test_chromium_check_detects_a_missing_plot(tmp_path: Path) -> None:
     """The marker really depends on the images: delete one PNG and it reports it missing."""
     j = _logbook(tmp_path / "b.jsonl", n=6)
@@ -179,8 +251,10 @@ def test_chromium_check_detects_a_missing_plot(tmp_path: Path) -> None:
 
 
 def _dump_dom(page: Path, profile: Path) -> str:
+    browser = _chromium()
+    assert browser is not None, "CI=true but no headless Chromium on PATH: .ci/run should have installed it"
     cmd = [
-        _chromium(), "--headless", "--no-sandbox", "--disable-gpu", "--disable-background-networking",
+        browser, "--headless", "--no-sandbox", "--disable-gpu", "--disable-background-networking",
         "--disable-dev-shm-usage", f"--user-data-dir={profile}", "--virtual-time-budget=5000",
         "--dump-dom", page.resolve().as_uri(),
     ]

@@ -11,8 +11,8 @@ from pathlib import Path
 import pytest
 
 from forebear.cluster import runner
-from forebear.cluster.child import BadScore, score_of, score_of_stdout
 from forebear.cluster.runner import AttemptTask, run_attempt
+from forebear.cluster.scoring import BadScore, score_of, score_of_stdout
 from forebear.records.logbook import Logbook, fold
 
 

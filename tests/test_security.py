@@ -198,7 +198,6 @@ def _client(address: str, ca: str, cert: str | None, key: str | None) -> Any:
 
 @pytest.mark.timeout(300)
 def test_mutual_tls_refuses_another_authority(tmp_path: Path, loopback_factory: Callable[..., LoopbackCluster]) -> None:
-    pytest.importorskip("cryptography")
     ours = _authority(tmp_path / "certs", "ours")
     theirs = _authority(tmp_path / "certs", "theirs")
     cluster = loopback_factory(tls=ours, workers=1)

@@ -120,11 +120,32 @@ def test_mutation_is_valid_and_moves(config: dict, seed: int) -> None:
 
 
 def test_mutation_changes_requested_count() -> None:
+    # Exactly n parameters change, compared type-aware: a switch between True and 1 is a change.
+    space = Space.from_dict({
+        "lr": {"float": [1e-4, 1e-1], "log": True},
+        "depth": {"int": [1, 12]},
+        "flag": {"categories": [True, 1, "one"]},
+        "kind": {"categories": ["a", "b"]},
+        "x": {"float": [0.0, 1.0]},
+    })
+
+    def changed(a: dict, b: dict) -> set[str]:
+        return {k for k in a if type(a[k]) is not type(b[k]) or a[k] != b[k]}
+
     rng = np.random.default_rng(0)
-    base = SPACE.sample(1, 1)[0]
-    for n in (1, 2, 4):
-        new = SPACE.mutate(base, rng, n_params=n)
-        assert sum(new[k] != base[k] for k in base) <= n
+    for trial in range(40):
+        base = space.sample(1, trial)[0]
+        for n in (1, 2, 3, 5):
+            new = space.mutate(base, rng, n_params=n)
+            space.validate(new)
+            assert len(changed(base, new)) == n, (base, new, n)
+    # From True the flag moves to 1 or "one", never stays True under another name.
+    base = {"lr": 1e-3, "depth": 3, "flag": True, "kind": "a", "x": 0.5}
+    seen = set()
+    for _ in range(60):
+        new = space.mutate(base, rng, n_params=5)
+        seen.add(repr(new["flag"]))
+    assert seen == {"1", "'one'"}
 
 
 def test_space_dict_round_trip() -> None:

@@ -9,14 +9,11 @@ from pathlib import Path
 from typing import Any
 
 import pytest
+from distributed import Client
+from distributed.security import Security
 
-pytest.importorskip("cryptography")  # Security.temporary() needs it (the dev extra installs it)
-
-from distributed import Client  # noqa: E402 - after the skip above
-from distributed.security import Security  # noqa: E402
-
-import forebear  # noqa: E402
-from forebear.cluster.dispatch import ClusterError  # noqa: E402
+import forebear
+from forebear.cluster.dispatch import ClusterError, connect
 
 
 def write_certs(sec: Security, folder: Path) -> dict[str, str]:
@@ -91,3 +88,39 @@ def test_tls_search_and_refusals(tmp_path: Path, loopback_factory: Any, certs: d
     stranger = write_certs(Security.temporary(), tmp_path / "stranger")
     with pytest.raises(ClusterError, match="cannot connect to the scheduler"):
         forebear.run(spec_for(tmp_path / "other", cluster.address, stranger))
+
+
+def test_tls_paths_relative_to_the_spec_and_under_home(tmp_path: Path, loopback_factory: Any, certs: dict[str, str],
+                                                        monkeypatch: pytest.MonkeyPatch) -> None:
+    """``cluster.tls`` paths relative to the spec file's folder, and ``~/...`` under $HOME, reach a
+    real TLS scheduler; the working folder plays no part."""
+    import shutil
+
+    import yaml
+
+    from forebear.core import spec as spec_mod
+
+    cluster = loopback_factory(tls=certs)
+    project, home, elsewhere = tmp_path / "project", tmp_path / "home", tmp_path / "elsewhere"
+    for folder in (project / "certs", home / ".forebear-tls", elsewhere):
+        folder.mkdir(parents=True)
+    for name, path in certs.items():
+        shutil.copy(path, project / "certs" / f"{name}.pem")
+        shutil.copy(path, home / ".forebear-tls" / f"{name}.pem")
+    monkeypatch.setenv("HOME", str(home))
+    monkeypatch.chdir(elsewhere)
+    for tag, tls, where in (("relative", "certs", project / "certs"), ("home", "~/.forebear-tls", home / ".forebear-tls")):
+        spec = spec_for(project, cluster.address, {k: f"{tls}/{k}.pem" for k in ("ca", "cert", "key")})
+        spec["logbook"] = f"runs/{tag}.jsonl"
+        path = project / f"{tag}.yaml"
+        path.write_text(yaml.safe_dump(spec))
+        loaded = spec_mod.load(path)
+        assert loaded.cluster.tls == {k: str((where / f"{k}.pem").resolve()) for k in ("ca", "cert", "key")}
+        if tag == "relative":
+            result = forebear.run(path)
+            assert result.counts["scored"] == 3
+            assert (project / "runs" / "relative.jsonl").exists() and not list(elsewhere.iterdir())
+        else:
+            # The same connection without a second search: the client reaches the TLS scheduler.
+            with connect(loaded, lambda _: None) as d:
+                assert len(d.client.scheduler_info(n_workers=-1)["workers"]) == 2

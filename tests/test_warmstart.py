@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import itertools
+from collections import Counter
 
 import numpy as np
 import pytest
@@ -15,12 +16,28 @@ SPACE = Space.from_dict({"a": {"float": [0.0, 1.0]}, "b": {"int": [1, 9]}, "c": 
 
 
 def test_without_history_a_latin_hypercube() -> None:
-    design = initial_design(SPACE, 9, seed=3)
-    assert len(design) == 9
-    strata = sorted(int(c["a"] * 9) for c in design)
-    assert strata == list(range(9))  # one point per stratum of the float parameter
-    assert sorted(c["b"] for c in design) == list(range(1, 10))
-    assert design == SPACE.latin_hypercube(9, seed=3)
+    # The defining property of a Latin hypercube (McKay, Beckman and Conover 1979): cut each
+    # coordinate's range into n equal strata; every stratum holds exactly one of the n points.
+    # Checked on the configurations themselves, each parameter mapped to its own scale here.
+    space = Space.from_dict({
+        "a": {"float": [-2.0, 3.0]},
+        "lr": {"float": [1e-4, 1e-1], "log": True},
+        "b": {"int": [1, 9]},
+        "c": {"categories": ["x", "y", "z"]},
+    })
+    for n, seed in ((9, 3), (27, 11)):
+        design = initial_design(space, n, seed=seed)
+        assert len(design) == n
+        a = np.array([c["a"] for c in design])
+        lr = np.log10([c["lr"] for c in design])
+        for u in ((a + 2.0) / 5.0, (lr + 4.0) / 3.0):
+            assert sorted(np.floor(u * n).astype(int)) == list(range(n))
+        # Integers carry equal mass (each owns a step of the range widened by half a step), so
+        # n = 9 strata put each of 1..9 once and n = 27 each three times; categories likewise.
+        assert Counter(c["b"] for c in design) == {v: n // 9 for v in range(1, 10)}
+        assert Counter(c["c"] for c in design) == {"x": n // 3, "y": n // 3, "z": n // 3}
+    # Another seed, another design with the same property.
+    assert initial_design(space, 9, seed=4) != initial_design(space, 9, seed=3)
 
 
 def test_evolve_finds_the_best_set_on_a_small_problem() -> None:

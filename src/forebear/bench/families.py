@@ -20,13 +20,27 @@ Two kinds of family:
   surrogate benchmarks (Eggensperger et al. 2015).
 
 Normalised regret of a value ``y`` on a task is ``(y - low) / (high - low)``.
+
+What a history task holds (``history_kind``): ``"sobol"``, its design above;
+or ``"searches"``, what a user's earlier search of it would have left: 20-50
+trials (drawn per task) of forebear's plain-GP search (``Proposer`` with
+``model="gp"``, run synchronously one trial at a time), so the points cluster
+near that task's optimum. Those searches are cached on disk (see
+``searched``). ``history_tasks`` sets how many other tasks a held-out task's
+history holds (the first ones of the family, in order, so a smaller history
+is part of a larger one); an analytic family grows to hold them, while the
+held-out tasks stay among the first ``n_tasks``.
 """
 
 from __future__ import annotations
 
 import csv
 import gzip
+import hashlib
+import json
 import math
+import os
+import tempfile
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -40,6 +54,11 @@ from forebear.core.space import Param, Space
 from forebear.records.history import History, Task
 
 DATA = Path(__file__).parent / "data" / "hgb_tasks.csv.gz"
+HISTORY_KINDS = ("sobol", "searches")
+#: Trials of one searched history task, drawn per task from this range (inclusive).
+SEARCH_TRIALS = (20, 50)
+#: Bump when the way searched histories are made changes: older cache entries are then ignored.
+_SEARCH_FORMAT = 1
 
 # name -> (function, dimension, published minimum, one published minimiser in unit coordinates)
 _BRANIN_ARGMIN_UNIT = tuple(((a + 5.0) / 15.0, b / 15.0) for a, b in functions.BRANIN_ARGMIN)
@@ -72,24 +91,75 @@ class BenchTask:
 
 @dataclass
 class Family:
-    """Related tasks over one space; the history of a task is the others' designs."""
+    """Related tasks over one space; the history of a task is the others' designs or searches.
+
+    ``pool``: held-out tasks are chosen among the first ``pool`` tasks (all when ``None``).
+    """
 
     name: str
     space: Space
     tasks: list[BenchTask]
     source: str
+    history_kind: str = "sobol"
+    history_tasks: int | None = None
+    pool: int | None = None
+    search_trials: tuple[int, int] = SEARCH_TRIALS
+    cache_dir: Path | None = None
 
     def history_for(self, index: int) -> History:
         """The other tasks of the family as a ``History`` (leave one task out)."""
         if not 0 <= index < len(self.tasks):
             msg = f"family {self.name}: task index {index} outside 0..{len(self.tasks) - 1}"
             raise IndexError(msg)
+        others = [j for j in range(len(self.tasks)) if j != index]
+        if self.history_tasks is not None:
+            others = others[: self.history_tasks]
         out = []
-        for j, t in enumerate(self.tasks):
-            if j == index:
-                continue
-            out.append(Task(t.name, [dict(c) for c in t.configs], self.space.encode_many(t.configs), np.asarray(t.y, dtype=float)))
+        for j in others:
+            t = self.tasks[j]
+            configs, y = (t.configs, t.y) if self.history_kind == "sobol" else searched(self, j)
+            out.append(Task(t.name, [dict(c) for c in configs], self.space.encode_many(configs), np.asarray(y, dtype=float)))
         return History(out, [])
+
+
+def searched(family: Family, index: int) -> tuple[list[dict[str, Any]], np.ndarray]:
+    """Configurations and scores of a plain-GP search of task ``index``, as a user's earlier search.
+
+    The trial count is drawn per task from ``family.search_trials``; the search
+    seed is fixed per task. Cached as JSON in ``family.cache_dir`` (default
+    ``$FOREBEAR_CACHE/bench-history``, see ``default_cache_dir``) under a key of
+    the task, the space and the trial count, written atomically under a file
+    lock, so parallel jobs and later runs reuse one search instead of repeating it.
+    """
+    from filelock import FileLock
+
+    from forebear.engine.proposer import Observation, Proposer, default_cache_dir
+
+    task = family.tasks[index]
+    lo, hi = family.search_trials
+    trials = int(np.random.default_rng([index, lo, hi]).integers(lo, hi + 1))
+    seed = 7_000 + index
+    ident = json.dumps([_SEARCH_FORMAT, family.name, task.name, task.notes, task.low, task.high,
+                        family.space.to_dict(), trials, seed], sort_keys=True, default=str)
+    folder = family.cache_dir or default_cache_dir() / "bench-history"
+    path = folder / f"{family.name}-{task.name}-{hashlib.sha256(ident.encode()).hexdigest()[:16]}.json"
+    folder.mkdir(parents=True, exist_ok=True)
+    with FileLock(str(path) + ".lock"):
+        if path.is_file():
+            data = json.loads(path.read_text())
+            return data["configs"], np.asarray(data["y"], dtype=float)
+        proposer = Proposer(family.space, None, seed=seed, model="gp", cache_dir=False)
+        observed: list[Observation] = []
+        while len(observed) < trials:
+            for p in proposer.propose(1, observed):
+                observed.append(Observation(p.config, task.objective(p.config)))
+        configs = [dict(o.config) for o in observed]
+        y = [float(o.score) for o in observed]
+        fd, tmp = tempfile.mkstemp(dir=folder, prefix=".history-", suffix=".tmp")
+        with os.fdopen(fd, "w") as fh:
+            json.dump({"task": task.name, "trials": trials, "seed": seed, "configs": configs, "y": y}, fh)
+        os.replace(tmp, path)
+    return configs, np.asarray(y, dtype=float)
 
 
 def unit_space(dim: int) -> Space:
@@ -239,11 +309,38 @@ def _forest_objective(X: np.ndarray, y: np.ndarray, space: Space, seed: int) -> 
     return objective
 
 
-def make_family(name: str, n_tasks: int = 10, n_points: int = 300, seed: int = 0) -> Family:
-    """A family by name (``branin``, ``hartmann3``, ``hartmann6`` or ``hgb``)."""
+def make_family(
+    name: str,
+    n_tasks: int = 10,
+    n_points: int = 300,
+    seed: int = 0,
+    history_kind: str = "sobol",
+    history_tasks: int | None = None,
+) -> Family:
+    """A family by name (``branin``, ``hartmann3``, ``hartmann6`` or ``hgb``).
+
+    ``history_kind`` and ``history_tasks``: what each held-out task's history
+    holds (see the module's docstring). An analytic family is built with
+    ``max(n_tasks, history_tasks + 1)`` tasks (task ``k`` is the same whatever
+    the size) and its held-out tasks stay among the first ``n_tasks``.
+    """
+    if history_kind not in HISTORY_KINDS:
+        msg = f"history_kind must be one of {', '.join(HISTORY_KINDS)}, got {history_kind!r}"
+        raise ValueError(msg)
+    if history_tasks is not None and history_tasks < 1:
+        msg = f"history_tasks must be >= 1, got {history_tasks}"
+        raise ValueError(msg)
     if name == "hgb":
-        return hgb_family(n_points=n_points, seed=seed)
-    return analytic_family(name, n_tasks=n_tasks, n_points=n_points, seed=seed)
+        fam = hgb_family(n_points=n_points, seed=seed)
+        if history_tasks is not None and history_tasks > len(fam.tasks) - 1:
+            msg = f"family hgb has {len(fam.tasks)} tasks: at most {len(fam.tasks) - 1} history tasks, got {history_tasks}"
+            raise ValueError(msg)
+    else:
+        size = max(n_tasks, (history_tasks or 0) + 1)
+        fam = analytic_family(name, n_tasks=size, n_points=n_points, seed=seed)
+        fam.pool = n_tasks
+    fam.history_kind, fam.history_tasks = history_kind, history_tasks
+    return fam
 
 
 def held_out(family: Family, count: int) -> list[int]:
@@ -252,7 +349,7 @@ def held_out(family: Family, count: int) -> list[int]:
     Spread rather than the first ``count``: the meta-dataset's tasks are listed
     dataset by dataset, and every dataset should be held out.
     """
-    n = len(family.tasks)
+    n = len(family.tasks) if family.pool is None else min(family.pool, len(family.tasks))
     if count >= n:
         return list(range(n))
     return sorted({int(round(i)) for i in np.linspace(0, n - 1, count)})

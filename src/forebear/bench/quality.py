@@ -2,7 +2,12 @@
 
 For each held-out task of a family, the history is the other tasks of the
 family (see ``families.py``); every method searches the held-out task from
-scratch for the same number of trials, driven in process (no Dask). The
+scratch for the same number of trials, driven in process (no Dask). By
+default (``mode="async"``) a proposer method runs as ``forebear run`` runs it:
+scheduled by the loop's own module under a simulated clock
+(``simulated.py``), with ``q`` workers and a batch of ``q``, log-normal trial
+durations and pending points; ``mode="sync"`` (``--sync``) scores every round
+before the next one. Curves are best-so-far in completion order. The
 figures are the mean normalised best-so-far regret with 95% bootstrap
 intervals, the average rank of the sequential methods, trials-to-target and
 the batch efficiency of q = 4 and 8 against q = 1.
@@ -23,13 +28,14 @@ import time
 from collections import Counter
 from collections.abc import Mapping, Sequence
 from concurrent.futures import ProcessPoolExecutor
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
-from forebear.bench.families import Family, held_out, make_family
+from forebear.bench.families import HISTORY_KINDS, Family, held_out, make_family
+from forebear.bench.simulated import Clock
 
 CHECKPOINTS = (5, 10, 25, 50)
 
@@ -39,7 +45,7 @@ class Method:
     """One compared method: how to propose, with which batch size."""
 
     name: str
-    kind: str  # "random", "lhs-random" or "proposer"
+    kind: str  # "random", "lhs-random", "proposer" or "peer" (bench/peers, built by its name)
     q: int = 1
     history: bool = False
     settings: Mapping[str, Any] = field(default_factory=dict)
@@ -60,6 +66,10 @@ METHODS: dict[str, Method] = {m.name: m for m in (
     Method("no-augment", "proposer", history=True, settings={"augment": False}),
     Method("no-fine-tune", "proposer", history=True, settings={"fine_tune": False}),
     Method("no-guard", "proposer", history=True, settings={"guard": False}),
+    # Peers from their papers (bench/peers): history warm start then plain GP, RGPE, and cold TPE.
+    Method("warmstart-gp", "peer", history=True),
+    Method("rgpe", "peer", history=True),
+    Method("tpe", "peer"),
 )}
 SMOKE_METHODS = ("random", "gp", "forebear-cold", "forebear-full")
 #: Size of the Latin hypercube before random search in ``lhs-random``.
@@ -81,6 +91,21 @@ class Protocol:
     first_seed: int = 0
     #: Extra Proposer settings for every proposer method (the default run uses none).
     proposer: Mapping[str, Any] = field(default_factory=dict)
+    #: What a history task holds: "sobol" (its design) or "searches" (a plain-GP search of it, families.py).
+    history_kind: str = "sobol"
+    #: History tasks per held-out task; None: every other task of the family.
+    history_tasks: int | None = None
+    #: "async": each proposer method with q workers under the loop's schedule and a simulated
+    #: clock (trials of median ``trial_seconds``, log-normal ``sigma``; ``refit_seconds`` per model
+    #: round, None for the measured seconds); "sync": every round scored before the next.
+    mode: str = "async"
+    trial_seconds: float = 1.0
+    sigma: float = 0.5
+    refit_seconds: float | None = 0.25
+
+    @property
+    def clock(self) -> Clock:
+        return Clock(self.trial_seconds, self.sigma, self.refit_seconds)
 
     def __post_init__(self) -> None:
         unknown = [m for m in self.methods if m not in METHODS]
@@ -98,6 +123,16 @@ class Protocol:
             if getattr(self, name) < 1:
                 msg = f"{name} must be >= 1, got {getattr(self, name)}"
                 raise ValueError(msg)
+        if self.history_kind not in HISTORY_KINDS:
+            msg = f"history_kind must be one of {', '.join(HISTORY_KINDS)}, got {self.history_kind!r}"
+            raise ValueError(msg)
+        if self.history_tasks is not None and self.history_tasks < 1:
+            msg = f"history_tasks must be >= 1, got {self.history_tasks}"
+            raise ValueError(msg)
+        if self.mode not in ("async", "sync"):
+            msg = f"mode must be 'async' or 'sync', got {self.mode!r}"
+            raise ValueError(msg)
+        self.clock  # noqa: B018 - validates the clock's fields
         if self.family_size < 2:
             msg = f"family_size must be >= 2 (one held out, at least one as history), got {self.family_size}"
             raise ValueError(msg)
@@ -110,14 +145,14 @@ SMOKE = Protocol(families=("branin",), tasks=3, seeds=2, trials=15, methods=SMOK
 # running one search
 
 
-_FAMILIES: dict[tuple[str, int, int], Family] = {}
+_FAMILIES: dict[tuple[Any, ...], Family] = {}
 
 
-def _family(name: str, size: int, points: int) -> Family:
-    # Built once per process: the tasks are deterministic in (name, size, points).
-    key = (name, size, points)
+def _family(name: str, size: int, points: int, kind: str = "sobol", history: int | None = None) -> Family:
+    # Built once per process: the tasks are deterministic in these arguments.
+    key = (name, size, points, kind, history)
     if key not in _FAMILIES:
-        _FAMILIES[key] = make_family(name, n_tasks=size, n_points=points)
+        _FAMILIES[key] = make_family(name, n_tasks=size, n_points=points, history_kind=kind, history_tasks=history)
     return _FAMILIES[key]
 
 
@@ -129,10 +164,13 @@ def search(
     trials: int,
     cache_dir: str | None = None,
     settings: Mapping[str, Any] | None = None,
+    clock: Clock | None = None,
 ) -> dict[str, Any]:
     """Run one method on one held-out task; best-so-far normalised regret per trial.
 
-    ``settings`` are extra Proposer keywords, overridden by the method's own.
+    ``settings`` are extra Proposer keywords, overridden by the method's own. With a
+    ``clock``, a proposer method runs asynchronously (:mod:`forebear.bench.simulated`)
+    with ``method.q`` workers and a batch of ``method.q``; without, synchronously.
     """
     from forebear.engine.proposer import Observation, Proposer
 
@@ -141,6 +179,7 @@ def search(
     scores: list[float] = []
     models: Counter[str] = Counter()
     sources: Counter[str] = Counter()
+    extra: dict[str, float] = {}
     t0 = time.perf_counter()
     if method.kind == "random":
         configs = space.sample(trials, np.random.default_rng([seed, index]))
@@ -154,9 +193,22 @@ def search(
     else:
         history = family.history_for(index) if method.history else None
         kwargs = {**dict(settings or {}), **dict(method.settings)}
-        proposer = Proposer(space, history, seed=seed, cache_dir=cache_dir, **kwargs)
+        if method.kind == "peer":
+            from forebear.bench import peers
+
+            proposer = peers.make(method.name, space, history, seed=seed)
+        else:
+            proposer = Proposer(space, history, seed=seed, cache_dir=cache_dir, **kwargs)
         observed: list[Any] = []
-        while len(observed) < trials:
+        if clock is not None:
+            from forebear.bench import simulated
+
+            sim = simulated.run(proposer, task.objective, trials, concurrency=method.q, batch=method.q, clock=clock, seed=seed)
+            scores = sim.scores
+            models.update(str(m) for m in sim.models[: len(scores)])
+            sources.update(sim.sources[: len(scores)])
+            extra = {"sim_seconds": sim.seconds, "busy": sim.busy, "pending_mean": float(np.mean(sim.pending)) if sim.pending else 0.0}
+        while clock is None and len(observed) < trials:
             batch = proposer.propose(min(method.q, trials - len(observed)), observed)
             if not batch:
                 msg = f"{method.name} proposed nothing after {len(observed)} trials on {task.name}"
@@ -175,6 +227,7 @@ def search(
         "models": dict(models),
         "sources": dict(sources),
         "seconds": time.perf_counter() - t0,
+        **extra,
     }
 
 
@@ -201,7 +254,7 @@ def _job(args: tuple[str, int, int, int, Protocol, str | None]) -> dict[str, Any
         torch.set_num_threads(1)
     except ImportError:  # pragma: no cover - torch is a hard dependency
         pass
-    family = _family(fam_name, proto.family_size, proto.history_points)
+    family = _family(fam_name, proto.family_size, proto.history_points, proto.history_kind, proto.history_tasks)
     # Meta-training depends on the history and the deep-kernel settings only (its seed is
     # fixed), so jobs of one run may share a cache folder; entries are written atomically.
     cache = shared_cache or tempfile.mkdtemp(prefix="forebear-bench-")
@@ -212,7 +265,8 @@ def _job(args: tuple[str, int, int, int, Protocol, str | None]) -> dict[str, Any
             if name != "gp" and "gp" in out["runs"] and _same_as_gp(method, proto.proposer):
                 out["runs"][name] = {**out["runs"]["gp"], "same_as": "gp"}
                 continue
-            out["runs"][name] = search(family, index, method, seed, trials, cache_dir=cache, settings=proto.proposer)
+            clock = proto.clock if proto.mode == "async" else None
+            out["runs"][name] = search(family, index, method, seed, trials, cache_dir=cache, settings=proto.proposer, clock=clock)
     finally:
         if shared_cache is None:
             shutil.rmtree(cache, ignore_errors=True)
@@ -227,7 +281,8 @@ def run(proto: Protocol, progress: bool = False, partial: Path | None = None) ->
     each finished job is also appended to that JSON-lines file, so a run cut short
     still leaves its finished jobs behind.
     """
-    families = {f: _family(f, proto.family_size, proto.history_points) for f in proto.families}
+    families = {f: _family(f, proto.family_size, proto.history_points, proto.history_kind, proto.history_tasks)
+                for f in proto.families}
     cache = tempfile.mkdtemp(prefix="forebear-bench-")
     jobs = [(f, i, s, proto.trials, proto, cache)
             for s in range(proto.first_seed, proto.first_seed + proto.seeds)
@@ -446,7 +501,8 @@ def plots(results: Sequence[Mapping[str, Any]], proto: Protocol, out_dir: Path) 
     return paths
 
 
-def main(smoke: bool = False, out_dir: str | None = None, proto: Protocol | None = None, progress: bool = False) -> dict[str, Any]:
+def main(smoke: bool = False, out_dir: str | None = None, proto: Protocol | None = None, progress: bool = False,
+         sync: bool = False) -> dict[str, Any]:
     """Run the benchmark; returns its figures (``mean_regret`` at the last trial per method).
 
     Parameters
@@ -456,9 +512,11 @@ def main(smoke: bool = False, out_dir: str | None = None, proto: Protocol | None
     out_dir
         Folder for curves.json, results.md and the PNGs; nothing is written without it.
     proto
-        An explicit protocol (overrides ``smoke``).
+        An explicit protocol (overrides ``smoke`` and ``sync``).
+    sync
+        Synchronous rounds instead of the asynchronous mode.
     """
-    proto = proto or (SMOKE if smoke else Protocol())
+    proto = proto or replace(SMOKE if smoke else Protocol(), mode="sync" if sync else "async")
     t0 = time.perf_counter()
     partial = None
     if out_dir is not None:
@@ -481,6 +539,7 @@ def main(smoke: bool = False, out_dir: str | None = None, proto: Protocol | None
         "wall_s": round(wall, 1),
         "cores": os.cpu_count(),
         "protocol": _protocol_dict(proto),
+        "mode": proto.mode,
     }
     if written:
         figures["plots"] = written["plots"]
@@ -536,7 +595,10 @@ def merge(dirs: Sequence[str | Path], out_dir: str | Path) -> dict[str, Any]:
     tasks = max(len({r["task"] for r in results if r["family"] == f}) for f in families)
     proto = Protocol(families, tasks, seeds,
                      min(p["trials"] for p in protos), methods, first["family_size"], first["history_points"],
-                     first["workers"], first.get("first_seed", 0), first.get("proposer", {}))
+                     first["workers"], first.get("first_seed", 0), first.get("proposer", {}),
+                     first.get("history_kind", "sobol"), first.get("history_tasks"),
+                     first.get("mode", "sync"), first.get("trial_seconds", 1.0), first.get("sigma", 0.5),
+                     first.get("refit_seconds", 0.25))
     return {"protocol": {"families": families, "methods": methods}, **write(results, proto, out_dir)}
 
 
@@ -575,10 +637,22 @@ def _cli(argv: Sequence[str] | None = None) -> None:
     ap.add_argument("--methods", nargs="+", default=list(d.methods))
     ap.add_argument("--family-size", type=int, default=d.family_size, help="Tasks per analytic family.")
     ap.add_argument("--history-points", type=int, default=d.history_points, help="Design points per history task.")
+    ap.add_argument("--history-kind", choices=HISTORY_KINDS, default=d.history_kind,
+                    help="History tasks as Sobol designs or as plain-GP searches of 20-50 trials (cached).")
+    ap.add_argument("--history-tasks", type=int, default=d.history_tasks,
+                    help="History tasks per held-out task (e.g. 3, 10, 30); default: every other task of the family.")
     ap.add_argument("--workers", type=int, default=d.workers, help="Processes.")
     ap.add_argument("--first-seed", type=int, default=d.first_seed, help="Seeds are first-seed .. first-seed + seeds - 1.")
     ap.add_argument("--out", default=None, help="Folder for curves.json, results.md and PNGs.")
     ap.add_argument("--smoke", action="store_true")
+    mode = ap.add_mutually_exclusive_group()
+    mode.add_argument("--async", dest="mode", action="store_const", const="async", default=d.mode,
+                      help="Each proposer method with q workers under the loop's schedule and a simulated clock (default).")
+    mode.add_argument("--sync", dest="mode", action="store_const", const="sync", help="Every round scored before the next.")
+    ap.add_argument("--trial-seconds", type=float, default=d.trial_seconds, help="Median simulated trial duration.")
+    ap.add_argument("--sigma", type=float, default=d.sigma, help="Log-normal spread of the trial durations.")
+    ap.add_argument("--refit-seconds", type=float, default=d.refit_seconds,
+                    help="Simulated seconds of a model round; a negative value: the measured seconds.")
     ap.add_argument("--merge", nargs="+", default=None, metavar="DIR", help="Only combine the curves.json of earlier runs into --out.")
     ap.add_argument("--set", action="append", default=[], metavar="KEY=VALUE", dest="settings",
                     help="An extra Proposer setting for every proposer method, VALUE read as JSON (e.g. n_initial=7); repeatable.")
@@ -607,8 +681,10 @@ def _cli(argv: Sequence[str] | None = None) -> None:
         print(json.dumps(_jsonable({"protocol": merged["protocol"], "plots": merged["plots"]}), indent=1))
         return
     try:
-        proto = SMOKE if ns.smoke else Protocol(tuple(ns.families), ns.tasks, ns.seeds, ns.trials, tuple(ns.methods),
-                                                  ns.family_size, ns.history_points, ns.workers, ns.first_seed, settings)
+        refit = None if ns.refit_seconds is not None and ns.refit_seconds < 0 else ns.refit_seconds
+        proto = replace(SMOKE, mode=ns.mode) if ns.smoke else Protocol(
+            tuple(ns.families), ns.tasks, ns.seeds, ns.trials, tuple(ns.methods), ns.family_size, ns.history_points,
+            ns.workers, ns.first_seed, settings, ns.history_kind, ns.history_tasks, ns.mode, ns.trial_seconds, ns.sigma, refit)
     except ValueError as exc:
         ap.error(str(exc))
     print(json.dumps(main(out_dir=ns.out, proto=proto, progress=True), indent=1))

@@ -3,7 +3,9 @@
 Four kinds: ``local`` (an embedded LocalCluster whose every listener is on
 127.0.0.1), ``address`` (an existing scheduler, with mutual TLS through
 ``distributed.security.Security``), and ``slurm`` / ``pbs`` through
-dask-jobqueue. forebear's tasks must fail on the first worker death rather
+dask-jobqueue. :func:`wrap` takes a client the caller made instead
+(``forebear.run(spec, client=client)``), which forebear never closes.
+forebear's tasks must fail on the first worker death rather
 than be rerun silently by Dask (the controller records a ``lost`` attempt and
 retries it itself): on an embedded scheduler ``allowed-failures`` is 0; on a
 scheduler forebear does not own, a small scheduler plugin gives forebear's
@@ -28,7 +30,7 @@ from distributed import Client, Future
 from distributed.diagnostics.plugin import SchedulerPlugin
 from distributed.security import Security
 
-from forebear.core.spec import Cluster, Spec
+from forebear.core.spec import Cluster, Spec, memory_bytes
 
 log = logging.getLogger("forebear.cluster.dispatch")
 
@@ -137,6 +139,7 @@ class Dispatch(AbstractContextManager["Dispatch"]):
     cluster: Any = None
     dashboard: str | None = None
     fail_fast: bool = True
+    owned: bool = True  # False for a user's client (wrap): close() then leaves it open
 
     def submit(self, fn: Callable[..., Any], arg: Any, key: str, resources: Mapping[str, float] | None = None) -> Future:
         """Submit one attempt; ``resources`` become the task's Dask resource restriction."""
@@ -163,6 +166,8 @@ class Dispatch(AbstractContextManager["Dispatch"]):
         )
 
     def close(self) -> None:
+        if not self.owned:
+            return
         try:
             self.client.close()
         finally:
@@ -203,10 +208,15 @@ def _local(spec: Spec, say: Callable[[str], None]) -> Dispatch:
         kwargs["scheduler_kwargs"] = {"dashboard": False}
     if opts.get("memory_limit") is not None:
         kwargs["memory_limit"] = opts["memory_limit"]
-    with dask.config.set({
+    settings: dict[str, Any] = {
         "distributed.scheduler.allowed-failures": 0,
         "distributed.scheduler.no-workers-timeout": NO_WORKERS_TIMEOUT,
-    }):
+    }
+    if show_dashboard:
+        # The live search page (forebear.cluster.dashboard), served by the scheduler's HTTP server.
+        routes = list(dask.config.get("distributed.scheduler.http.routes"))
+        settings["distributed.scheduler.http.routes"] = [*routes, "forebear.cluster.dashboard"]
+    with dask.config.set(settings):
         lc = LocalCluster(
             n_workers=int(workers),
             threads_per_worker=int(opts.get("threads") or 1),
@@ -222,9 +232,8 @@ def _local(spec: Spec, say: Callable[[str], None]) -> Dispatch:
     except BaseException:
         lc.close()
         raise
+    # The controller says the link of the search's own page once it is served (dashboard.publish).
     link = lc.dashboard_link if show_dashboard else None
-    if link:
-        say(f"dashboard: {link}")
     return Dispatch(client, "local", cluster=lc, dashboard=link)
 
 
@@ -246,6 +255,15 @@ def _address(spec: Spec, say: Callable[[str], None]) -> Dispatch:
     except TimeoutError:
         say(f"note: no worker has joined {cl.address} after {WORKER_WAIT:g} s; trials wait for one")
     return d
+
+
+def wrap(client: Client, say: Callable[[str], None] = lambda _m: None) -> Dispatch:
+    """A :class:`Dispatch` over a client someone else made; closing it leaves the client open.
+
+    ``forebear.run(spec, client=client)``: the search runs on the user's cluster, which
+    forebear neither scales nor closes.
+    """
+    return Dispatch(client, "client", fail_fast=install_fail_fast(client, say), owned=False)
 
 
 def install_fail_fast(client: Client, say: Callable[[str], None]) -> bool:
@@ -333,3 +351,14 @@ def _jobqueue(spec: Spec, say: Callable[[str], None]) -> Dispatch:
     d = Dispatch(client, spec.cluster.kind, cluster=jq, dashboard=getattr(jq, "dashboard_link", None))
     d.check_resources(spec.resources, declared_resources(spec))
     return d
+
+
+def attempt_memory(spec: Spec) -> int | None:
+    """Bytes of address space for each attempt process: ``cluster.local.memory_limit``, or None.
+
+    The embedded cluster's workers get the same limit from Dask, but an attempt runs in a
+    process of its own outside the worker's accounting, so the limit is applied to it directly.
+    """
+    if spec.cluster.kind != "local" or spec.cluster.options.get("memory_limit") is None:
+        return None
+    return memory_bytes(spec.cluster.options["memory_limit"])

@@ -14,7 +14,9 @@ never blocked. The spec's paths (logbook, history, TLS files) must be valid on
 the scheduler's host, and the objective importable on the workers. A failure
 is logged loudly on the scheduler (Dask itself only logs it) and, where the
 logbook is known, written as a ``closed`` record with reason ``error``.
-``forebear status`` and ``forebear best`` read the logbook while it runs.
+``forebear status`` and ``forebear best`` read the logbook while it runs, and
+the scheduler's dashboard shows it at ``/forebear/`` (the link is printed by
+``--detach`` and logged by the scheduler).
 """
 
 from __future__ import annotations
@@ -76,6 +78,7 @@ class SearchPlugin(SchedulerPlugin):
             self.controller.request_stop(cancel=True)
 
     def _main(self, scheduler: Any) -> None:
+        from forebear.cluster.dashboard import local_link
         from forebear.cluster.dispatch import Dispatch, install_fail_fast, security_for
         from forebear.loop.controller import Controller
         from forebear.loop.resume import SpecChanged
@@ -91,6 +94,9 @@ class SearchPlugin(SchedulerPlugin):
             client = Client(scheduler.address, security=security_for(spec.cluster) or scheduler.security, timeout="30s")
             dispatch = Dispatch(client, "scheduler", fail_fast=install_fail_fast(client, log.warning))
             log.warning("forebear: search %s started inside the scheduler; logbook %s", spec.name, spec.logbook)
+            link = local_link(scheduler, spec.name)
+            if link:
+                log.warning("forebear: search %s: live page %s", spec.name, link)
             try:
                 self.controller = Controller(spec, extend=self.extend, quiet=True, dispatch=dispatch, handle_signals=False)
                 self.result = self.controller.run()
@@ -109,6 +115,7 @@ class SearchPlugin(SchedulerPlugin):
 
 def detach(spec: Spec, *, extend: bool = False, quiet: bool = False) -> Any:
     """Register the search on the spec's remote scheduler and return without waiting for it."""
+    from forebear.cluster.dashboard import page_link
     from forebear.cluster.dispatch import ClusterError, insecure_warning, security_for
     from forebear.loop.book import SearchResult
 
@@ -125,10 +132,13 @@ def detach(spec: Spec, *, extend: bool = False, quiet: bool = False) -> Any:
     try:
         plugin = SearchPlugin(spec, extend=extend)
         client.register_plugin(plugin, name=plugin.name)
+        link = page_link(client, spec.name)
     finally:
         client.close()
     if not quiet:
         click.echo(f"detached: search {spec.name} runs inside the scheduler at {cl.address}", err=True)
+        if link:
+            click.echo(f"dashboard: {link}", err=True)
         click.echo(f"follow it with: forebear status {spec.logbook}", err=True)
     return SearchResult(best=None, trials=[], logbook=spec.logbook, closed="detached")
 

@@ -16,39 +16,30 @@ to write. The runner never imports the surrogate.
 
 from __future__ import annotations
 
+import hashlib
 import json
 import os
 import re
-import select
 import shutil
 import signal
 import socket
-import subprocess
-import sys
 import tempfile
-import threading
 import time
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from forebear.cluster import child as _child
-from forebear.cluster.child import BadScore, score_of_stdout
+from forebear.cluster.capture import read_log, read_text, with_tail
+from forebear.cluster.scoring import BadScore, score_of_stdout
+from forebear.cluster.servers import RunnerError, _acquire, _release, _Server, shutdown_servers
 from forebear.records.logbook import Logbook, ensure_folder, record
 
+__all__ = ["AttemptResult", "AttemptTask", "RunnerError", "log_name", "reachable", "run_attempt", "shutdown_servers"]
+
 PROBE_NAME = ".probe"
-LOG_TAIL_LINES = 20
-LOG_RETURN_BYTES = 1 << 20  # the log returned to the controller without a shared filesystem
 KILL_GRACE = 10.0  # seconds to wait for a killed child to be reaped
 POLL = 0.2  # how often a waiting runner checks whether its Dask task was cancelled
-
-
-class RunnerError(RuntimeError):
-    """The attempt machinery itself failed (not the objective)."""
-
-    def __reduce__(self) -> tuple[Any, ...]:
-        return (self.__class__, self.args)
 
 
 @dataclass(frozen=True)
@@ -70,6 +61,9 @@ class AttemptTask:
     token: str | None = None
     cwd: str | None = None
     retryable: bool = False  # the value of ``retryable`` in a ``failed`` record for an objective error
+    memory_limit: int | None = None  # bytes of address space for the attempt process (cluster.local.memory_limit)
+    function: bytes | None = None  # a callable objective, cloudpickled (forebear.cluster.shipping)
+    function_name: str | None = None  # its module:qualified.name, for messages
 
 
 @dataclass
@@ -78,7 +72,7 @@ class AttemptResult:
 
     trial: int
     attempt: int
-    outcome: str  # scored, failed, timeout, cancelled
+    outcome: str  # scored, failed, timeout, cancelled, superseded (settled as lost by a controller meanwhile)
     records: list[dict[str, Any]] = field(default_factory=list)
     written: bool = False
     error: str | None = None
@@ -88,102 +82,19 @@ class AttemptResult:
     log_text: str | None = None
 
 
+def _server_key(task: AttemptTask) -> tuple[str | None, tuple[str, bytes] | None]:
+    """The pool key of the server an attempt needs, and the shipped function it loads (if any)."""
+    if task.command:
+        return None, None
+    if task.function is not None:
+        name = task.function_name or "objective"
+        return f"function {name} {hashlib.sha256(task.function).hexdigest()[:16]}", (name, task.function)
+    return task.call, None
+
+
 def log_name(trial: int, attempt: int) -> str:
     """The log file of an attempt inside the search's logs folder."""
     return f"trial-{trial:05d}-attempt-{attempt}.log"
-
-
-# --------------------------------------------------------------------------
-# fork servers, one per objective per worker process
-
-
-class _Server:
-    """A :mod:`forebear.cluster.child` server process and its protocol pipes."""
-
-    def __init__(self, call: str | None, path: str | None, wait: float) -> None:
-        # Run the file, not ``-m forebear.cluster.child``: the package's imports (numpy, scipy, yaml) would
-        # add seconds to every server start, and the server needs only the standard library.
-        argv = [sys.executable, _child.__file__]
-        if call:
-            argv += ["--call", call]
-        if path:
-            argv += ["--path", path]
-        self.proc = subprocess.Popen(argv, stdin=subprocess.PIPE, stdout=subprocess.PIPE, close_fds=True)
-        assert self.proc.stdin is not None and self.proc.stdout is not None
-        self._in = self.proc.stdin
-        self._out = self.proc.stdout.fileno()
-        self._buf = b""
-        hello = self.read(wait)
-        if hello is None:
-            self.close()
-            raise RunnerError(f"the attempt process for {call or 'commands'} did not start within {wait:g} s")
-        if not hello.get("ready"):
-            self.close()
-            raise RunnerError(str(hello.get("error") or "the attempt process failed to start"))
-
-    @property
-    def alive(self) -> bool:
-        return self.proc.poll() is None
-
-    def send(self, payload: Mapping[str, Any]) -> None:
-        self._in.write((json.dumps(payload, default=str) + "\n").encode())
-        self._in.flush()
-
-    def read(self, timeout: float | None) -> dict[str, Any] | None:
-        """The next protocol line, or None on timeout; RunnerError when the server died."""
-        deadline = None if timeout is None else time.monotonic() + timeout
-        while b"\n" not in self._buf:
-            left = None if deadline is None else max(0.0, deadline - time.monotonic())
-            ready, _, _ = select.select([self._out], [], [], left)
-            if not ready:
-                return None
-            chunk = os.read(self._out, 65536)
-            if not chunk:
-                raise RunnerError(f"the attempt process server exited (status {self.proc.wait()})")
-            self._buf += chunk
-        line, self._buf = self._buf.split(b"\n", 1)
-        return json.loads(line)
-
-    def close(self) -> None:
-        try:
-            self._in.close()
-        except OSError:
-            pass
-        try:
-            self.proc.wait(timeout=5)
-        except subprocess.TimeoutExpired:
-            self.proc.kill()
-            self.proc.wait()
-
-
-_POOL: dict[tuple[str | None, str | None], list[_Server]] = {}
-_POOL_LOCK = threading.Lock()
-
-
-def _acquire(call: str | None, path: str | None, wait: float) -> _Server:
-    with _POOL_LOCK:
-        idle = _POOL.setdefault((call, path), [])
-        while idle:
-            server = idle.pop()
-            if server.alive:
-                return server
-    return _Server(call, path, wait)
-
-
-def _release(server: _Server, call: str | None, path: str | None) -> None:
-    if not server.alive:
-        return
-    with _POOL_LOCK:
-        _POOL.setdefault((call, path), []).append(server)
-
-
-def shutdown_servers() -> None:
-    """Stop this process's fork servers (tests and the overhead benchmark call it)."""
-    with _POOL_LOCK:
-        servers = [s for group in _POOL.values() for s in group]
-        _POOL.clear()
-    for s in servers:
-        s.close()
 
 
 # --------------------------------------------------------------------------
@@ -221,20 +132,6 @@ def reachable(logs: str | None, token: str | None) -> bool:
         except OSError:
             _SHARED[key] = False
     return _SHARED[key]
-
-
-def tail(path: Path, lines: int = LOG_TAIL_LINES, max_bytes: int = 8192) -> str:
-    """The last ``lines`` lines of a file (decoded leniently), or '' when it is missing."""
-    try:
-        with open(path, "rb") as fh:
-            fh.seek(0, os.SEEK_END)
-            size = fh.tell()
-            fh.seek(max(0, size - max_bytes))
-            data = fh.read()
-    except OSError:
-        return ""
-    text = data.decode("utf-8", errors="replace")
-    return "\n".join(text.splitlines()[-lines:])
 
 
 def _exit_reason(status: int) -> str:
@@ -296,23 +193,23 @@ def _run(task: AttemptTask, worker: str, cancelled: Callable[[], bool], logbook:
         "cwd": task.cwd,
         "metric": task.metric,
         "config": dict(task.config),
+        "memory": task.memory_limit,
     }
     if task.command:
         request.update(kind="exec", argv=[_substitute(a, task.config) for a in task.command])
     else:
         request.update(kind="call")
     result = AttemptResult(task.trial, task.attempt, "failed", worker=worker, log_name=name)
-    key_call = task.call if not task.command else None
+    key_call, function = _server_key(task)
     try:
-        server = _acquire(key_call, task.cwd, max(60.0, task.timeout or 0.0))
+        server = _acquire(key_call, task.cwd, max(60.0, task.timeout or 0.0), function)
     except RunnerError as exc:
         # The objective cannot be imported here: the attempt fails, it did not start anything.
         started = record("started", trial=task.trial, attempt=task.attempt, worker=worker, host=socket.gethostname(), pid=None)
-        if logbook is not None:
-            logbook.append(started)
-        return _finish(task, result, logbook, started, None, str(exc), 0.0, log, out)
+        since = logbook.append(started) if logbook is not None else 0
+        return _finish(task, result, logbook, started, None, str(exc), 0.0, log, out, since=since)
     try:
-        outcome, status, started, seconds = _supervise(server, request, task, worker, logbook, cancelled)
+        outcome, status, started, seconds, since = _supervise(server, request, task, worker, logbook, cancelled)
     except RunnerError as exc:
         server.close()
         started = record("started", trial=task.trial, attempt=task.attempt, worker=worker, host=socket.gethostname(), pid=None)
@@ -325,17 +222,20 @@ def _run(task: AttemptTask, worker: str, cancelled: Callable[[], bool], logbook:
         result.written = logbook is not None
         result.seconds = seconds
         what = f"the attempt timed out after {task.timeout:g} s" if outcome == "timeout" else "the attempt was cancelled"
-        result.error = _with_tail(what, log, out)
+        result.error = with_tail(what, log, out)
         if logbook is None:
-            result.log_text = _read_log(log, out)
+            result.log_text = read_log(log, out)
         return result
-    return _finish(task, result, logbook, started, status, None, seconds, log, out, scratch / "result.json")
+    return _finish(task, result, logbook, started, status, None, seconds, log, out, scratch / "result.json", since)
 
 
 def _supervise(
     server: _Server, request: Mapping[str, Any], task: AttemptTask, worker: str, logbook: Logbook | None, cancelled: Callable[[], bool]
-) -> tuple[str, int | None, dict[str, Any], float]:
-    """Start the child, write ``started``, wait; returns (outcome, wait status, started record, seconds)."""
+) -> tuple[str, int | None, dict[str, Any], float, int]:
+    """Start the child, write ``started``, wait.
+
+    Returns (outcome, wait status, started record, seconds, the logbook offset after ``started``).
+    """
     server.send(request)
     hello = server.read(60.0)
     if hello is None or "pid" not in hello:
@@ -343,9 +243,10 @@ def _supervise(
     pid = int(hello["pid"])
     t0 = time.monotonic()
     started = record("started", trial=task.trial, attempt=task.attempt, worker=worker, host=socket.gethostname(), pid=pid)
+    since = 0
     if logbook is not None:
         try:
-            logbook.append(started)
+            since = logbook.append(started)
         except BaseException:
             # The logbook cannot be written (a full disk): stop the child and retire this server, whose
             # protocol would otherwise still owe the child's exit to the next attempt it is given.
@@ -360,7 +261,7 @@ def _supervise(
         wait = POLL if deadline is None or outcome != "done" else max(0.0, min(POLL, deadline - now))
         msg = server.read(wait)
         if msg is not None and "exit" in msg:
-            return outcome, int(msg["exit"]), started, time.monotonic() - t0
+            return outcome, int(msg["exit"]), started, time.monotonic() - t0, since
         now = time.monotonic()
         if outcome == "done":
             if deadline is not None and now >= deadline:
@@ -373,7 +274,7 @@ def _supervise(
         elif killed_at is not None and now - killed_at > KILL_GRACE:
             # The child ignores SIGKILL only when stuck in the kernel (D state); give up on it.
             server.close()
-            return outcome, None, started, now - t0
+            return outcome, None, started, now - t0, since
 
 
 def _killpg(pid: int) -> None:
@@ -395,34 +296,6 @@ def _substitute(item: str, config: Mapping[str, Any]) -> str:
     return _PLACEHOLDER.sub(lambda m: str(config[m.group(1)]) if m.group(1) in config else m.group(0), item)
 
 
-def _read_log(log: Path, out: Path | None) -> str:
-    parts = []
-    for p in (out, log):
-        if p is None:
-            continue
-        try:
-            size = p.stat().st_size
-            with open(p, "rb") as fh:
-                fh.seek(max(0, size - LOG_RETURN_BYTES))
-                text = fh.read().decode("utf-8", errors="replace")
-        except OSError:
-            continue
-        if out is not None:
-            parts.append(f"--- {'stdout' if p == out else 'stderr'} ---\n{text}")
-        else:
-            parts.append(text)
-    return "\n".join(parts)
-
-
-def _with_tail(reason: str, log: Path, out: Path | None) -> str:
-    lines = tail(log)
-    if out is not None:
-        so = tail(out, lines=5)
-        if so:
-            lines = (lines + "\n" if lines else "") + "stdout: " + so.replace("\n", "\nstdout: ")
-    return f"{reason}\n--- last lines of the log ---\n{lines}" if lines else reason
-
-
 def _finish(
     task: AttemptTask,
     result: AttemptResult,
@@ -434,9 +307,11 @@ def _finish(
     log: Path,
     out: Path | None,
     result_file: Path | None = None,
+    since: int = 0,
 ) -> AttemptResult:
     score: float | None = None
     metrics: dict[str, Any] = {}
+    dropped: dict[str, str] = {}
     payload: dict[str, Any] | None = None
     if error is None and result_file is not None and result_file.exists():
         try:
@@ -454,39 +329,43 @@ def _finish(
                 error = _exit_reason(status) if code < 0 else f"the command exited with status {code}"
             else:
                 try:
-                    score, metrics = score_of_stdout(_read_text(out), task.metric)
+                    score, metrics = score_of_stdout(read_text(out), task.metric, dropped)
                 except BadScore as exc:
                     error = f"bad result: {exc}"
         elif payload is not None:
             score, metrics = float(payload["score"]), dict(payload.get("metrics") or {})
+            dropped = dict(payload.get("dropped") or {})
         else:
             error = _exit_reason(status)
+    if error is not None and task.memory_limit and _memory_like(error):
+        error += f" (the attempt's address space is limited to {task.memory_limit / 2**20:.0f} MiB by cluster.local.memory_limit)"
     if error is None and score is not None:
-        final = record("scored", trial=task.trial, attempt=task.attempt, score=score, metrics=metrics, seconds=round(seconds, 6))
+        extra = {"dropped": dropped} if dropped else {}
+        final = record("scored", trial=task.trial, attempt=task.attempt, score=score, metrics=metrics, seconds=round(seconds, 6), **extra)
         result.outcome = "scored"
     else:
-        result.error = _with_tail(error or "no result", log, out)
+        result.error = with_tail(error or "no result", log, out)
         final = record("failed", trial=task.trial, attempt=task.attempt, error=result.error, retryable=task.retryable)
         result.outcome = "failed"
     result.seconds = seconds
     if logbook is not None:
-        logbook.append(final)
+        if not logbook.append_result(final, since):
+            # A controller settled this attempt as lost (and resubmitted its trial) while it ran:
+            # the late result is not recorded, so the trial is never scored twice.
+            result.outcome = "superseded"
+            result.error = "the attempt was settled as lost while it ran; its result was not recorded"
+            result.records = [started]
+            result.written = True
+            result.seconds = seconds
+            return result
         result.records = [started, final]
         result.written = True
     else:
         result.records = [started, final]
-        result.log_text = _read_log(log, out)
+        result.log_text = read_log(log, out)
     return result
 
 
-def _read_text(path: Path | None) -> str:
-    if path is None:
-        return ""
-    try:
-        with open(path, "rb") as fh:
-            fh.seek(0, os.SEEK_END)
-            size = fh.tell()
-            fh.seek(max(0, size - 65536))  # the score is on the last line; 10 MB of stdout is not read whole
-            return fh.read().decode("utf-8", errors="replace")
-    except OSError:
-        return ""
+def _memory_like(error: str) -> bool:
+    """Whether a failure reads like an allocation refused by the attempt's address-space limit."""
+    return any(w in error for w in ("MemoryError", "SIGSEGV", "SIGABRT", "SIGKILL", "Cannot allocate memory", "bad_alloc"))

@@ -8,6 +8,7 @@ categorical parameter takes one coordinate per category (one-hot).
 
 from __future__ import annotations
 
+import functools
 import math
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
@@ -55,15 +56,31 @@ class Param:
             if not self.categories:
                 msg = f"parameter {self.name!r}: a categorical parameter needs at least one category"
                 raise ValueError(msg)
-            if len(set(map(_category_key, self.categories))) != len(self.categories):
-                msg = f"parameter {self.name!r}: categories must be distinct, got {list(self.categories)}"
-                raise ValueError(msg)
+            keys: dict[tuple[str, Any], int] = {}
+            for i, c in enumerate(self.categories):
+                j = keys.setdefault(category_key(c), i)
+                if j != i:
+                    first = self.categories[j]
+                    msg = (
+                        f"parameter {self.name!r}: categories must be distinct, got {list(self.categories)}: "
+                        f"{first!r} and {c!r} are one category (numbers compare by value; text, numbers and "
+                        "booleans are always distinct)"
+                    )
+                    raise ValueError(msg)
         else:
             if self.low is None or self.high is None:
                 msg = f"parameter {self.name!r}: a {self.kind} parameter needs low and high bounds"
                 raise ValueError(msg)
             if not self.low < self.high:
                 msg = f"parameter {self.name!r}: low {self.low} must be < high {self.high}"
+                raise ValueError(msg)
+            if not (math.isfinite(self.low) and math.isfinite(self.high)):
+                msg = f"parameter {self.name!r}: bounds must be finite numbers, got [{self.low}, {self.high}]"
+                raise ValueError(msg)
+            if not self.log and not math.isfinite(float(self.high) - float(self.low)):
+                # high - low overflows: every encoded point would decode to a bound.
+                msg = (f"parameter {self.name!r}: the range [{self.low:g}, {self.high:g}] is wider than the largest "
+                       "float; narrow it (or use log: true for a positive range)")
                 raise ValueError(msg)
             if self.log and self.low <= 0:
                 msg = f"parameter {self.name!r}: lower bound {self.low} must be > 0 when log is true"
@@ -80,10 +97,21 @@ class Param:
         """Number of unit-cube coordinates this parameter takes."""
         return len(self.categories) if self.kind == "categorical" else 1
 
+    @functools.cached_property
+    def _positions(self) -> dict[tuple[str, Any], int]:
+        # category_key -> position: a lookup is one hash, not a pass over 10,000 categories.
+        return {category_key(c): i for i, c in enumerate(self.categories)}
+
+    def _position(self, value: Any) -> int | None:
+        try:
+            return self._positions.get(category_key(value))
+        except TypeError:  # an unhashable value (a list) is no category
+            return None
+
     def contains(self, value: Any) -> bool:
         """Whether ``value`` is a valid value of this parameter."""
         if self.kind == "categorical":
-            return any(_same_category(value, c) for c in self.categories)
+            return self._position(value) is not None
         if isinstance(value, bool) or not isinstance(value, (int, float, np.integer, np.floating)):
             return False
         if not math.isfinite(float(value)):
@@ -103,6 +131,18 @@ class Param:
         v = math.log(float(value)) if self.log else float(value)
         return np.array([min(1.0, max(0.0, (v - lo) / (hi - lo)))])
 
+    def to_unit_many(self, values: Sequence[Any]) -> np.ndarray:
+        """Encode many values at once, shape ``(len(values), width)`` (the same as stacking :meth:`to_unit`)."""
+        n = len(values)
+        if self.kind == "categorical":
+            out = np.zeros((n, len(self.categories)))
+            out[np.arange(n), [self.index(v) for v in values]] = 1.0
+            return out
+        lo, hi = self._scaled_bounds()
+        # math.log, as to_unit uses: numpy's vector log may differ in the last bit, and encodings are compared exactly.
+        v = np.array([math.log(float(x)) for x in values] if self.log else values, dtype=float)
+        return np.clip((v - lo) / (hi - lo), 0.0, 1.0).reshape(n, 1)
+
     def from_unit(self, u: np.ndarray) -> Any:
         """Decode ``width`` coordinates into a valid value (argmax for categories)."""
         if self.kind == "categorical":
@@ -120,9 +160,9 @@ class Param:
 
     def index(self, value: Any) -> int:
         """Position of a category in ``categories``."""
-        for i, c in enumerate(self.categories):
-            if _same_category(value, c):
-                return i
+        i = self._position(value)
+        if i is not None:
+            return i
         msg = f"parameter {self.name!r}: {value!r} is not one of {list(self.categories)}"
         raise ValueError(msg)
 
@@ -146,16 +186,22 @@ class Param:
         return float(self.low), float(self.high)
 
 
-def _category_key(value: Any) -> tuple[str, Any]:
+def category_key(value: Any) -> tuple[str, Any]:
+    """What makes two categories the same: text by its characters, numbers by value, booleans apart.
+
+    ``1`` and ``1.0`` are one category (a logbook's JSON may give back either), while
+    ``1``, ``"1"`` and ``true`` are three: Python's ``True == 1`` must not merge them.
+    Validation (distinct categories) and the encoding (:meth:`Param.index`) both use this key.
+    """
+    if isinstance(value, bool):
+        return ("bool", value)
+    if isinstance(value, (int, float)):
+        return ("number", value)
     return (type(value).__name__, value)
 
 
 def _same_category(a: Any, b: Any) -> bool:
-    # True == 1 in Python; a category list [1, true] must keep them apart.
-    return type(a) is type(b) and a == b or (
-        isinstance(a, (int, float)) and isinstance(b, (int, float))
-        and not isinstance(a, bool) and not isinstance(b, bool) and a == b
-    )
+    return category_key(a) == category_key(b)
 
 
 @dataclass(frozen=True)
@@ -269,9 +315,13 @@ class Space:
         return np.concatenate([p.to_unit(config[p.name]) for p in self.params])
 
     def encode_many(self, configs: Iterable[Mapping[str, Any]]) -> np.ndarray:
-        """Encode configurations, shape ``(n, dim)``."""
-        rows = [self.encode(c) for c in configs]
-        return np.vstack(rows) if rows else np.zeros((0, self.dim))
+        """Encode configurations, shape ``(n, dim)``; column by column, linear in n and fast for 10^5 rows."""
+        configs = list(configs)
+        out = np.zeros((len(configs), self.dim))
+        if configs:
+            for p, s in zip(self.params, self._slices, strict=True):
+                out[:, s] = p.to_unit_many([c[p.name] for c in configs])
+        return out
 
     def decode(self, x: Sequence[float] | np.ndarray) -> dict[str, Any]:
         """Decode a unit-cube point into a valid configuration (clipped, rounded, argmax)."""

@@ -18,6 +18,7 @@ import json
 import math
 import os
 import re
+import stat
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 from importlib import resources
@@ -61,12 +62,18 @@ DEFAULTS: dict[str, Any] = _defaults()
 
 @dataclass(frozen=True)
 class Objective:
-    """What to evaluate and which metric to optimise."""
+    """What to evaluate and which metric to optimise.
+
+    ``function`` names a Python callable passed to ``forebear.run(..., objective=fn)``
+    (``module:qualified.name``); the callable itself travels with each attempt, so the
+    spec holds neither ``call`` nor ``command`` then.
+    """
 
     call: str | None
     command: tuple[str, ...] | None
     metric: str
     sense: str  # "minimize" or "maximize"
+    function: str | None = None
 
     @property
     def sign(self) -> float:
@@ -74,7 +81,11 @@ class Objective:
         return 1.0 if self.sense == "minimize" else -1.0
 
     def to_dict(self) -> dict[str, Any]:
-        out: dict[str, Any] = {"call": self.call} if self.call else {"command": list(self.command or ())}
+        out: dict[str, Any]
+        if self.function:
+            out = {"function": self.function}
+        else:
+            out = {"call": self.call} if self.call else {"command": list(self.command or ())}
         out[self.sense] = self.metric
         return out
 
@@ -197,10 +208,30 @@ def _describe(v: Any) -> str:
     return f"{type(v).__name__} ({v!r})"
 
 
+_SIZE = re.compile(r"^\s*(\d+(?:\.\d+)?)\s*([kmgt]i?b|b)?\s*$", re.IGNORECASE)
+_UNITS = {"b": 1, "kb": 10**3, "mb": 10**6, "gb": 10**9, "tb": 10**12, "kib": 2**10, "mib": 2**20, "gib": 2**30, "tib": 2**40}
+
+
+def memory_bytes(value: Any) -> int:
+    """Bytes from ``400MB``, ``4GiB`` or a whole number of bytes (Dask's units: kB = 1000, KiB = 1024)."""
+    if _is_number(value) and float(value).is_integer() and value > 0:
+        return int(value)
+    m = _SIZE.match(value) if isinstance(value, str) else None
+    if m:
+        n = int(float(m.group(1)) * _UNITS[(m.group(2) or "b").lower()])
+        if n > 0:
+            return n
+    msg = f"must be a memory size such as 400MB or 4GiB (or a whole number of bytes), got {value!r}"
+    raise ValueError(msg)
+
+
 def parse_duration(value: Any) -> float:
     """Seconds from ``90``, ``"90s"``, ``"20m"`` or ``"6h"``; ``ValueError`` otherwise."""
     if _is_number(value):
-        if value <= 0 or not math.isfinite(value):
+        if not math.isfinite(value):
+            msg = f"duration must be a finite number of seconds, got {value}; leave the key out for no limit"
+            raise ValueError(msg)
+        if value <= 0:
             msg = f"duration must be > 0, got {value}"
             raise ValueError(msg)
         return float(value)
@@ -232,7 +263,7 @@ def _int_field(doc: _Doc, path: tuple[str, ...], v: Any, minimum: int) -> int | 
 # sections
 
 
-def _objective(doc: _Doc, data: Any) -> Objective | None:
+def _objective(doc: _Doc, data: Any, function: str | None = None) -> Objective | None:
     path = ("objective",)
     if data is None:
         doc.error(path, "required: give call (module:function) or command (an argv list), and minimize or maximize")
@@ -242,8 +273,15 @@ def _objective(doc: _Doc, data: Any) -> Objective | None:
     _check_keys(doc, path, data, _OBJECTIVE)
     call, command = data.get("call"), data.get("command")
     ok = True
-    if (call is None) == (command is None):
-        doc.error(path, "give exactly one of call (module:function) or command (an argv list)")
+    if function is not None:
+        for key in ("call", "command"):
+            if key in data:
+                doc.error((*path, key), f"the objective is the function passed to forebear.run ({function}); remove {key}, or pass no objective=")
+                ok = False
+        call = command = None
+    elif (call is None) == (command is None):
+        hint = " (or pass the function itself: forebear.run(spec, objective=fn) needs only minimize or maximize here)" if call is None else ""
+        doc.error(path, f"give exactly one of call (module:function) or command (an argv list){hint}")
         ok = False
     if call is not None and (not isinstance(call, str) or not _CALLABLE.match(call)):
         doc.error((*path, "call"), f"must have the form module:function (e.g. mypkg.train:evaluate), got {call!r}")
@@ -270,7 +308,7 @@ def _objective(doc: _Doc, data: Any) -> Objective | None:
     if not isinstance(metric, str) or not metric:
         doc.error((*path, sense), f"must be a metric name, got {_describe(metric)}")
         return None
-    return Objective(call if ok and call else None, argv, metric, sense) if ok else None
+    return Objective(call if ok and call else None, argv, metric, sense, function) if ok else None
 
 
 def _param(doc: _Doc, name: str, body: Any) -> Param | None:
@@ -330,9 +368,13 @@ def _param(doc: _Doc, name: str, body: Any) -> Param | None:
             doc.error((*path, "default"), f"{default!r} is outside [{lo}, {hi}]")
             return None
         default = int(default) if kind == "int" else float(default)
-    if kind == "int":
-        return Param(name, "int", int(lo), int(hi), log=log, default=default)
-    return Param(name, "float", float(lo), float(hi), log=log, default=default)
+    try:
+        if kind == "int":
+            return Param(name, "int", int(lo), int(hi), log=log, default=default)
+        return Param(name, "float", float(lo), float(hi), log=log, default=default)
+    except ValueError as exc:  # the checks that belong to the space itself (a range wider than a float)
+        doc.error((*path, kind), str(exc).split(": ", 1)[-1])
+        return None
 
 
 def _space(doc: _Doc, data: Any) -> Space | None:
@@ -465,6 +507,12 @@ def _cluster(doc: _Doc, data: Any, base: Path) -> Cluster | None:
         workers = body.get("workers")
         if workers is not None and _int_field(doc, (*path, "local", "workers"), workers, 1) is None:
             return None
+        if body.get("memory_limit") is not None:
+            try:
+                memory_bytes(body["memory_limit"])
+            except ValueError as exc:
+                doc.error((*path, "local", "memory_limit"), str(exc))
+                return None
         return Cluster("local", {"workers": None, **body}, tls=tls_paths)
     if kind == "address":
         address = data["address"]
@@ -493,8 +541,17 @@ def _resolve(base: Path, p: str) -> Path:
 # entry points
 
 
-def load(source: str | os.PathLike[str] | Mapping[str, Any], *, base_dir: str | os.PathLike[str] | None = None) -> Spec:
+def load(
+    source: str | os.PathLike[str] | Mapping[str, Any],
+    *,
+    base_dir: str | os.PathLike[str] | None = None,
+    function: str | None = None,
+) -> Spec:
     """Load and validate a spec from a YAML file or a mapping with the same keys.
+
+    ``function`` is the name (``module:qualified.name``) of a Python callable given as the
+    objective (``forebear.run(spec, objective=fn)``): the spec's ``objective`` then holds
+    only ``minimize`` or ``maximize``, and ``call`` or ``command`` is an error.
 
     Raises
     ------
@@ -503,15 +560,19 @@ def load(source: str | os.PathLike[str] | Mapping[str, Any], *, base_dir: str | 
     """
     if isinstance(source, Mapping):
         doc = _Doc({}, [], None)
-        return _build(dict(source), doc, Path(base_dir) if base_dir else Path.cwd(), None)
+        return _build(dict(source), doc, Path(base_dir) if base_dir else Path.cwd(), None, function)
     path = Path(source)
     name = path.name
     try:
-        size = path.stat().st_size
+        st = path.stat()
     except OSError as exc:
         raise SpecError([f"spec: cannot read {path}: {exc.strerror or exc}"]) from None
-    if path.is_dir():
+    size = st.st_size
+    if stat.S_ISDIR(st.st_mode):
         raise SpecError([f"spec: {path} is a folder, not a spec file"])
+    if not stat.S_ISREG(st.st_mode):
+        # A FIFO with no writer would block the read forever; a device has no end.
+        raise SpecError([f"spec: {path} is not a regular file (a FIFO, socket or device); give a spec file"])
     if size > MAX_SPEC_BYTES:
         raise SpecError([f"spec: {name} is {size / 1e6:.1f} MB; a spec must be under {MAX_SPEC_BYTES // 1024} KiB"])
     try:
@@ -524,10 +585,10 @@ def load(source: str | os.PathLike[str] | Mapping[str, Any], *, base_dir: str | 
     data = _read_yaml(text, doc)
     if doc.errors and not isinstance(data, dict):
         raise SpecError(doc.errors)
-    return _build(data, doc, path.resolve().parent, path.resolve())
+    return _build(data, doc, path.resolve().parent, path.resolve(), function)
 
 
-def _build(data: Any, doc: _Doc, base: Path, source: Path | None) -> Spec:
+def _build(data: Any, doc: _Doc, base: Path, source: Path | None, function: str | None = None) -> Spec:
     if data is None:
         raise SpecError([f"spec: the file is empty; a spec needs objective and space{doc.where(())}"])
     if not isinstance(data, dict):
@@ -538,7 +599,7 @@ def _build(data: Any, doc: _Doc, base: Path, source: Path | None) -> Spec:
     if not isinstance(name, str) or not re.match(r"^[\w.-]+$", name or ""):
         doc.error(("name",), f"must be a word of letters, digits, '.', '_' or '-', got {_describe(name)}")
         name = "search"
-    objective = _objective(doc, data.get("objective"))
+    objective = _objective(doc, data.get("objective"), function)
     space = _space(doc, data.get("space"))
     budget = _budget(doc, data.get("budget"), notes)
     history = _history(doc, data.get("history"), base)

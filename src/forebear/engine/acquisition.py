@@ -6,8 +6,12 @@ and standard deviation ``s``, incumbent ``best``: with ``z = (best - mu) / s``,
 1998). ``log EI = log s + log h(z)`` is computed in the numerically stable form
 of Ament et al. (NeurIPS 2023), so that it stays finite and ordered where EI
 itself underflows. A batch is built one point at a time; after each choice the
-point joins the conditioning set with a constant lie (Ginsbourger, Le Riche &
-Carraro 2010), hyperparameters unchanged. Pending trials enter the same way.
+point joins the conditioning set with a lie (Ginsbourger, Le Riche & Carraro
+2010), hyperparameters unchanged: a constant (the minimum, mean or maximum of
+the observed scores: CL-min, CL-mean, CL-max) or each model's own posterior
+mean at the point (``"posterior"``, their kriging believer), which leaves the
+mean where it was and only shrinks the variance there. Pending trials enter
+the same way, under their own lie (docs/engine.md has the measurements).
 """
 
 from __future__ import annotations
@@ -23,8 +27,10 @@ from scipy.stats import qmc
 from forebear.core.space import Space
 from forebear.engine.surrogate.gp import DTYPE, Posterior, as_tensor
 
-LIES = ("min", "mean", "max")
-DEFAULT_LIE = "min"  # chosen by `python -m forebear.bench.proposal lies` (docs/engine.md)
+POSTERIOR = "posterior"  # the lie that is each model's posterior mean at the point
+LIES = ("min", "mean", "max", POSTERIOR)
+DEFAULT_LIE = "min"  # inside one round; chosen by `python -m forebear.bench.proposal lies` (docs/engine.md)
+DEFAULT_PENDING_LIE = POSTERIOR  # running trials; chosen under asynchronous timing (docs/engine.md)
 _C1 = 0.5 * math.log(2 * math.pi)
 _C2 = 0.5 * math.log(math.pi / 2)
 _INV_SQRT_EPS = 1.0 / math.sqrt(torch.finfo(DTYPE).eps)
@@ -93,12 +99,39 @@ class Scorer:
         models = [m.condition(X, y) for m in self.models]
         return Scorer(models, self.weights, min(self.best, float(y.min())), self.feasibility)
 
+    def believe(self, X: torch.Tensor) -> Scorer:
+        """The scorer after adding ``X`` to every model at that model's own posterior mean.
 
-def lie_value(y: np.ndarray, lie: str) -> float:
-    """The constant lie: the minimum, mean or maximum of the observed scores."""
+        Each model's mean stays where it was and its variance at ``X`` shrinks to the noise;
+        the incumbent stays the best observed score (a belief is not a result).
+        """
+        if len(X) == 0:
+            return self
+        models = []
+        for m in self.models:
+            with torch.no_grad():
+                mu, _ = m.predict_t(X)
+            models.append(m.condition(X, mu))
+        return Scorer(models, self.weights, self.best, self.feasibility)
+
+    def lie(self, X: torch.Tensor, value: float | str) -> Scorer:
+        """:meth:`condition` on the constant ``value``, or :meth:`believe` for ``"posterior"``."""
+        if isinstance(value, str):
+            if value != POSTERIOR:
+                msg = f"a lie is a number or {POSTERIOR!r}, got {value!r}"
+                raise ValueError(msg)
+            return self.believe(X)
+        return self.condition(X, torch.full((len(X),), float(value), dtype=X.dtype, device=X.device))
+
+
+def lie_value(y: np.ndarray, lie: str) -> float | str:
+    """The lie for :meth:`Scorer.lie`: the minimum, mean or maximum of the observed scores,
+    or ``"posterior"`` (each model's mean at the point)."""
     if lie not in LIES:
         msg = f"lie must be one of {LIES}, got {lie!r}"
         raise ValueError(msg)
+    if lie == POSTERIOR:
+        return POSTERIOR
     return float({"min": np.min, "mean": np.mean, "max": np.max}[lie](y))
 
 
@@ -197,7 +230,7 @@ def batch(
     space: Space,
     scorer: Scorer,
     q: int,
-    lie: float,
+    lie: float | str,
     *,
     taken: Sequence[np.ndarray] = (),
     anchors: np.ndarray | None = None,
@@ -213,7 +246,8 @@ def batch(
     scorer
         The acquisition, already conditioned on pending points.
     lie
-        The value each chosen point is conditioned on before the next choice.
+        The value each chosen point is conditioned on before the next choice, or
+        ``"posterior"`` (:meth:`Scorer.believe`).
     taken
         Encoded points never to propose (observed, failed, pending).
     anchors
@@ -262,5 +296,5 @@ def batch(
             choice = (cand[i], float(v[i]))
         used.add(keys(choice[0][None, :])[0])
         out.append(choice)
-        scorer = scorer.condition(as_tensor(choice[0][None, :], dev), as_tensor([lie], dev))
+        scorer = scorer.lie(as_tensor(choice[0][None, :], dev), lie)
     return out

@@ -8,16 +8,17 @@ metric by -1).
 
 How a call is answered (docs/engine.md has the reasons and the figures):
 
-1. The initial design (warm start from history, else a Latin hypercube) is
-   proposed first, source ``initial``.
+1. The initial design (warm start from history, else a Latin hypercube) of
+   at least ``min(dim + 1, 10)`` configurations, source ``initial``.
 2. Then the surrogate: the plain GP without history; with history, the
    meta-trained deep kernel (its offset, amplitude and residual refitted in
    closed form on the current search) under the transfer guard, which scores
    both models prequentially across rounds. Failed configurations enter the targets with the worst
-   observed score. Pending configurations and earlier points of the same
-   batch enter as constant lies. Source ``model``.
-3. Random configurations fill what the model cannot (too few scores yet),
-   source ``random``.
+   observed score. Pending configurations (running trials) enter under the
+   ``pending_lie``, earlier points of the same round under the ``lie``.
+   Source ``model``.
+3. While the model has too few scores: more of the design, source
+   ``initial``; random points (``random``) only when neither has a new one.
 
 The meta-trained state is cached on disk (``cache_dir``, default
 ``$FOREBEAR_CACHE`` or ``~/.cache/forebear``) as a ``state_dict`` of tensors,
@@ -27,13 +28,11 @@ loaded with ``torch.load(weights_only=True)``.
 
 from __future__ import annotations
 
-import contextlib
 import math
 import os
 import pickle
-import tempfile
 import time
-from collections.abc import Iterator, Mapping, Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
@@ -43,10 +42,13 @@ import torch
 
 from forebear.core.space import Space
 from forebear.engine import acquisition
+from forebear.engine.cache import default_cache_dir, save_state
+from forebear.engine.runtime import finite as _finite
+from forebear.engine.runtime import threads as _threads
 from forebear.engine.surrogate.deep_kernel import MetaModel, Settings, cache_key
 from forebear.engine.surrogate.gp import Posterior, as_tensor, fit_gp
 from forebear.engine.surrogate.select import Choice, Prequential, choose
-from forebear.engine.warmstart import initial_design
+from forebear.engine.warmstart import extend_design, initial_design
 
 MODELS = ("auto", "gp", "deep-kernel")
 FAILED = ("impute", "classifier")
@@ -78,12 +80,6 @@ class Observation:
     score: float
 
 
-def default_cache_dir() -> Path:
-    """``$FOREBEAR_CACHE`` when set, else ``~/.cache/forebear``."""
-    env = os.environ.get("FOREBEAR_CACHE")
-    return Path(env) if env else Path.home() / ".cache" / "forebear"
-
-
 class Proposer:
     """Proposes batches for one search.
 
@@ -108,7 +104,10 @@ class Proposer:
         ``"auto"`` (deep kernel with the guard when there is history, plain GP
         otherwise), ``"gp"`` or ``"deep-kernel"`` (no guard).
     lie
-        Constant-liar value: ``"min"``, ``"mean"`` or ``"max"`` of the observed scores.
+        The lie for earlier points of the same round: ``"min"``, ``"mean"`` or ``"max"``
+        of the observed scores, or ``"posterior"`` (the model's mean at the point).
+    pending_lie
+        The lie for pending configurations (trials still running), same choices.
     device
         ``"cpu"`` or ``"cuda"`` (for the deep kernel and the GP).
     cache_dir
@@ -117,8 +116,7 @@ class Proposer:
         ``"impute"`` (worst observed score as target) or ``"classifier"`` (EI times
         a probability of feasibility) for crashed or timed-out configurations.
     n_initial
-        Size of the initial design; default: the first batch size (at least
-        ``min(dim + 1, 10)`` without history, so the plain GP has points to fit).
+        Size of the initial design; default :meth:`initial_size`.
     threads
         torch threads while proposing (restored afterwards); ``None`` leaves them alone.
     deep_kernel
@@ -143,6 +141,7 @@ class Proposer:
         guard: bool = True,
         model: str = "auto",
         lie: str = acquisition.DEFAULT_LIE,
+        pending_lie: str = acquisition.DEFAULT_PENDING_LIE,
         device: str = "cpu",
         cache_dir: str | os.PathLike[str] | bool | None = None,
         failed: str = DEFAULT_FAILED,
@@ -159,9 +158,10 @@ class Proposer:
         if model not in MODELS:
             msg = f"model must be one of {MODELS}, got {model!r}"
             raise ValueError(msg)
-        if lie not in acquisition.LIES:
-            msg = f"lie must be one of {acquisition.LIES}, got {lie!r}"
-            raise ValueError(msg)
+        for key, value in (("lie", lie), ("pending_lie", pending_lie)):
+            if value not in acquisition.LIES:
+                msg = f"{key} must be one of {acquisition.LIES}, got {value!r}"
+                raise ValueError(msg)
         if failed not in FAILED:
             msg = f"failed must be one of {FAILED}, got {failed!r}"
             raise ValueError(msg)
@@ -180,6 +180,7 @@ class Proposer:
         self.seed = seed
         self.warm_start, self.guard, self.fine_tune = warm_start, guard, fine_tune
         self.model, self.lie, self.failed, self.device = model, lie, failed, device
+        self.pending_lie = pending_lie
         self.n_initial, self.threads, self.n_candidates = n_initial, threads, n_candidates
         if not 0.0 <= history_share <= 1.0:
             msg = f"history_share must be in [0, 1], got {history_share}"
@@ -252,7 +253,7 @@ class Proposer:
         meta.meta_train([(t.X, t.y) for t in self.tasks])
         self.meta_seconds, self.meta_cached = time.perf_counter() - start, False
         if path is not None:
-            _save_state(meta.state_dict(), path)
+            save_state(meta.state_dict(), path)
         return meta
 
     # -- proposing -----------------------------------------------------------
@@ -275,30 +276,44 @@ class Proposer:
             out: list[Proposal] = []
             # The initial design covers the first k trials of a search; a search that already
             # has k trials (say, one resumed from its logbook) goes straight to the model.
-            k = self._initial_size(n)
+            k = self._k = self._k or self.initial_size(n)
             room = k - (len(obs) + len(fail) + len(pend))
             if self._initial is None and room > 0:
                 self._initial = self._design(k)
-            for config in self._initial or ():
-                if len(out) >= min(n, room):
-                    break
-                key = acquisition.keys(self.space.encode(config)[None, :])[0]
-                if key not in seen:
-                    seen.add(key)
-                    out.append(Proposal(dict(config), "initial"))
+            out += self._fresh(self._initial or (), seen, min(n, room), "initial")
             scored = [o for o in obs if _finite(o.score)]
-            if len(out) < n and len(scored) >= (1 if self.use_meta else 2):
-                extra = pend + [p.config for p in out]
-                for p in self._model_batch(n - len(out), scored, fail, extra, seen):
-                    out.append(p)
-            tries = 0
-            while len(out) < n and tries < 200 * n:
-                tries += 1
-                config = self.space.sample(1, self._rng)[0]
-                key = acquisition.keys(self.space.encode(config)[None, :])[0]
-                if key not in seen:
-                    seen.add(key)
-                    out.append(Proposal(config, "random"))
+            if len(out) < n and len(scored) >= self._enough(k):
+                out += self._model_batch(n - len(out), scored, fail, pend + [p.config for p in out], seen)
+            elif len(out) < n:
+                # Too few scores for the model: more of the design, never random points.
+                taken = self._encode([o.config for o in obs] + fail + pend + [p.config for p in out])
+                more = extend_design(self.space, n - len(out), taken, seed=self.seed + len(taken))
+                out += self._fresh(more, seen, n - len(out), "initial")
+            for _ in range(200):  # only when neither the model nor the design has a new configuration
+                if len(out) >= n:
+                    break
+                out += self._fresh(self.space.sample(n - len(out), self._rng), seen, n - len(out), "random")
+        return out
+
+    def _enough(self, k: int) -> int:
+        """Scores the model needs before it proposes: one with a meta-trained model (its prior
+        carries the rest); without, the design's ``min(dim + 1, 10)`` (at least 2, at most ``k``),
+        so that design points still running are replaced by more of the design, not by a GP
+        fitted on two or three scores (docs/engine.md, "The asynchronous path")."""
+        if self.use_meta:
+            return 1
+        return max(2, min(k, self.space.dim + 1, 10))
+
+    def _fresh(self, configs: Any, seen: set[bytes], limit: int, source: str) -> list[Proposal]:
+        """Up to ``limit`` of ``configs`` not in ``seen`` (which they join), as proposals of ``source``."""
+        out: list[Proposal] = []
+        for config in configs:
+            if len(out) >= limit:
+                break
+            key = acquisition.keys(self.space.encode(config)[None, :])[0]
+            if key not in seen:
+                seen.add(key)
+                out.append(Proposal(dict(config), source))
         return out
 
     def _row(self, config: Mapping[str, Any]) -> np.ndarray | None:
@@ -313,15 +328,12 @@ class Proposer:
         rows = [self._row(c) for c in configs]
         return np.vstack(rows) if rows else np.zeros((0, self.space.dim))
 
-    def _initial_size(self, n: int) -> int:
-        if self._k is None:
-            if self.n_initial is not None:
-                self._k = self.n_initial
-            elif self.tasks and self.warm_start:
-                self._k = n
-            else:
-                self._k = max(n, min(self.space.dim + 1, 10))
-        return self._k
+    def initial_size(self, batch: int) -> int:
+        """Size of the initial design for a first round of ``batch``: ``n_initial`` when given,
+        else ``max(batch, min(dim + 1, 10))``, with or without history (docs/engine.md)."""
+        if self.n_initial is not None:
+            return self.n_initial
+        return max(batch, min(self.space.dim + 1, 10))
 
     def _design(self, k: int) -> list[dict[str, Any]]:
         if not (self.tasks and self.warm_start):
@@ -360,7 +372,7 @@ class Proposer:
         lie = acquisition.lie_value(y, self.lie)
         Xp = self._encode(pending)
         if len(Xp):
-            scorer = scorer.condition(as_tensor(Xp, dev), as_tensor(np.full(len(Xp), lie), dev))
+            scorer = scorer.lie(as_tensor(Xp, dev), acquisition.lie_value(y, self.pending_lie))
         taken = np.vstack([X, Xf, Xp]) if len(Xp) or len(Xf) else X
         anchors = X[np.argsort(y, kind="stable")[:5]]
         picks = acquisition.batch(
@@ -420,41 +432,3 @@ class Proposer:
         Xl = np.vstack([X_ok, X_bad])
         labels = np.concatenate([np.ones(len(X_ok)), -np.ones(len(X_bad))])
         return fit_gp(Xl, labels, restarts=1, seed=self.seed, device=self.device).posterior
-
-
-def _save_state(state: dict[str, torch.Tensor], path: Path) -> None:
-    """Write atomically (temporary file, then rename); a failed write leaves no partial entry."""
-    try:
-        path.parent.mkdir(parents=True, exist_ok=True, mode=0o700)
-        fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=".deep-kernel-", suffix=".tmp")
-        os.close(fd)
-        try:
-            torch.save(state, tmp)
-            os.replace(tmp, path)
-        finally:
-            if os.path.exists(tmp):
-                os.unlink(tmp)
-    except OSError:
-        pass  # the cache is an optimisation; an unwritable cache folder must not stop a search
-
-
-@contextlib.contextmanager
-def _threads(n: int | None) -> Iterator[None]:
-    """Run with ``n`` torch threads, restoring the process-wide setting afterwards.
-
-    Small GP matrices gain nothing from more threads, and on a shared machine
-    extra threads spin and slow everything down.
-    """
-    old = torch.get_num_threads()
-    if n is None or n == old:
-        yield
-        return
-    torch.set_num_threads(n)
-    try:
-        yield
-    finally:
-        torch.set_num_threads(old)
-
-
-def _finite(x: Any) -> bool:
-    return isinstance(x, (int, float, np.floating)) and not isinstance(x, bool) and math.isfinite(float(x))

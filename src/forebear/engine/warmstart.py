@@ -16,9 +16,10 @@ from collections.abc import Callable, Sequence
 from typing import Any
 
 import numpy as np
+from scipy.stats import qmc
 
 from forebear.core.space import Space
-from forebear.engine.acquisition import keys
+from forebear.engine.acquisition import keys, project
 
 # impute(task_index, X_query) -> task-normalised predicted scores in [0, 1]
 Imputer = Callable[[int, np.ndarray], np.ndarray]
@@ -159,3 +160,34 @@ def _greedy(S: np.ndarray, k: int) -> np.ndarray:
 def _tournament(fit: list[float], rng: np.random.Generator) -> int:
     a, b = rng.integers(len(fit), size=2)
     return int(a if fit[a] <= fit[b] else b)
+
+
+def extend_design(space: Space, n: int, taken: np.ndarray, seed: int = 0, n_candidates: int = 1024) -> list[dict[str, Any]]:
+    """``n`` more space-filling configurations, each as far as possible from ``taken`` and each other.
+
+    Greedy maximin over scrambled Sobol candidates in the encoded unit cube: what a search
+    proposes when its model cannot yet (too few scores) and its initial design is used up,
+    instead of uniform random points. Fewer than ``n`` when the space has no more distinct points.
+    """
+    if n <= 0:
+        return []
+    cand = project(space, qmc.Sobol(d=space.dim, scramble=True, seed=seed).random(n_candidates))
+    cand_keys = keys(cand)
+    used = set(keys(taken)) if len(taken) else set()
+    fresh = [i for i, k in enumerate(cand_keys) if k not in used]
+    cand = cand[fresh]
+    cand_keys = [cand_keys[i] for i in fresh]
+    near = np.full(len(cand), np.inf)
+    if len(taken):
+        near = np.min(np.linalg.norm(cand[:, None, :] - np.asarray(taken)[None, :, :], axis=2), axis=1)
+    out: list[dict[str, Any]] = []
+    for _ in range(n):
+        i = int(np.argmax(near)) if len(cand) else -1
+        if i < 0 or near[i] < 0:
+            break
+        used.add(cand_keys[i])
+        out.append(space.decode(cand[i]))
+        near = np.minimum(near, np.linalg.norm(cand - cand[i], axis=1))
+        # Candidates equal to one already chosen (after rounding) are never picked again.
+        near[[j for j, k in enumerate(cand_keys) if k in used]] = -1.0
+    return out

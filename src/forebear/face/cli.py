@@ -2,7 +2,8 @@
 
 Output for people goes to stderr; ``--json`` output for programs goes to
 stdout. Exit status: 0 success, 1 the search ran but nothing scored, 2 bad
-input. No traceback reaches the user unless ``--debug`` is given.
+input, 128 + the signal when ``run`` stopped at once on a second Ctrl-C or
+SIGTERM (130, 143). No traceback reaches the user unless ``--debug`` is given.
 """
 
 from __future__ import annotations
@@ -11,6 +12,7 @@ import csv
 import functools
 import importlib
 import json
+import math
 import sys
 from collections.abc import Callable
 from pathlib import Path
@@ -18,6 +20,7 @@ from typing import Any
 
 import click
 
+from forebear.records.files import NotRegularFile, check_regular, write_atomic
 from forebear.records.logbook import (
     Logbook,
     LogbookBusy,
@@ -25,9 +28,12 @@ from forebear.records.logbook import (
     LogbookMismatch,
     TrialTable,
     check_header,
+    is_logbook,
 )
+from forebear.records.status import best_payload, status_payload
 
 EXIT_OK, EXIT_NOTHING_SCORED, EXIT_BAD_INPUT = 0, 1, 2
+EXIT_INTERRUPTED = 130  # 128 + SIGINT, the shell's convention: stopped at once (143 after SIGTERM)
 
 
 class Exit(Exception):
@@ -43,7 +49,32 @@ def say(message: str = "") -> None:
 
 
 def emit_json(payload: Any) -> None:
-    click.echo(json.dumps(payload, indent=2, default=str))
+    """Standard JSON on stdout: a non-finite number (from a hand-edited logbook) becomes null, never NaN or Infinity."""
+    click.echo(json.dumps(_finite(payload), indent=2, default=str, allow_nan=False))
+
+
+def _finite(value: Any) -> Any:
+    if isinstance(value, float):
+        return value if math.isfinite(value) else None
+    if isinstance(value, dict):
+        return {k: _finite(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_finite(v) for v in value]
+    return value
+
+
+def skipped_note(table: TrialTable) -> str | None:
+    """One line on what the fold skipped (unreadable lines, records with wrong field types), with line numbers."""
+    parts = []
+    if table.skipped:
+        parts.append(f"{table.skipped} unreadable line(s)")
+    if table.invalid:
+        parts.append(f"{len(table.invalid)} record(s) with wrong field types ({table.invalid[0][1]})")
+    if not parts:
+        return None
+    lines = table.bad_lines
+    where = f" at line(s) {', '.join(map(str, lines[:10]))}{', ...' if len(lines) > 10 else ''}" if lines else ""
+    return f"note: {' and '.join(parts)} skipped{where}"
 
 
 def guarded(fn: Callable[..., Any]) -> Callable[..., Any]:
@@ -71,7 +102,7 @@ def guarded(fn: Callable[..., Any]) -> Callable[..., Any]:
                 for line in exc.errors:
                     say(f"error: {line}")
                 say(f"forebear: the spec has {len(exc.errors)} error{'s' if len(exc.errors) != 1 else ''}; nothing was written")
-            elif isinstance(exc, (LogbookBusy, LogbookMismatch, LogbookError)):
+            elif isinstance(exc, (LogbookBusy, LogbookMismatch, LogbookError, NotRegularFile)):
                 say(f"forebear: {exc.args[-1] if exc.args else exc}")
             elif isinstance(exc, (ValueError, TypeError, OSError, ImportError, LookupError)):
                 say(f"forebear: {type(exc).__name__}: {exc}".replace("\n", " "))
@@ -137,7 +168,18 @@ def run(spec: str, extend: bool, cancel_running: bool, detach: bool, quiet: bool
     else:
         controller = _optional("forebear.loop.controller", "forebear run")
         from forebear.face.progress import Progress
-        result = controller.Controller(loaded, extend=extend, quiet=quiet, cancel_running=cancel_running, display=Progress).run()
+        from forebear.loop.stopping import StopNow
+
+        try:
+            result = controller.Controller(loaded, extend=extend, quiet=quiet, cancel_running=cancel_running, display=Progress).run()
+        except StopNow as exc:
+            raise Exit(
+                f"stopped at once on {exc.why}: running attempts were recorded as lost and the logbook closed; "
+                f"run the same command to resume",
+                exc.exit_status,
+            ) from None
+        except KeyboardInterrupt:
+            raise Exit("interrupted before the search loop started; nothing was recorded as lost; run the same command to resume", EXIT_INTERRUPTED) from None
     if as_json:
         emit_json(result.to_dict())
     if result.best is None and not detach:
@@ -191,18 +233,7 @@ def status(logbook: str, as_json: bool) -> None:
     counts = table.counts()
     best = table.best()
     header = table.header or {}
-    payload = {
-        "logbook": logbook,
-        "search": header.get("name"),
-        table.sense: table.metric,
-        "trials": len(table),
-        "counts": counts,
-        "finished": table.finished,
-        "best": _best_payload(table) if best else None,
-        "closed": (table.closed or {}).get("reason"),
-        "skipped_lines": table.skipped,
-        "running": [{"trial": t.trial, "attempt": t.last_attempt, "worker": t.attempts[-1].worker if t.attempts else None} for t in table.by_state("running")],
-    }
+    payload = status_payload(table, logbook)
     if as_json:
         emit_json(payload)
         return
@@ -216,22 +247,15 @@ def status(logbook: str, as_json: bool) -> None:
         say(f"  closed: {table.closed.get('reason')}")
     elif table.trials:
         say("  not closed (running, or the controller stopped without closing)")
-    if table.skipped:
-        say(f"  note: {table.skipped} unreadable line(s) skipped")
+    note = skipped_note(table)
+    if note:
+        say(f"  {note}")
 
 
 def _best_payload(table: TrialTable) -> dict[str, Any]:
-    best = table.best()
-    assert best is not None
-    return {
-        "trial": best.trial,
-        "score": best.score,
-        "config": best.config,
-        "metrics": best.metrics,
-        table.sense: table.metric,
-        "seconds": best.seconds,
-        "attempts": len(best.attempts),
-    }
+    payload = best_payload(table)
+    assert payload is not None
+    return payload
 
 
 @main.command()
@@ -241,6 +265,9 @@ def _best_payload(table: TrialTable) -> dict[str, Any]:
 def best(logbook: str, as_json: bool) -> None:
     """Print the best configuration recorded in LOGBOOK."""
     table = _table(logbook)
+    note = skipped_note(table)
+    if note:
+        say(note)
     if table.best() is None:
         if as_json:
             emit_json(None)
@@ -257,27 +284,65 @@ def best(logbook: str, as_json: bool) -> None:
 @main.command()
 @click.argument("logbook", type=click.Path(dir_okay=False))
 @click.option("--csv", "csv_path", required=True, type=click.Path(dir_okay=False), help="The CSV file to write.")
+@click.option("--replace", is_flag=True, help="Write over FILE when it exists (never over a forebear logbook).")
 @guarded
-def export(logbook: str, csv_path: str) -> None:
-    """Write the trial table of LOGBOOK as a CSV file."""
+def export(logbook: str, csv_path: str, replace: bool) -> None:
+    """Write the trial table of LOGBOOK as a CSV file.
+
+    Columns: ``trial``, ``state``, ``score``, one per parameter, ``metric.<name>`` per metric,
+    then ``seconds``, ``attempts``, ``round``, ``source``, ``model``, ``error``. A parameter whose
+    name is one of these columns or holds a dot is written as ``config.<name>``, so no two
+    columns share a name.
+    """
+    _check_export_target(Path(logbook), Path(csv_path), replace)
     table = _table(logbook)
-    params: list[str] = []
-    metrics: list[str] = []
-    for t in table:
-        params += [k for k in t.config if k not in params]
-        metrics += [k for k in t.metrics if k not in metrics]
-    fields = ["trial", "state", "score", *params, *[f"metric.{m}" for m in metrics], "seconds", "attempts", "round", "source", "model", "error"]
-    with open(csv_path, "w", newline="") as fh:
+    header, rows = export_rows(table)
+
+    def write(fh: Any) -> None:
         w = csv.writer(fh)
-        w.writerow(fields)
-        for t in table:
-            w.writerow([
-                t.trial, t.state, "" if t.score is None else t.score,
-                *[t.config.get(p, "") for p in params],
-                *[t.metrics.get(m, "") for m in metrics],
-                "" if t.seconds is None else t.seconds, len(t.attempts), t.round, t.source, t.model or "", t.error or "",
-            ])
+        w.writerow(header)
+        w.writerows(rows)
+
+    write_atomic(csv_path, write, newline="")
     say(f"wrote {len(table)} trials to {csv_path}")
+
+
+EXPORT_HEAD = ("trial", "state", "score")
+EXPORT_TAIL = ("seconds", "attempts", "round", "source", "model", "error")
+
+
+def export_rows(table: TrialTable) -> tuple[list[str], list[list[Any]]]:
+    """The header and rows of ``forebear export``: export's own columns never share a name with a parameter."""
+    params: dict[str, None] = {}
+    metrics: dict[str, None] = {}
+    for t in table:
+        params.update(dict.fromkeys(t.config))
+        metrics.update(dict.fromkeys(t.metrics))
+    own = set(EXPORT_HEAD) | set(EXPORT_TAIL)
+    # Export's own names hold no dot; a prefixed name always does: the two sets cannot meet.
+    columns = [f"config.{p}" if p in own or "." in p else p for p in params]
+    header = [*EXPORT_HEAD, *columns, *[f"metric.{m}" for m in metrics], *EXPORT_TAIL]
+    rows = [
+        [
+            t.trial, t.state, "" if t.score is None else t.score,
+            *[t.config.get(p, "") for p in params],
+            *[t.metrics.get(m, "") for m in metrics],
+            "" if t.seconds is None else t.seconds, len(t.attempts), t.round, t.source, t.model or "", t.error or "",
+        ]
+        for t in table
+    ]
+    return header, rows
+
+
+def _check_export_target(logbook: Path, target: Path, replace: bool) -> None:
+    """Refuse to write over a forebear logbook (the one read included), or over any file without ``--replace``."""
+    if not target.exists():
+        return
+    check_regular(target, "export target")
+    if (logbook.exists() and target.samefile(logbook)) or is_logbook(target):
+        raise Exit(f"{target} is a forebear logbook; export never writes over one (choose another file name)")
+    if not replace:
+        raise Exit(f"{target} already exists; pass --replace to write over it")
 
 
 # -- report / demo / bench --------------------------------------------------
@@ -337,6 +402,7 @@ _bench_command("proposal", "Proposal latency and meta-training time.", [])
 _bench_command("overhead", "Worker utilisation and per-trial overhead on a local cluster.", [])
 _bench_command("quality", "Regret on transfer task families (leave one task out).", [
     click.option("--smoke", is_flag=True, help="One family, 3 held-out tasks, 2 seeds, 15 trials."),
+    click.option("--sync", is_flag=True, help="Synchronous rounds instead of the asynchronous mode (the default)."),
     click.option("--out", "out_dir", default=None, type=click.Path(file_okay=False), help="Folder for plots and tables."),
 ])
 _bench_command("faults", "Fault-injection campaign against a loopback cluster.", [

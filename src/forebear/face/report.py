@@ -39,6 +39,7 @@ TOP_N = 10
 OUTCOME_COLORS = {"scored": "#2e7d32", "failed": "#c62828", "lost": "#ef6c00", "running": "#1565c0"}
 SOURCE_COLORS = {"initial": "#6a1b9a", "model": "#00838f", "random": "#9e9d24"}
 
+MAX_CATEGORY_TICKS = 40  # a categorical axis labels each category up to this many, else only those tried
 
 def write_report(table: TrialTable, out_dir: Path, logbook: Path | None = None) -> Path:
     """Write ``report.html`` and the PNGs it shows into ``out_dir``.
@@ -207,12 +208,21 @@ def _parameters(table: TrialTable, space: Space) -> Figure:
     rng = np.random.default_rng(0)  # jitter of categorical points; fixed so reruns draw the same plot
     for ax, p in zip(axes, params, strict=False):  # axes may outnumber params
         pts = [(t.config[p.name], float(t.score), t) for t in scored if p.name in t.config]  # type: ignore[arg-type]
+        title = p.name
         if p.kind == "categorical":
             labels = [str(c) for c in p.categories]
+            if len(labels) > MAX_CATEGORY_TICKS:
+                # Thousands of tick labels take matplotlib minutes to lay out: show the categories tried.
+                tried = {str(v) for v, _, _ in pts}
+                labels = [lab for lab in labels if lab in tried]
+                title = f"{p.name} ({len(labels)} of {len(p.categories)} categories tried)"
             pos = {lab: i for i, lab in enumerate(labels)}
             x = np.array([pos.get(str(v), -1) for v, _, _ in pts], dtype=float)
             x = x + rng.uniform(-0.15, 0.15, size=len(x))
-            ax.set_xticks(range(len(labels)), labels, fontsize=7, rotation=30 if len(labels) > 3 else 0)
+            if len(labels) <= MAX_CATEGORY_TICKS:
+                ax.set_xticks(range(len(labels)), labels, fontsize=7, rotation=30 if len(labels) > 3 else 0)
+            else:
+                ax.set_xticks([])
             ax.set_xlim(-0.6, len(labels) - 0.4)
         else:
             x = np.array([float(v) for v, _, _ in pts])
@@ -236,7 +246,7 @@ def _parameters(table: TrialTable, space: Space) -> Figure:
         for xi, (_, _, t) in zip(x, pts, strict=True):
             if best is not None and t.trial == best.trial:
                 ax.scatter([xi], [t.score], s=90, facecolors="none", edgecolors="black", lw=1.5)
-        ax.set_title(p.name, fontsize=9)
+        ax.set_title(title, fontsize=9)
         ax.tick_params(labelsize=7)
         ax.grid(alpha=0.3)
     for ax in axes[len(params):]:

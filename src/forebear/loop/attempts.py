@@ -16,7 +16,7 @@ from distributed import as_completed
 from distributed.client import FutureCancelledError
 from distributed.scheduler import KilledWorker
 
-from forebear.cluster.dispatch import KEY_PREFIX
+from forebear.cluster.dispatch import KEY_PREFIX, attempt_memory
 from forebear.cluster.runner import AttemptResult, AttemptTask, run_attempt
 from forebear.loop.book import RETRY_REASONS
 from forebear.records.logbook import ensure_folder, record
@@ -27,7 +27,7 @@ class Attempts:
 
     It uses the controller's ``spec``, ``book``, ``logbook``, ``inflight``,
     ``retry_queue``, ``ready``, ``stop``, ``shared``, ``logs``, ``token``,
-    ``session`` and ``_dispatch``.
+    ``session``, ``function`` and ``_dispatch``.
     """
 
     spec: Any
@@ -41,6 +41,7 @@ class Attempts:
     logs: Path
     token: str
     session: str
+    function: bytes | None
     _dispatch: Any
 
     # -- submitting -----------------------------------------------------------
@@ -75,6 +76,9 @@ class Attempts:
             token=self.token,
             cwd=str(spec.base_dir),
             retryable=spec.budget.retry_errors and retry_left,
+            memory_limit=attempt_memory(spec),
+            function=self.function,
+            function_name=spec.objective.function,
         )
         key = f"{KEY_PREFIX}{spec.name}-{self.session}-{tid}-{attempt}"
         fut = self._dispatch.submit(run_attempt, task, key=key, resources=spec.resources)
@@ -150,6 +154,8 @@ class Attempts:
             self.book.state[tid] = "failed"
             self.book.errors[tid] = res.error or ""
             return f"trial {tid} failed: {first_line}"
+        if res.outcome == "superseded":
+            return f"trial {tid} attempt {attempt}: {res.error}"  # its lost record is already written
         if res.outcome == "timeout":
             return self._lost(tid, attempt, "timeout", (res.error or "timed out").split("\n", 1)[0])
         return self._lost(tid, attempt, "interrupted", "cancelled")

@@ -37,6 +37,20 @@ class SearchResult:
     def from_table(cls, table: TrialTable, logbook: Path, closed: str) -> SearchResult:
         return cls(table.best(), list(table), logbook, closed, table.counts(), table.sense, table.metric)
 
+    def _repr_html_(self) -> str:
+        """The result as Jupyter shows it: why it closed, counts, best trial, trials."""
+        from forebear.records import html
+
+        finished = sum(1 for t in self.trials if t.terminal)
+        return "".join([
+            html.STYLE,
+            f"<div><strong>search result</strong> &middot; closed ({html.esc(self.closed)}) &middot; "
+            f"{html.esc(self.sense)} {html.esc(self.metric or '?')} &middot; logbook <code>{html.esc(self.logbook)}</code></div>",
+            html.counts_table(self.counts, finished),
+            html.best_table(self.best, self.metric, self.sense),
+            html.trials_table(self.trials, metric=self.metric),
+        ])
+
 
 @dataclass
 class Book:

@@ -21,7 +21,6 @@ from __future__ import annotations
 import logging
 import os
 import secrets
-import signal
 import threading
 import time
 from collections import deque
@@ -31,15 +30,18 @@ from typing import Any
 
 from distributed import as_completed
 
+from forebear.cluster.dashboard import publish
 from forebear.cluster.dispatch import KEY_PREFIX, Dispatch, connect
 from forebear.cluster.runner import PROBE_NAME
+from forebear.cluster.shipping import ObjectiveError, pack
 from forebear.core.spec import Spec
-from forebear.engine.proposer import Observation, Proposer
+from forebear.engine.proposer import Proposer
 from forebear.loop.attempts import Attempts
 from forebear.loop.book import Book, SearchResult
-from forebear.loop.proposing import ProposalEngine
-from forebear.loop.resume import SpecChanged, search_record, spec_changes
-from forebear.loop.stopping import Stop, deadline
+from forebear.loop.proposing import ProposalEngine, Rounds
+from forebear.loop.resume import SpecChanged, function_note, search_record, spec_changes
+from forebear.loop.schedule import Timing
+from forebear.loop.stopping import Stop, StopNow, deadline
 from forebear.records.logbook import (
     ControllerLock,
     Logbook,
@@ -57,7 +59,6 @@ log = logging.getLogger("forebear.loop.controller")
 RETRY_REASONS = ("worker", "timeout")  # lost attempts that use up a retry; restarts and interrupts do not
 BUDGET_KEYS = ("trials", "batch", "concurrency", "trial_timeout", "retries", "retry_errors", "wall_time")
 EXTENDABLE = ("trials", "wall_time")
-LOOKAHEAD = 2  # a new round starts when fewer proposals than free slots + this are ready
 RESOURCE_CHECK_EVERY = 5.0  # seconds between checks that some worker still offers the trials' resources
 
 
@@ -65,7 +66,7 @@ RESOURCE_CHECK_EVERY = 5.0  # seconds between checks that some worker still offe
 # the loop
 
 
-class Controller(Attempts):
+class Controller(Attempts, Rounds):
     """Drives one search to its budget (see the module docstring).
 
     Parameters
@@ -81,7 +82,8 @@ class Controller(Attempts):
     dispatch
         An existing :class:`Dispatch` to use instead of the spec's cluster (the plugin's).
     handle_signals
-        Install the two-stage Ctrl-C handler (only possible in the main thread).
+        Install the two-stage Ctrl-C / SIGTERM handler (only possible in the main thread;
+        see :mod:`forebear.loop.stopping`).
     proposer
         A :class:`Proposer` to use instead of the default one for the spec (benchmarks
         configure the engine this way; the spec's history is then not loaded).
@@ -90,6 +92,9 @@ class Controller(Attempts):
         done=...)``, it returns an object with ``message``, ``update`` and ``close``
         (:class:`forebear.face.progress.Progress`). Without it, messages go to stderr
         unless ``quiet``.
+    objective
+        The Python callable to evaluate, for a spec whose objective names a ``function``
+        (``forebear.run(spec, objective=fn)``); it is shipped to the workers with each attempt.
     """
 
     def __init__(
@@ -103,7 +108,12 @@ class Controller(Attempts):
         handle_signals: bool = True,
         proposer: Proposer | None = None,
         display: Callable[..., Any] | None = None,
+        objective: Callable[..., Any] | None = None,
     ) -> None:
+        if (objective is None) != (spec.objective.function is None):
+            raise ObjectiveError("a spec whose objective is a function needs that function (objective=), and only such a spec")
+        self.function = None if objective is None else pack(objective)
+        self.link: str | None = None  # the search's page on the Dask dashboard, once it is served
         self.spec = spec
         self._display = display
         self._proposer = proposer
@@ -115,7 +125,8 @@ class Controller(Attempts):
         self._dispatch = dispatch
         self._own_dispatch = dispatch is None
         self.handle_signals = handle_signals and threading.current_thread() is threading.main_thread()
-        self.stop = Stop()
+        self.stop = Stop(self.say, lambda: len(self.inflight))
+        self.stop.cancel_running = cancel_running
         self.session = secrets.token_hex(4)
         self.token = secrets.token_hex(16)
         self.progress: Any = None  # the live display, made by ``display`` when the loop starts
@@ -126,9 +137,12 @@ class Controller(Attempts):
         self.ready: deque[int] = deque()  # proposed, recorded, not yet submitted
         self._job: Future[list[Any]] | None = None
         self._job_size = 0
+        self._job_started = 0.0
+        self.timing = Timing()  # trial and refit durations: how far to propose ahead (loop/schedule.py)
         self._exhausted = False
         self._ac: as_completed | None = None
         self._next_resource_check = time.monotonic() + RESOURCE_CHECK_EVERY
+        self._read_at = 0  # the logbook's size when the controller read it at start
 
     # -- output ---------------------------------------------------------------
 
@@ -154,6 +168,7 @@ class Controller(Attempts):
 
     def _run_locked(self) -> SearchResult:
         spec = self.spec
+        self._read_at = self.logbook.size()  # results that arrive after this are seen by _reconcile
         records, skipped = self.logbook.read()
         if skipped and not records and b"\n" in spec.logbook.read_bytes():
             # Whole lines and none of them ours: someone else's file. Writing would append to it and
@@ -171,6 +186,9 @@ class Controller(Attempts):
             changes, grew = spec_changes(headers[-1], spec, self.extend)
             if changes:
                 raise SpecChanged(str(spec.logbook), changes)
+            note = function_note(headers[-1], spec)
+            if note:
+                self.say(note)
             if grew:
                 new_header = search_record(spec)
         else:
@@ -185,6 +203,7 @@ class Controller(Attempts):
             if self._dispatch is None:
                 self._dispatch = connect(spec, self.say)
             self._dispatch.check_resources(spec.resources)
+            self.link = publish(self._dispatch, spec, self.say)
             if new_header is not None:
                 self.logbook.append(new_header)
             return self._drive(engine, table)
@@ -222,18 +241,34 @@ class Controller(Attempts):
                 "the controller writes their records and logs from the results it collects"
             )
 
-    def _reconcile(self, table: TrialTable) -> list[dict[str, Any]]:
-        """Records that settle what the last controller left: lost attempts and exhausted retries."""
-        recs: list[dict[str, Any]] = []
+    def _reconcile(self, table: TrialTable) -> None:
+        """Settle what the last controller left: attempts it left running are lost (``restart``), then retried.
+
+        Each ``lost`` record is written only if the attempt's own result did not arrive since the
+        logbook was read (checked under the lock); a result that did arrive stands.
+        """
+        arrived = []
         for t in table:
             if t.terminal:
                 continue
             if t.state == "running":
-                recs.append(record("lost", trial=t.trial, attempt=t.last_attempt, reason="restart"))
+                lost = record("lost", trial=t.trial, attempt=t.last_attempt, reason="restart")
+                if not self.logbook.append_unless(lost, ("scored", "failed"), self._read_at):
+                    arrived.append(t.trial)
+                    continue
                 self.say(f"trial {t.trial}: attempt {t.last_attempt} was running when the last controller stopped; resubmitting")
             self.book.state[t.trial] = "queued"
             self.retry_queue.append(t.trial)
-        return recs
+        if arrived:
+            fresh = Book.from_table(self.logbook.fold())
+            for tid in arrived:
+                for part in ("state", "scores", "attempts", "charged", "errors"):
+                    value = getattr(fresh, part).get(tid)
+                    if value is not None:
+                        getattr(self.book, part)[tid] = value
+                if self.book.state[tid] not in ("scored", "failed"):
+                    self.book.state[tid] = "queued"
+                    self.retry_queue.append(tid)
 
     # -- the loop -------------------------------------------------------------
 
@@ -242,20 +277,17 @@ class Controller(Attempts):
         budget = spec.budget
         self._probe()
         self._check_shared()
-        recs = self._reconcile(table)
-        if recs:
-            self.logbook.append_many(recs)
+        self._reconcile(table)
         if self._display is not None:
             self.progress = self._display(budget.trials, metric=spec.objective.metric, quiet=self.quiet, done=self.book.finished)
         ends = deadline(budget.wall_time)
         ac = as_completed(with_results=False)
         self._ac = ac
-        previous = signal.getsignal(signal.SIGINT) if self.handle_signals else None
-        if self.handle_signals:
-            signal.signal(signal.SIGINT, self._on_sigint)
+        restore = self.stop.install() if self.handle_signals else None
         closed = "budget"
         try:
             while True:
+                self.stop.check()
                 if ends is not None and time.monotonic() >= ends and self.stop.reason is None:
                     self.stop.reason = "wall_time"
                     self.stop.cancel = True
@@ -276,16 +308,16 @@ class Controller(Attempts):
                         break
                 self._watch_resources()
                 wait = 0.5 if ends is None else max(0.0, min(0.5, ends - time.monotonic()))
-                events = [self._collect(fut) for fut in _ready(ac, wait, self)]
+                events = [self._collect(self._timed(fut)) for fut in _ready(ac, wait, self)]
                 if events and self.stop.reason is None:
                     self._harvest()
                     self._fill(ac)  # refill before showing, so "running" counts the new attempts
                 for event in events:
                     if event:
                         self._show(event)
-        except KeyboardInterrupt:
+        except KeyboardInterrupt as exc:
             closed = "interrupted"
-            self.say("stopping at once")
+            self.say(f"stopping at once ({exc.why})" if isinstance(exc, StopNow) else "stopping at once")
             self._cancel_all()
             self._close(closed)
             raise
@@ -301,8 +333,8 @@ class Controller(Attempts):
                 pass
             raise
         finally:
-            if self.handle_signals:
-                signal.signal(signal.SIGINT, previous)
+            if restore is not None:
+                restore()
             if self.progress is not None:
                 self.progress.close()
         return self._close(closed)
@@ -330,78 +362,10 @@ class Controller(Attempts):
         )
         return SearchResult.from_table(table, self.spec.logbook, reason)
 
-    def _on_sigint(self, signum: int, frame: Any) -> None:
-        self.stop.presses += 1
-        if self.stop.presses > 1:
-            raise KeyboardInterrupt
-        self.stop.reason = "interrupted"
-        if self.cancel_running:
-            self.stop.cancel = True
-            self.say("interrupted: cancelling running attempts (Ctrl-C again to stop at once)")
-        else:
-            self.say(f"interrupted: no new trials; waiting for {len(self.inflight)} running attempt(s) (Ctrl-C again to stop at once)")
-
     def request_stop(self, cancel: bool = False) -> None:
         """Stop proposing (and cancel running attempts with ``cancel``), as the first Ctrl-C does."""
         self.stop.reason = "interrupted"
         self.stop.cancel = cancel
-
-    # -- proposing ------------------------------------------------------------
-
-    def _propose_ahead(self, engine: ProposalEngine) -> None:
-        """Start a round of up to ``batch`` proposals off the loop when few are ready.
-
-        The round is computed while the workers run and starts while proposals are still
-        ready (``LOOKAHEAD``), so a worker that finishes gets its next trial without waiting
-        for a refit; a refit has about ``LOOKAHEAD`` trial completions' time to finish.
-        """
-        if self._job is not None or self._exhausted:
-            return
-        budget = self.spec.budget
-        free = budget.concurrency - len(self.inflight) - len(self.retry_queue)
-        left = budget.trials - len(self.book.configs)
-        if left <= 0 or len(self.ready) >= max(0, free) + LOOKAHEAD:
-            return
-        n = min(budget.batch, left)
-        sign = self.spec.objective.sign
-        observed = [Observation(self.book.configs[t], sign * s) for t, s in self.book.scores.items()]
-        failed = [self.book.configs[t] for t, s in self.book.state.items() if s == "failed"]
-        pending = [self.book.configs[t] for t, s in self.book.state.items() if s in ("queued", "running")]
-        self._job = engine.submit(n, observed, failed, pending)
-        self._job_size = n
-        self._job.add_done_callback(self._wake)
-
-    def _wake(self, _job: Any) -> None:
-        ac = self._ac
-        if ac is not None:
-            with ac.thread_condition:
-                ac.thread_condition.notify_all()
-
-    def _harvest(self) -> None:
-        """Record a finished round as ``proposed`` and queue its trials."""
-        job = self._job
-        if job is None or not job.done():
-            return
-        self._job = None
-        proposals = job.result()[: self._job_size]
-        if not proposals:
-            self._exhausted = True
-            return
-        round_no = self.book.rounds
-        self.book.rounds += 1
-        first = max(self.book.configs, default=-1) + 1
-        recs = []
-        for i, p in enumerate(proposals):
-            tid = first + i
-            recs.append(record("proposed", trial=tid, round=round_no, config=p.config, source=p.source, model=p.model, acquisition=p.acquisition))
-        self.logbook.append_many(recs)
-        for rec in recs:
-            tid = rec["trial"]
-            self.book.configs[tid] = dict(rec["config"])
-            self.book.state[tid] = "queued"
-            self.book.attempts[tid] = 0
-            self.book.charged[tid] = 0
-            self.ready.append(tid)
 
     def _show(self, event: str) -> None:
         if self.progress is None:

@@ -1,8 +1,11 @@
-"""The proposer's own process: proposal rounds computed off the controller's loop.
+"""Proposal rounds: when the loop starts one, and the proposer's own process that computes it.
 
-One spawned process per controller process is started once and reused (torch
-imports take seconds); each running search registers its proposer there under
-a key. A proposer that cannot be pickled runs in a thread instead.
+:class:`Rounds` (a mixin of the controller) starts a round when
+:mod:`forebear.loop.schedule` asks for one and records it when it comes back.
+:class:`ProposalEngine` computes rounds off the loop: one spawned process per
+controller process is started once and reused (torch imports take seconds);
+each running search registers its proposer there under a key. A proposer that
+cannot be pickled runs in a thread instead.
 """
 
 from __future__ import annotations
@@ -19,6 +22,8 @@ from concurrent.futures.process import BrokenProcessPool
 from typing import Any
 
 from forebear.engine.proposer import Observation, Proposer
+from forebear.loop.schedule import Timing, round_size
+from forebear.records.logbook import record
 
 _REMOTE: dict[str, Proposer] = {}  # in the proposer process: the proposer of each search, by key
 _POOL: ProcessPoolExecutor | None = None  # in the controller's process: one proposer process, reused
@@ -127,3 +132,96 @@ class ProposalEngine:
             _proposer_pool().submit(_remote_drop, self.key)
         except BrokenProcessPool:
             pass
+
+
+class Rounds:
+    """The controller's proposing half: start rounds by the schedule, record them when done.
+
+    It uses the controller's ``spec``, ``book``, ``logbook``, ``inflight``, ``ready``,
+    ``retry_queue`` and ``_ac``, and keeps ``timing`` (trial and refit durations).
+    """
+
+    spec: Any
+    book: Any
+    logbook: Any
+    inflight: dict[Any, tuple[int, int, dict[str, Any]]]
+    ready: Any
+    retry_queue: Any
+    _ac: Any
+    _job: Future[list[Any]] | None
+    _job_size: int
+    _job_started: float
+    _exhausted: bool
+    timing: Timing
+
+    def _propose_ahead(self, engine: ProposalEngine) -> None:
+        """Start a round off the loop when :func:`forebear.loop.schedule.round_size` asks for one.
+
+        The round is computed while the workers run. It proposes ahead of the free slots only
+        as far as keeps the workers busy for a refit's time (``Timing.lead``); when waiting
+        for results costs little, it asks only for the slots that are free now, so the
+        proposer sees as many results and as few pending points as it can.
+        """
+        if self._job is not None or self._exhausted:
+            return
+        budget = self.spec.budget
+        planned = len(self.book.configs)
+        sizer = getattr(engine.original, "initial_size", None)
+        initial = max(0, sizer(budget.batch) - planned) if callable(sizer) else 0
+        n = round_size(
+            batch=budget.batch, concurrency=budget.concurrency, running=len(self.inflight),
+            queued=len(self.ready) + len(self.retry_queue), left=budget.trials - planned,
+            lead=self.timing.lead(budget.concurrency), initial=initial,
+        )
+        if n <= 0:
+            return
+        sign = self.spec.objective.sign
+        observed = [Observation(self.book.configs[t], sign * s) for t, s in self.book.scores.items()]
+        failed = [self.book.configs[t] for t, s in self.book.state.items() if s == "failed"]
+        pending = [self.book.configs[t] for t, s in self.book.state.items() if s in ("queued", "running")]
+        self._job_started = time.monotonic()
+        self._job = engine.submit(n, observed, failed, pending)
+        self._job_size = n
+        self._job.add_done_callback(self._wake)
+
+    def _timed(self, fut: Any) -> Any:
+        """Note how long a finished attempt took from submission (the schedule's trial time)."""
+        entry = self.inflight.get(fut)
+        if entry is not None and getattr(fut, "status", None) == "finished":
+            self.timing.trial(time.monotonic() - entry[2]["submitted"])
+        return fut
+
+    def _wake(self, _job: Any) -> None:
+        ac = self._ac
+        if ac is not None:
+            with ac.thread_condition:
+                ac.thread_condition.notify_all()
+
+    def _harvest(self) -> None:
+        """Record a finished round as ``proposed`` and queue its trials."""
+        job = self._job
+        if job is None or not job.done():
+            return
+        self._job = None
+        proposals = job.result()[: self._job_size]
+        if any(p.source == "model" for p in proposals):
+            # Rounds of the initial design are no refit (the first also starts the proposer's process).
+            self.timing.refit(time.monotonic() - self._job_started)
+        if not proposals:
+            self._exhausted = True
+            return
+        round_no = self.book.rounds
+        self.book.rounds += 1
+        first = max(self.book.configs, default=-1) + 1
+        recs = []
+        for i, p in enumerate(proposals):
+            tid = first + i
+            recs.append(record("proposed", trial=tid, round=round_no, config=p.config, source=p.source, model=p.model, acquisition=p.acquisition))
+        self.logbook.append_many(recs)
+        for rec in recs:
+            tid = rec["trial"]
+            self.book.configs[tid] = dict(rec["config"])
+            self.book.state[tid] = "queued"
+            self.book.attempts[tid] = 0
+            self.book.charged[tid] = 0
+            self.ready.append(tid)

@@ -9,6 +9,7 @@ from __future__ import annotations
 from collections.abc import Mapping
 from typing import Any
 
+from forebear.cluster.shipping import why_unsure
 from forebear.core.spec import Spec
 from forebear.records.logbook import record
 
@@ -51,7 +52,10 @@ def spec_changes(header: Mapping[str, Any], spec: Spec, extend: bool) -> tuple[l
     changes: list[str] = []
     if header.get("name") not in (None, spec.name):
         changes.append(f"name: {header.get('name')!r} -> {spec.name!r}")
-    if header.get("objective") != spec.objective.to_dict():
+    old_fn, new_fn = (header.get("objective") or {}).get("function"), spec.objective.function
+    if old_fn and new_fn and old_fn != new_fn:
+        changes.append(f"objective: the logbook's search evaluated the function {old_fn}, this run passes {new_fn}")
+    elif header.get("objective") != spec.objective.to_dict():
         changes.append(f"objective: {header.get('objective')} -> {spec.objective.to_dict()}")
     if header.get("seed") != spec.seed:
         changes.append(f"seed: {header.get('seed')} -> {spec.seed}")
@@ -82,3 +86,18 @@ def spec_changes(header: Mapping[str, Any], spec: Spec, extend: bool) -> tuple[l
             hint = " (give --extend to allow a larger budget)" if larger else ""
             changes.append(f"budget.{key}: {old} -> {new}{hint}")
     return changes, grew
+
+
+def function_note(header: Mapping[str, Any], spec: Spec) -> str | None:
+    """A note for a resumed search whose objective is a function of the same name that a name cannot vouch for."""
+    name = spec.objective.function
+    if not name or (header.get("objective") or {}).get("function") != name:
+        return None
+    why = why_unsure(name)
+    if why is None:
+        return None
+    return (
+        f"note: resuming with the function {name}, the name the logbook's search recorded; "
+        f"forebear cannot tell whether its code is the same ({why}): change the spec's name "
+        "or logbook if it is not, so that the scores stay comparable"
+    )

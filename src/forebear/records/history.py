@@ -14,6 +14,7 @@ import glob
 import hashlib
 import json
 import math
+import zlib
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -22,8 +23,11 @@ from typing import Any
 import numpy as np
 
 from forebear.core.space import Param, Space
+from forebear.records.files import NotRegularFile, open_regular, read_regular
 from forebear.records.logbook import fold, parse
 
+MAX_TASK_POINTS = 2000  # trials of one earlier search kept; meta-training samples batches, 2000 cover a task's landscape
+KEEP_BEST = 100  # of those, the best trials, always kept: the warm start starts from them
 
 class HistoryError(ValueError):
     """A history file that cannot be used; the message names the file and the row or line."""
@@ -138,10 +142,12 @@ def _logbook_tasks(
     out = []
     for p in paths:
         path = Path(p)
-        if _resolved(path) in skip or not path.is_file():
+        if _resolved(path) in skip:
             continue
         try:
-            data = path.read_bytes()
+            data = read_regular(path, "history logbook")
+        except NotRegularFile as exc:
+            raise HistoryError(str(exc.args[-1])) from None
         except OSError as exc:
             msg = f"history logbook {path}: cannot read: {exc.strerror or exc}"
             raise HistoryError(msg) from None
@@ -185,44 +191,72 @@ def _csv_tasks(
     path: Path, task_col: str, score_col: str, space: Space
 ) -> list[tuple[str, list[tuple[dict[str, Any], Any]], str]]:
     try:
-        fh = open(path, newline="", encoding="utf-8")
+        fh = open_regular(path, "history table", newline="", encoding="utf-8")
+    except NotRegularFile as exc:
+        raise HistoryError(str(exc.args[-1])) from None
     except OSError as exc:
         msg = f"history table {path}: cannot read: {exc.strerror or exc}"
         raise HistoryError(msg) from None
     tasks: dict[str, list[tuple[dict[str, Any], Any]]] = {}
     with fh:
-        reader = csv.DictReader(fh)
+        # csv.reader, not DictReader: one list per row and columns by position, half the time on 10^5 rows.
+        reader = csv.reader(fh)
         try:
-            header = reader.fieldnames
+            header = next(reader, None)
         except (csv.Error, UnicodeDecodeError) as exc:
             msg = f"history table {path}: line 1: {exc}"
             raise HistoryError(msg) from None
         if not header:
             msg = f"history table {path}: empty file, no header row"
             raise HistoryError(msg)
+        dupes = sorted({c for c in header if header.count(c) > 1})
+        if dupes:
+            # Two equal column names: one of them would be read silently.
+            cols = ", ".join(f"{c!r} ({header.count(c)} times)" for c in dupes)
+            msg = f"history table {path}: line 1: duplicate column name {cols}; rename or drop the copies"
+            raise HistoryError(msg)
         for col in (task_col, score_col):
             if col not in header:
                 msg = f"history table {path}: line 1: no column {col!r} (columns: {', '.join(header)})"
                 raise HistoryError(msg)
-        params = [p for p in space.params if p.name in header]
+        # ``forebear export`` writes a parameter as ``config.<name>`` where the bare name is one of its own
+        # columns (``score``, ``state``, ...): that column, when present, is the parameter's.
+        columns = {p.name: f"config.{p.name}" if f"config.{p.name}" in header else p.name for p in space.params}
+        where = {c: i for i, c in enumerate(header)}
+        params = [(p, where[columns[p.name]]) for p in space.params if columns[p.name] in where]
+        task_i, score_i, width = where[task_col], where[score_col], len(header)
+        memo: dict[tuple[str, str], Any] = {}  # (parameter, cell text) -> value: a category is matched once
         try:
             for row in reader:
+                if not row:
+                    continue  # a blank line
                 line = reader.line_num
-                if None in row:
+                if len(row) > width:
                     msg = f"history table {path}: line {line}: more cells than header columns"
                     raise HistoryError(msg)
-                score = _number(row[score_col], path, line, score_col)
+                if len(row) < width:
+                    row = row + [""] * (width - len(row))
+                score = _number(row[score_i], path, line, score_col)
                 config: dict[str, Any] = {}
-                for p in params:
-                    cell = row[p.name]
-                    if cell is None or cell.strip() == "":
+                for p, i in params:
+                    cell = row[i]
+                    if cell.strip() == "":
                         continue  # treated like an absent column by _align
-                    config[p.name] = _cell(p, cell, path, line)
-                tasks.setdefault(str(row[task_col]), []).append((config, score))
+                    key = (p.name, cell)
+                    value = memo.get(key, _MISSING)
+                    if value is _MISSING:
+                        value = _cell(p, cell, path, line)
+                        if p.kind == "categorical":
+                            memo[key] = value
+                    config[p.name] = value
+                tasks.setdefault(row[task_i], []).append((config, score))
         except (csv.Error, UnicodeDecodeError) as exc:
             msg = f"history table {path}: line {reader.line_num}: {exc}"
             raise HistoryError(msg) from None
     return [(name, rows, str(path)) for name, rows in tasks.items()]
+
+
+_MISSING = object()
 
 
 def _number(cell: str | None, path: Path, line: int, col: str) -> float:
@@ -237,14 +271,33 @@ def _cell(p: Param, cell: str, path: Path, line: int) -> Any:
     """A CSV cell as a value of ``p``; a category is matched by its text."""
     text = cell.strip()
     if p.kind == "categorical":
-        for c in p.categories:
-            if text == str(c) or (isinstance(c, bool) and text.lower() == str(c).lower()):
-                return c
-        return _Unknown(text)
+        return _category_of_text(p, text)
     value = _number(text, path, line, p.name)
     if p.kind == "int" and math.isfinite(value) and value == int(value):
         return int(value)
     return value
+
+
+def _category_of_text(p: Param, text: str) -> Any:
+    """The category a CSV cell names: a text category with these characters first, then a boolean
+    (``true``/``True``), then a number of the same value (``1`` matches ``1.0``)."""
+    for c in p.categories:
+        if isinstance(c, str) and c == text:
+            return c
+    lowered = text.lower()
+    for c in p.categories:
+        if isinstance(c, bool) and lowered == str(c).lower():
+            return c
+    try:
+        number = float(text)
+    except ValueError:
+        number = None
+    for c in p.categories:
+        if number is not None and isinstance(c, (int, float)) and not isinstance(c, bool) and c == number:
+            return c
+        if not isinstance(c, (str, bool, int, float)) and str(c) == text:
+            return c
+    return _Unknown(text)
 
 
 @dataclass(frozen=True)
@@ -309,7 +362,27 @@ def _align(
     if not configs:
         warnings.append(f"history task {name!r} ({origin}): nothing left after alignment, skipped")
         return None
+    if len(configs) > MAX_TASK_POINTS:
+        keep = _subset(name, ys)
+        warnings.append(
+            f"history task {name!r} ({origin}): {len(configs)} trials; {len(keep)} kept for meta-training and the warm start "
+            f"(the {KEEP_BEST} best and {len(keep) - KEEP_BEST} drawn at random, seeded by the task's name)"
+        )
+        configs = [configs[i] for i in keep]
+        ys = [ys[i] for i in keep]
     return Task(name, configs, space.encode_many(configs), np.asarray(ys, dtype=float))
+
+
+def _subset(name: str, ys: Sequence[float]) -> list[int]:
+    """The trials of a large task kept: the ``KEEP_BEST`` best (the warm start draws on them) and a
+    uniform random draw of the rest (meta-training fits the task's whole landscape), in file order."""
+    y = np.asarray(ys, dtype=float)
+    order = np.argsort(y, kind="stable")
+    best = order[:KEEP_BEST]
+    rest = order[KEEP_BEST:]
+    rng = np.random.default_rng(zlib.crc32(name.encode("utf-8")))
+    drawn = rng.choice(rest, size=MAX_TASK_POINTS - KEEP_BEST, replace=False)
+    return sorted(int(i) for i in np.concatenate([best, drawn]))
 
 
 def _unique(name: str, taken: set[str]) -> str:
