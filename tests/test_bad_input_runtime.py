@@ -252,7 +252,7 @@ def test_logbook_path_is_someone_elses_file(tmp_path: Path, shared_loopback: Loo
 def test_logbook_path_is_a_folder(tmp_path: Path) -> None:
     (tmp_path / "runs" / "store-17.jsonl").mkdir(parents=True)
     code, err = _run("run", str(_spec_with(tmp_path)), "--quiet")
-    assert code == 2 and "Is a directory" in err and len(err.strip().splitlines()) == 1 and "Traceback" not in err, err
+    assert code == 2 and "is a folder, not a regular file" in err and len(err.strip().splitlines()) == 1 and "Traceback" not in err, err
 
 
 def test_logbook_with_garbage_lines_resumes_and_keeps_them(tmp_path: Path, shared_loopback: LoopbackCluster) -> None:

@@ -181,7 +181,7 @@ def test_local_cluster_threads_memory_limit_and_dashboard_port(tmp_path: Path) -
         [info] = workers.values()
         assert info["nthreads"] == 2
         assert info["memory_limit"] == 2**30  # dask parses "1GiB" as 1024^3 bytes
-        assert said == [f"dashboard: http://127.0.0.1:{port}/status"], said
+        assert d.dashboard == f"http://127.0.0.1:{port}/status", d.dashboard  # the controller prints the link
         # The dashboard really serves on that port, on loopback.
         with urllib.request.urlopen(f"http://127.0.0.1:{port}/health", timeout=10) as resp:
             assert resp.status == 200 and resp.read() == b"ok"
