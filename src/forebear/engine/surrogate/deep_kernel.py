@@ -42,8 +42,8 @@ from torch.nn.functional import softplus
 from forebear.engine.surrogate.gp import (
     DTYPE,
     MAX_EXACT,
+    Predictive,
     as_tensor,
-    normal_logpdf,
     standardise,
     subset,
 )
@@ -197,7 +197,7 @@ def _pick_lambda(ll_by_lam: torch.Tensor) -> torch.Tensor:
     return torch.argmax(ll_by_lam + prior, dim=-1)
 
 
-class MetaPosterior:
+class MetaPosterior(Predictive):
     """The model's posterior on one task's observations; the interface of ``gp.Posterior``.
 
     Predictions are in original units: ``y = shift + scale * t``.
@@ -239,17 +239,6 @@ class MetaPosterior:
         prior = torch.exp(self.net.log_vc) + torch.exp(self.net.log_va) * ms * ms + self._prior_res
         var = (prior - (v * v).sum(0)).clamp_min(1e-12)
         return self.shift + self.scale * mu, var * self.scale**2
-
-    def predict(self, Xs: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """Mean and latent variance at ``Xs`` (numpy in, numpy out)."""
-        with torch.no_grad():
-            m, v = self.predict_t(as_tensor(Xs, self.X.device))
-        return m.cpu().numpy(), v.cpu().numpy()
-
-    def log_predictive(self, Xs: np.ndarray, ys: np.ndarray) -> np.ndarray:
-        """Log predictive density of scores ``ys`` at ``Xs`` (noise included), original units."""
-        m, v = self.predict(Xs)
-        return normal_logpdf(ys, m, v + self.noise * self.scale**2)
 
     def condition(self, X_new: torch.Tensor, y_new: torch.Tensor) -> MetaPosterior:
         """The posterior after also seeing ``(X_new, y_new)``, hyperparameters unchanged."""
