@@ -19,7 +19,10 @@ from tests.process_helpers import CTX
 def _die_mid_record(path: str, size: int) -> None:
     """Take the lock like a writer, write half of a large record, then SIGKILL ourselves."""
     j = Logbook(path)
-    rec = json.dumps(record("scored", trial=0, attempt=1, score=1.0, metrics={"blob": "x" * size}, seconds=1.0)) + "\n"
+    # Built past record(), which trims large metrics: a writer of an older version, or one whose
+    # record is large for other reasons, must still be cut off cleanly.
+    big = {**record("scored", trial=0, attempt=1, score=1.0, seconds=1.0), "metrics": {"blob": "x" * size}}
+    rec = json.dumps(big) + "\n"
     data = rec.encode()
     with j.lock.acquire(timeout=30):
         fd = os.open(path, os.O_WRONLY | os.O_APPEND)

@@ -387,4 +387,8 @@ def test_no_unpickling_or_shell_in_the_package() -> None:
     files = sorted(SRC.rglob("*.py"))
     assert len(files) > 10
     problems = {str(p.relative_to(SRC)): unsafe_loads(p.read_text()) for p in files}
-    assert {k: v for k, v in problems.items() if v} == {}
+    # The one sanctioned load: a function objective (forebear.run(objective=fn)) is the user's own
+    # code, pickled by the user's process and loaded in the attempt's child, as Dask ships functions.
+    sanctioned = {"cluster/child.py": ["pickle.loads()"]}
+    found = {k: [x.split(": ", 1)[1] for x in v] for k, v in problems.items() if v}
+    assert found == sanctioned

@@ -11,8 +11,9 @@ How a call is answered (docs/engine.md has the reasons and the figures):
 1. The initial design (warm start from history, else a Latin hypercube) of
    at least ``min(dim + 1, 10)`` configurations, source ``initial``.
 2. Then the surrogate: the plain GP without history; with history, the
-   meta-trained deep kernel, fine-tuned on the current search, under the
-   transfer guard. Failed configurations enter the targets with the worst
+   meta-trained deep kernel (its offset, amplitude and residual refitted in
+   closed form on the current search) under the transfer guard, which scores
+   both models prequentially across rounds. Failed configurations enter the targets with the worst
    observed score. Pending configurations (running trials) enter under the
    ``pending_lie``, earlier points of the same round under the ``lie``.
    Source ``model``.
@@ -46,12 +47,13 @@ from forebear.engine.runtime import finite as _finite
 from forebear.engine.runtime import threads as _threads
 from forebear.engine.surrogate.deep_kernel import MetaModel, Settings, cache_key
 from forebear.engine.surrogate.gp import Posterior, as_tensor, fit_gp
-from forebear.engine.surrogate.select import Choice, choose
+from forebear.engine.surrogate.select import Choice, Prequential, choose
 from forebear.engine.warmstart import extend_design, initial_design
 
 MODELS = ("auto", "gp", "deep-kernel")
 FAILED = ("impute", "classifier")
 HISTORY_SHARE = 1.0  # of the initial design from history; 0.5 measured worse (docs/engine.md)
+GUARD_FROM = 3  # observations before the guard fits the plain GP next to the deep kernel
 DEFAULT_FAILED = "impute"  # chosen by `python -m forebear.bench.proposal failures` (docs/engine.md)
 
 
@@ -94,7 +96,8 @@ class Proposer:
     augment
         Task augmentation during meta-training.
     fine_tune
-        Fine-tune the meta-trained state on the current search at each refit.
+        At each refit, choose the deep kernel's residual amplitude on the current
+        search (offset and amplitude are always refitted; the feature map never is).
     guard
         With ``model="auto"``, the transfer guard picks or mixes deep kernel and plain GP.
     model
@@ -206,6 +209,10 @@ class Proposer:
         self.meta_seconds: float | None = None  # time spent meta-training or loading the cache
         self.meta_cached: bool | None = None  # whether the state came from the cache
         self.last_choice: Choice | None = None
+        # The transfer guard's state across rounds: running prequential scores, and the
+        # observations (by encoding) that the kept models have already seen or scored.
+        self._preq = Prequential()
+        self._scored_keys: set[bytes] = set()
 
     # -- meta-training and its cache -----------------------------------------
 
@@ -358,13 +365,7 @@ class Proposer:
             X, y = np.vstack([X, Xf]), np.concatenate([y, np.full(len(Xf), y.max())])
         elif len(Xf):
             feas = self._feasibility(X, Xf)
-        models: dict[str, Posterior] = {}
-        meta = self.meta_model()
-        if meta is not None:
-            models["deep-kernel"] = meta.posterior(X, y, fine_tune=self.fine_tune, seed=self.seed)
-        if meta is None or (self.model == "auto" and self.guard and len(y) >= 5):
-            models["gp"] = self._fit_gp(X, y)
-        choice = choose(models, prefer="deep-kernel")
+        choice = self._choose(X, y, scored)
         self.last_choice = choice
         dev = choice.models[0].X.device
         scorer = acquisition.Scorer(choice.models, choice.weights, float(y.min()), feas)
@@ -386,6 +387,32 @@ class Proposer:
             seen.add(key)
             out.append(Proposal(config, "model", choice.name, value if math.isfinite(value) else None))
         return out
+
+    def _choose(self, X: np.ndarray, y: np.ndarray, scored: Sequence[Observation]) -> Choice:
+        """This round's models (deep kernel and/or plain GP) and the guard's choice among them.
+
+        Under the guard, the models kept from the previous round first score the
+        observations that are new this round (prequential log score), then this
+        round's models are kept for the next one.
+        """
+        models: dict[str, Any] = {}
+        meta = self.meta_model()
+        if meta is not None:
+            models["deep-kernel"] = meta.posterior(X, y, fine_tune=self.fine_tune, seed=self.seed)
+        guarded = meta is not None and self.model == "auto" and self.guard
+        if meta is None or (guarded and len(y) >= GUARD_FROM):
+            models["gp"] = self._fit_gp(X, y)
+        if not guarded:
+            return choose(models, None, prefer="deep-kernel")
+        keys = acquisition.keys(self._encode([o.config for o in scored]))
+        new = [i for i, k in enumerate(keys) if k not in self._scored_keys]
+        if new:
+            Xn = self._encode([scored[i].config for i in new])
+            self._preq.score(Xn, np.array([float(scored[i].score) for i in new]))
+            self._scored_keys.update(keys[i] for i in new)
+        choice = choose(models, self._preq, prefer="deep-kernel")
+        self._preq.keep(models)
+        return choice
 
     def _fit_gp(self, X: np.ndarray, y: np.ndarray) -> Posterior:
         # Warm-started from the previous round's hyperparameters; every fourth refit (and the

@@ -1,13 +1,25 @@
-"""The few-shot surrogate: a GP on a deep kernel, meta-trained across history tasks.
+"""The few-shot surrogate: a GP with a learned prior mean and a deep kernel, meta-trained on history.
 
-A small MLP maps the encoded space to a low-dimensional feature space; a
-Matérn-5/2 (or RBF) kernel acts on the features. Meta-training samples a
-history task and a batch of its points, rescales the task's scores to a random
-interval ``[l, u]`` inside the meta-data's range (task augmentation, so that
-only rankings carry over), and takes an Adam step on the negative marginal
-likelihood with respect to the network weights and kernel hyperparameters;
-held-out history tasks decide when to stop. On the current search, each refit
-fine-tunes a copy of the meta-trained state for a few steps (no augmentation).
+The model of one task, in that task's standardised units ``t``::
+
+    t(x) = c + a * m(x) + r(x),     c ~ N(0, v_c),  a ~ N(a_0, v_a),
+    r ~ GP(0, lam * (s_f * k(phi(x), phi(x')) + s_x * k_x(x, x'))),  noise s_n >= floor
+
+``phi`` is an MLP feature map and ``m`` a mean head on the same MLP (the
+history's average standardised surface); ``k`` is a Matérn-5/2 (or RBF)
+kernel on the features and ``k_x`` a small ARD Matérn-5/2 on the raw inputs
+(so the kernel cannot collapse onto a few features). Offset ``c`` and
+amplitude ``a`` have Gaussian priors and are integrated out in closed form,
+which makes the whole model one GP with fixed hyperparameters; ``lam``, the
+residual amplitude, is chosen per task on a small grid by marginal likelihood
+plus a log-normal prior. Nothing else moves on a new task: no gradient step
+touches the feature map.
+
+Meta-training uses episodes exactly as proposals use the model: a history
+task, a support set of 1-20 of its points, standardised on their own mean
+and spread as the proposer does, the closed-form refit above, and the loss
+the negative predictive log-likelihood of a query set from the same task.
+Held-out history tasks, scored the same way, decide when to stop.
 This module never touches files: the proposer caches ``state_dict()``.
 """
 
@@ -22,101 +34,231 @@ from collections.abc import Mapping, Sequence
 from dataclasses import asdict, dataclass
 from typing import Any
 
-import gpytorch
 import numpy as np
 import torch
-from gpytorch.constraints import Interval
 from torch import nn
+from torch.nn.functional import softplus
 
 from forebear.engine.surrogate.gp import (
     DTYPE,
     MAX_EXACT,
-    NOISE_FLOOR,
-    Posterior,
+    Predictive,
     as_tensor,
-    dense_kernel,
+    standardise,
     subset,
 )
 
-FORMAT = 1  # bump when the state layout changes, so old cache entries are not reused
+FORMAT = 2  # bump when the state layout changes, so old cache entries are not reused
+LAMBDAS = (0.25, 0.5, 1.0, 2.0, 4.0)  # grid of the per-task residual amplitude
+LAMBDA_PRIOR_SD = 1.0  # sd of log(lam): a weak prior around the meta-trained amplitude
+_LOG_2PI = math.log(2 * math.pi)
+_SQRT5 = math.sqrt(5.0)
 
 
 @dataclass(frozen=True)
 class Settings:
-    """Deep-kernel settings (docs/engine.md explains the defaults)."""
+    """Deep-kernel settings (docs/engine.md explains the defaults and the measurements behind them)."""
 
-    width: int = 32  # hidden units per layer
+    width: int = 64  # hidden units per layer
     depth: int = 2  # hidden layers
-    features: int = 4  # dimension of the feature space the kernel sees
-    kernel: str = "matern"  # matern (Matérn 5/2) or rbf
-    augment: bool = True  # task augmentation during meta-training
-    max_steps: int = 2000  # Adam steps of meta-training at most
-    batch: int = 64  # points per meta-training step
-    lr: float = 3e-3  # Adam learning rate of meta-training
-    eval_every: int = 50  # steps between held-out evaluations
-    patience: int = 6  # evaluations without improvement before stopping
+    features: int = 16  # dimension of the feature space the kernel sees
+    kernel: str = "matern"  # matern (Matérn 5/2) or rbf, on the features
+    raw_kernel: bool = True  # add a small ARD Matérn-5/2 on the raw inputs
+    prior_mean: bool = True  # learn a prior mean from history
+    augment: bool = True  # task augmentation: a random monotone warp of each episode's scores
+    noise_floor: float = 1e-3  # noise variance floor, relative to the task's score variance
+    max_steps: int = 1500  # Adam steps of meta-training at most
+    tasks_per_step: int = 8  # episodes per step
+    max_support: int = 20  # support sets of 1 .. max_support points
+    query: int = 32  # query points per episode
+    lr: float = 3e-3  # Adam learning rate
+    eval_every: int = 100  # steps between held-out evaluations
+    patience: int = 4  # evaluations without improvement before stopping
     holdout: float = 0.2  # share of history tasks held out for early stopping
-    fine_tune_steps: int = 10  # Adam steps on the current search at each refit
-    fine_tune_lr: float = 1e-3  # Adam learning rate of fine-tuning
     seed: int = 0
 
     def __post_init__(self) -> None:
         if self.kernel not in ("matern", "rbf"):
             msg = f"deep-kernel kernel must be 'matern' or 'rbf', got {self.kernel!r}"
             raise ValueError(msg)
-        for name in ("width", "depth", "features", "batch", "eval_every", "patience"):
+        for name in ("width", "depth", "features", "tasks_per_step", "max_support", "query", "eval_every", "patience"):
             if getattr(self, name) < 1:
                 msg = f"deep-kernel {name} must be >= 1, got {getattr(self, name)}"
                 raise ValueError(msg)
+        if not 0.0 < self.noise_floor < 1.0:
+            msg = f"deep-kernel noise_floor must be in (0, 1), got {self.noise_floor}"
+            raise ValueError(msg)
 
     def to_dict(self) -> dict[str, Any]:
         return asdict(self)
 
 
+def _dist(A: torch.Tensor, B: torch.Tensor) -> torch.Tensor:
+    """Euclidean distances, batched over leading dims, clamped so the gradient stays finite at 0."""
+    d2 = (A * A).sum(-1, keepdim=True) - 2 * A @ B.transpose(-1, -2) + (B * B).sum(-1).unsqueeze(-2)
+    return d2.clamp_min(1e-12).sqrt()
+
+
+def _cdist(A: torch.Tensor, B: torch.Tensor) -> torch.Tensor:
+    return torch.cdist(A, B)
+
+
+def _matern_r(r: torch.Tensor) -> torch.Tensor:
+    """Matérn-5/2 of distance ``r`` at unit lengthscale (Rasmussen & Williams 2006, eq. 4.17)."""
+    s5 = _SQRT5 * r
+    return (1.0 + s5 + s5 * s5 / 3.0) * torch.exp(-s5)
+
+
+def _rbf_r(r: torch.Tensor) -> torch.Tensor:
+    return torch.exp(-0.5 * r * r)
+
+
 class DeepKernel(nn.Module):
-    """Feature map, kernel, constant mean and noise of the deep-kernel GP."""
+    """Feature map, mean head and the kernel's few global hyperparameters."""
 
     def __init__(self, dim: int, settings: Settings) -> None:
         super().__init__()
+        self.settings = settings
         layers: list[nn.Module] = []
         width_in = dim
         for _ in range(settings.depth):
             layers += [nn.Linear(width_in, settings.width), nn.Tanh()]
             width_in = settings.width
-        layers.append(nn.Linear(width_in, settings.features))
-        self.features = nn.Sequential(*layers)
-        if settings.kernel == "matern":
-            base: gpytorch.kernels.Kernel = gpytorch.kernels.MaternKernel(nu=2.5, ard_num_dims=settings.features)
-        else:
-            base = gpytorch.kernels.RBFKernel(ard_num_dims=settings.features)
-        self.covar = gpytorch.kernels.ScaleKernel(base, outputscale_constraint=Interval(1e-3, 20.0))
-        self.mean = gpytorch.means.ConstantMean()
-        self.likelihood = gpytorch.likelihoods.GaussianLikelihood(noise_constraint=Interval(NOISE_FLOOR, 1.0))
-        # Interval constraints start at their midpoint; start where [0, 1] targets are instead.
-        self.covar.outputscale = 0.2
-        self.likelihood.noise = 1e-2
+        self.trunk = nn.Sequential(*layers)
+        self.head = nn.Linear(width_in, settings.features)
+        self.mean_head = nn.Linear(width_in, 1)
+        # Log-variances and the raw kernel's log-lengthscales; start where standardised tasks are.
+        self.log_vf = nn.Parameter(torch.tensor(math.log(0.5)))
+        self.log_vx = nn.Parameter(torch.tensor(math.log(0.2)))
+        self.log_lx = nn.Parameter(torch.full((dim,), math.log(0.3)))
+        self.log_vc = nn.Parameter(torch.tensor(math.log(0.5)))
+        # The amplitude's prior mean starts at 0, so the mean head enters first as a basis
+        # function whose amplitude each task fits; a start at 1 measured no better (docs/engine.md).
+        self.log_va = nn.Parameter(torch.tensor(math.log(0.2)))
+        self.a0 = nn.Parameter(torch.tensor(0.0))
+        self.raw_noise = nn.Parameter(torch.tensor(-4.0))
         self.to(DTYPE)
 
-    def nll(self, X: torch.Tensor, t: torch.Tensor) -> torch.Tensor:
-        """Negative log marginal likelihood per point of targets ``t`` at ``X``."""
-        Z = self.features(X)
-        K = dense_kernel(self.covar, Z, Z)
-        K = K + self.likelihood.noise * torch.eye(len(X), dtype=X.dtype, device=X.device)
-        L, info = torch.linalg.cholesky_ex(K)
-        if int(info) != 0:
-            L = torch.linalg.cholesky(K + 1e-6 * torch.eye(len(X), dtype=X.dtype, device=X.device))
-        r = (t - self.mean.constant).unsqueeze(-1)
-        a = torch.cholesky_solve(r, L)
-        n = len(X)
-        return (0.5 * (r * a).sum() + torch.log(torch.diagonal(L)).sum() + 0.5 * n * math.log(2 * math.pi)) / n
+    def parts(self, X: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
+        """Features ``phi(X)`` and prior-mean head ``m(X)`` (zero without a learned mean)."""
+        h = self.trunk(2.0 * X - 1.0)
+        m = self.mean_head(h).squeeze(-1) if self.settings.prior_mean else torch.zeros(X.shape[:-1], dtype=X.dtype, device=X.device)
+        return self.head(h), m
 
-    def posterior(self, X: torch.Tensor, y: torch.Tensor, shift: float, scale: float) -> Posterior:
-        """The posterior at the current weights (frozen copies), conditioned on ``(X, y)``."""
-        feats = copy.deepcopy(self.features).requires_grad_(False)
-        return Posterior(
-            self.covar, float(self.mean.constant.detach()), float(self.likelihood.noise.detach()),
-            X, y, shift, scale, embed=feats, name="deep-kernel",
-        )
+    def noise(self) -> torch.Tensor:
+        return self.settings.noise_floor + softplus(self.raw_noise)
+
+    def residual(self, XA: torch.Tensor, ZA: torch.Tensor, XB: torch.Tensor, ZB: torch.Tensor, fast: bool = False) -> torch.Tensor:
+        """Residual covariance at ``lam = 1``.
+
+        ``fast`` takes distances from ``torch.cdist`` (prediction, where points rarely
+        coincide); training uses the clamped form, whose gradient is finite at distance 0.
+        """
+        dist = _cdist if fast else _dist
+        k = _matern_r if self.settings.kernel == "matern" else _rbf_r
+        K = torch.exp(self.log_vf) * k(dist(ZA, ZB))
+        if self.settings.raw_kernel:
+            ls = torch.exp(self.log_lx)
+            K = K + torch.exp(self.log_vx) * _matern_r(dist(XA / ls, XB / ls))
+        return K
+
+    def residual_var(self) -> torch.Tensor:
+        v = torch.exp(self.log_vf)
+        return v + torch.exp(self.log_vx) if self.settings.raw_kernel else v
+
+    def affine(self, mA: torch.Tensor, mB: torch.Tensor) -> torch.Tensor:
+        """Covariance of the integrated-out offset and amplitude: ``v_c + v_a m(x) m(x')``."""
+        return torch.exp(self.log_vc) + torch.exp(self.log_va) * mA.unsqueeze(-1) * mB.unsqueeze(-2)
+
+
+def _lml(t: torch.Tensor, mean: torch.Tensor, K: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor]:
+    """Log marginal likelihood (batched), the Cholesky factor and ``K^-1 (t - mean)``."""
+    L = _chol(K)
+    r = (t - mean).unsqueeze(-1)
+    alpha = torch.cholesky_solve(r, L)
+    ll = -0.5 * (r * alpha).sum((-1, -2)) - torch.log(torch.diagonal(L, dim1=-2, dim2=-1)).sum(-1) - 0.5 * t.shape[-1] * _LOG_2PI
+    return ll, L, alpha.squeeze(-1)
+
+
+def _chol(K: torch.Tensor) -> torch.Tensor:
+    eye = torch.eye(K.shape[-1], dtype=K.dtype, device=K.device)
+    jitter = 0.0
+    for _ in range(6):
+        L, info = torch.linalg.cholesky_ex(K + jitter * eye)
+        if not bool((info != 0).any()):
+            return L
+        jitter = 1e-9 if jitter == 0.0 else jitter * 10
+    return torch.linalg.cholesky(K + 1e-3 * eye)
+
+
+def _pick_lambda(ll_by_lam: torch.Tensor) -> torch.Tensor:
+    """Index of the grid value with the best marginal likelihood plus log-normal prior (last dim)."""
+    prior = torch.tensor([-0.5 * (math.log(v) / LAMBDA_PRIOR_SD) ** 2 for v in LAMBDAS], dtype=ll_by_lam.dtype, device=ll_by_lam.device)
+    return torch.argmax(ll_by_lam + prior, dim=-1)
+
+
+class MetaPosterior(Predictive):
+    """The model's posterior on one task's observations; the interface of ``gp.Posterior``.
+
+    Predictions are in original units: ``y = shift + scale * t``.
+    """
+
+    def __init__(
+        self, net: DeepKernel, X: torch.Tensor, y: torch.Tensor, shift: float, scale: float, lam: float,
+        name: str = "deep-kernel", blocks: tuple[torch.Tensor, ...] | None = None,
+    ) -> None:
+        self.net, self.X, self.y = net, X, y
+        self.shift, self.scale, self.lam, self.name = float(shift), float(scale), float(lam), name
+        with torch.no_grad():
+            self.noise = float(net.noise())
+            # (features, mean head, affine block, residual block) of X: shared by the refit's
+            # grid and extended, not recomputed, when conditioning on lies.
+            self.blocks = blocks if blocks is not None else _blocks(net, X)
+            self._Z, self._m, A, R = self.blocks
+            t = (y - self.shift) / self.scale
+            K = A + self.lam * R + self.noise * torch.eye(len(X), dtype=X.dtype, device=X.device)
+            self.lml, self._L, self._alpha = _lml(t, self._mean(self._m), K)
+            self._prior_res = float(net.residual_var()) * self.lam
+
+    @property
+    def n(self) -> int:
+        return len(self.X)
+
+    def _mean(self, m: torch.Tensor) -> torch.Tensor:
+        return self.net.a0 * m
+
+    def _cov(self, XA: torch.Tensor, ZA: torch.Tensor, mA: torch.Tensor, XB: torch.Tensor, ZB: torch.Tensor, mB: torch.Tensor) -> torch.Tensor:
+        return self.net.affine(mA, mB) + self.lam * self.net.residual(XA, ZA, XB, ZB, fast=True)
+
+    def predict_t(self, Xs: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
+        """Mean and latent variance at ``Xs`` in original units (differentiable in ``Xs``)."""
+        Zs, ms = self.net.parts(Xs)
+        Ks = self._cov(Xs, Zs, ms, self.X, self._Z, self._m)
+        mu = self._mean(ms) + Ks @ self._alpha
+        v = torch.linalg.solve_triangular(self._L, Ks.T, upper=False)
+        prior = torch.exp(self.net.log_vc) + torch.exp(self.net.log_va) * ms * ms + self._prior_res
+        var = (prior - (v * v).sum(0)).clamp_min(1e-12)
+        return self.shift + self.scale * mu, var * self.scale**2
+
+    def condition(self, X_new: torch.Tensor, y_new: torch.Tensor) -> MetaPosterior:
+        """The posterior after also seeing ``(X_new, y_new)``, hyperparameters unchanged."""
+        net = self.net
+        with torch.no_grad():
+            Zn, mn = net.parts(X_new)
+            A_on, R_on = net.affine(self._m, mn), net.residual(self.X, self._Z, X_new, Zn, fast=True)
+            A_nn, R_nn = net.affine(mn, mn), net.residual(X_new, Zn, X_new, Zn)
+            _, _, A, R = self.blocks
+            blocks = (
+                torch.cat([self._Z, Zn]), torch.cat([self._m, mn]),
+                torch.cat([torch.cat([A, A_on], 1), torch.cat([A_on.T, A_nn], 1)]),
+                torch.cat([torch.cat([R, R_on], 1), torch.cat([R_on.T, R_nn], 1)]),
+            )
+        return MetaPosterior(net, torch.cat([self.X, X_new]), torch.cat([self.y, y_new]), self.shift, self.scale, self.lam, self.name, blocks)
+
+
+def _blocks(net: DeepKernel, X: torch.Tensor) -> tuple[torch.Tensor, ...]:
+    Z, m = net.parts(X)
+    return Z, m, net.affine(m, m), net.residual(X, Z, X, Z)
 
 
 @dataclass
@@ -126,17 +268,12 @@ class MetaReport:
     steps: int
     seconds: float
     holdout_tasks: int
-    best_holdout_nll: float | None
-
-
-def minmax(y: np.ndarray) -> tuple[float, float]:
-    """Shift and scale mapping ``y`` onto [0, 1] (scale 1 for constant or single scores)."""
-    lo, hi = float(np.min(y)), float(np.max(y))
-    return lo, (hi - lo if hi - lo > 1e-12 else 1.0)
+    best_holdout_nll: float | None  # held-out episodes' query NLL per point, task-standardised units
+    initial_holdout_nll: float | None = None  # the same before the first step
 
 
 class MetaModel:
-    """A meta-trained deep kernel and what it does for the proposer.
+    """A meta-trained deep-kernel GP and what it does for the proposer.
 
     Parameters
     ----------
@@ -154,6 +291,7 @@ class MetaModel:
         self.device = torch.device(device)
         torch.manual_seed(self.settings.seed)
         self.net = DeepKernel(dim, self.settings).to(self.device)
+        self.net.requires_grad_(False)
         self.report: MetaReport | None = None
 
     # -- meta-training ------------------------------------------------------
@@ -168,27 +306,29 @@ class MetaModel:
         if not tasks:
             msg = "meta-training needs at least one history task with two or more scored trials"
             raise ValueError(msg)
-        # The meta-data's range: every score mapped by one global affine map onto [0, 1].
-        allv = np.concatenate([y for _, y in tasks])
-        glo, gscale = minmax(allv)
-        data = [(as_tensor(X, self.device), (y - glo) / gscale) for X, y in tasks]
+        data = []
+        for X, y in tasks:
+            shift, scale = standardise(y)  # each task on its own scale
+            data.append((as_tensor(X, self.device), as_tensor((y - shift) / scale, self.device)))
         n_hold = int(round(s.holdout * len(data))) if len(data) >= 4 else 0
         order = rng.permutation(len(data))
         hold = [data[i] for i in order[:n_hold]]
         train = [data[i] for i in order[n_hold:]]
-        val = [self._val_set(X, y, rng) for X, y in hold]
+        val = self._val_episodes(hold, rng)
+        self.net.requires_grad_(True)
         opt = torch.optim.Adam(self.net.parameters(), lr=s.lr)
-        max_steps = s.max_steps if val else min(s.max_steps, 300)
+        max_steps = s.max_steps if val else min(s.max_steps, 500)
+        first = self._val_nll(val) if val else None
         best_nll, best_state, since, step = math.inf, None, 0, 0
         for step in range(1, max_steps + 1):
-            X, y = train[int(rng.integers(len(train)))]
-            idx = rng.choice(len(y), size=min(s.batch, len(y)), replace=False)
-            t = y[idx]
-            if s.augment:
-                t = _augment(t, rng)
-            self.net.train()
+            n_s = int(rng.integers(1, s.max_support + 1))
+            picks = rng.integers(len(train), size=s.tasks_per_step)
+            episodes = [_episode(*train[j], n_s, s.query, rng, s.augment) for j in picks]
+            episodes = [e for e in episodes if e is not None]
+            if not episodes:
+                continue
+            loss = -self._episode_ll(episodes).mean()
             opt.zero_grad()
-            loss = self.net.nll(X[idx], as_tensor(t, self.device))
             loss.backward()
             opt.step()
             if val and step % s.eval_every == 0:
@@ -199,48 +339,80 @@ class MetaModel:
                     since += 1
                     if since >= s.patience:
                         break
-        if best_state is not None:
+        if best_state is not None and first is not None and best_nll < first:
             self.net.load_state_dict(best_state)
-        self.net.eval()
-        self.report = MetaReport(step, time.perf_counter() - start, len(val), best_nll if val else None)
+        self.net.requires_grad_(False)
+        self.report = MetaReport(step, time.perf_counter() - start, len(hold), best_nll if val else None, first)
         return self.report
 
-    def _val_set(self, X: torch.Tensor, y: np.ndarray, rng: np.random.Generator) -> tuple[torch.Tensor, torch.Tensor]:
-        idx = rng.choice(len(y), size=min(128, len(y)), replace=False)
-        shift, scale = minmax(y[idx])
-        return X[idx], as_tensor((y[idx] - shift) / scale, self.device)
+    def _episode_ll(self, episodes: Sequence[tuple[torch.Tensor, ...]]) -> torch.Tensor:
+        """Query log-likelihood per point of a batch of same-size episodes, after the proposal-time refit."""
+        Xs = torch.stack([e[0] for e in episodes])
+        ts = torch.stack([e[1] for e in episodes])
+        Xq = torch.stack([e[2] for e in episodes])
+        tq = torch.stack([e[3] for e in episodes])
+        log_scale = torch.stack([e[4] for e in episodes])
+        net = self.net
+        Zs, ms = net.parts(Xs)
+        Zq, mq = net.parts(Xq)
+        A_ss, R_ss = net.affine(ms, ms), net.residual(Xs, Zs, Xs, Zs)
+        eye = torch.eye(Xs.shape[1], dtype=Xs.dtype, device=Xs.device)
+        noise = net.noise()
+        mean_s = net.a0 * ms
+        with torch.no_grad():  # the refit's grid choice, as at proposal time
+            lls = torch.stack([_lml(ts, mean_s, A_ss + lam * R_ss + noise * eye)[0] for lam in LAMBDAS], -1)
+            lam = torch.tensor(LAMBDAS, dtype=Xs.dtype, device=Xs.device)[_pick_lambda(lls)]
+        lam3 = lam.view(-1, 1, 1)
+        _, L, alpha = _lml(ts, mean_s, A_ss + lam3 * R_ss + noise * eye)
+        Kqs = net.affine(mq, ms) + lam3 * net.residual(Xq, Zq, Xs, Zs)
+        mu = net.a0 * mq + (Kqs @ alpha.unsqueeze(-1)).squeeze(-1)
+        v = torch.linalg.solve_triangular(L, Kqs.transpose(-1, -2), upper=False)
+        prior = torch.exp(net.log_vc) + torch.exp(net.log_va) * mq * mq + lam.view(-1, 1) * net.residual_var()
+        var = (prior - (v * v).sum(-2)).clamp_min(1e-9) + noise
+        ll = -0.5 * (torch.log(var) + (tq - mu) ** 2 / var + _LOG_2PI)
+        return ll.mean(-1) - log_scale  # per point, in the task's standardised units
 
-    def _val_nll(self, val: list[tuple[torch.Tensor, torch.Tensor]]) -> float:
+    def _val_episodes(self, hold: Sequence[tuple[torch.Tensor, torch.Tensor]], rng: np.random.Generator) -> list[list[tuple[torch.Tensor, ...]]]:
+        """Fixed held-out episodes, grouped by support size."""
+        sizes = sorted({1, 3, 5, 10, self.settings.max_support})
+        groups = []
+        for n_s in sizes:
+            eps = [e for X, t in hold for _ in range(2) if (e := _episode(X, t, n_s, 64, rng, False)) is not None]
+            if eps:
+                groups.append(eps)
+        return groups
+
+    def _val_nll(self, val: Sequence[Sequence[tuple[torch.Tensor, ...]]]) -> float:
         with torch.no_grad():
-            return float(np.mean([float(self.net.nll(X, t)) for X, t in val]))
+            return float(np.mean([-float(self._episode_ll(g).mean()) for g in val]))
 
     # -- the current search -------------------------------------------------
 
-    def posterior(self, X: np.ndarray, y: np.ndarray, *, fine_tune: bool = True, max_exact: int = MAX_EXACT, seed: int = 0) -> Posterior:
-        """Posterior on the current search's observations, after fine-tuning a copy of the state."""
+    def posterior(self, X: np.ndarray, y: np.ndarray, *, fine_tune: bool = True, max_exact: int = MAX_EXACT, seed: int = 0) -> MetaPosterior:
+        """Posterior on the current search's observations.
+
+        Scores are standardised on their own mean and spread; offset and amplitude are
+        integrated out; with ``fine_tune`` the residual amplitude is chosen on the grid
+        ``LAMBDAS`` (otherwise it stays at the meta-trained value).
+        """
         y = np.asarray(y, float)
         idx = subset(y, max_exact, np.random.default_rng(seed))
-        Xt, yv = as_tensor(np.asarray(X)[idx], self.device), y[idx]
-        shift, scale = minmax(yv)
-        net = self.net
-        s = self.settings
-        if fine_tune and s.fine_tune_steps > 0 and len(yv) >= 2:
-            net = copy.deepcopy(self.net)
-            net.train()
-            opt = torch.optim.Adam(net.parameters(), lr=s.fine_tune_lr)
-            t = as_tensor((yv - shift) / scale, self.device)
-            for _ in range(s.fine_tune_steps):
-                opt.zero_grad()
-                net.nll(Xt, t).backward()
-                opt.step()
-            net.eval()
-        return net.posterior(Xt, as_tensor(yv, self.device), shift, scale)
+        Xt, yt = as_tensor(np.asarray(X)[idx], self.device), as_tensor(y[idx], self.device)
+        shift, scale = standardise(y[idx])
+        if not fine_tune or len(idx) < 2:
+            return MetaPosterior(self.net, Xt, yt, shift, scale, 1.0)
+        with torch.no_grad():
+            blocks = _blocks(self.net, Xt)
+        posts = [MetaPosterior(self.net, Xt, yt, shift, scale, lam, blocks=blocks) for lam in LAMBDAS]
+        best = int(_pick_lambda(torch.stack([p.lml for p in posts])))
+        return posts[best]
 
     def impute(self, X: np.ndarray, y: np.ndarray, X_query: np.ndarray) -> np.ndarray:
         """Task-normalised ([0, 1]) predicted scores at ``X_query`` for a task observed at ``(X, y)``."""
-        shift, scale = minmax(np.asarray(y, float))
-        post = self.net.posterior(as_tensor(X, self.device), as_tensor((np.asarray(y) - shift) / scale, self.device), 0.0, 1.0)
-        return post.predict(X_query)[0]
+        y = np.asarray(y, float)
+        lo, hi = float(np.min(y)), float(np.max(y))
+        mean = self.posterior(X, y, fine_tune=False).predict(X_query)[0]
+        return (mean - lo) / (hi - lo if hi - lo > 1e-12 else 1.0)
 
     # -- state --------------------------------------------------------------
 
@@ -250,19 +422,39 @@ class MetaModel:
 
     def load_state_dict(self, state: Mapping[str, torch.Tensor]) -> None:
         self.net.load_state_dict(dict(state))
-        self.net.eval()
+        self.net.requires_grad_(False)
 
 
-def _augment(t: np.ndarray, rng: np.random.Generator) -> np.ndarray:
-    """Rescale scores to a random ``[l, u]`` inside [0, 1] (the normalised meta-data range)."""
-    lo, hi = float(t.min()), float(t.max())
-    if hi - lo < 1e-12:
+def _episode(X: torch.Tensor, t: torch.Tensor, n_s: int, n_q: int, rng: np.random.Generator, augment: bool) -> tuple[torch.Tensor, ...] | None:
+    """Support and query of one task, scores standardised on the support as the proposer does.
+
+    Returns ``(X_support, t_support, X_query, t_query, log_scale)``, ``log_scale`` the
+    support's spread in the task's standardised units (the likelihood's Jacobian).
+    """
+    n = len(t)
+    if n < 2:
+        return None
+    n_s = min(n_s, n - 1)
+    idx = rng.permutation(n)
+    s_idx, q_idx = idx[:n_s], idx[n_s:n_s + n_q]
+    if len(q_idx) < n_q:  # small tasks: draw query points with replacement from the rest
+        q_idx = rng.choice(idx[n_s:], size=n_q, replace=True)
+    tt = t
+    if augment and rng.random() < 0.5:
+        tt = _augment(t, rng)
+    ys = tt[s_idx].cpu().numpy()
+    shift, scale = standardise(ys)
+    return X[s_idx], (tt[s_idx] - shift) / scale, X[q_idx], (tt[q_idx] - shift) / scale, torch.tensor(math.log(scale), dtype=t.dtype, device=t.device)
+
+
+def _augment(t: torch.Tensor, rng: np.random.Generator) -> torch.Tensor:
+    """A random monotone warp of a task's scores: min-max onto [0, 1], then a power in [1/2, 2],
+    then standardised again. Rankings are kept; the shape changes, so only rankings carry over."""
+    lo, hi = t.min(), t.max()
+    if float(hi - lo) < 1e-12:
         return t
-    low, up = np.sort(rng.random(2))
-    if up - low < 1e-3:  # a vanishing interval would make the batch pure noise
-        up = min(1.0, low + 1e-3)
-        low = up - 1e-3
-    return low + (t - lo) / (hi - lo) * (up - low)
+    u = ((t - lo) / (hi - lo)) ** float(np.exp(rng.uniform(math.log(0.5), math.log(2.0))))
+    return (u - u.mean()) / u.std(unbiased=False).clamp_min(1e-12)
 
 
 def cache_key(history_hash: str, space: Mapping[str, Any], settings: Settings) -> str:

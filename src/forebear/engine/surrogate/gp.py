@@ -33,7 +33,30 @@ def as_tensor(x: Any, device: torch.device | str = "cpu") -> torch.Tensor:
     return torch.as_tensor(x, dtype=DTYPE, device=device)
 
 
-class Posterior:
+class Predictive:
+    """What every posterior derives from its ``predict_t``: numpy predictions and the
+    predictive density the transfer guard scores. Needs ``X``, ``noise`` and ``scale``."""
+
+    X: torch.Tensor
+    noise: float
+    scale: float
+
+    def predict_t(self, Xs: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
+        raise NotImplementedError
+
+    def predict(self, Xs: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Mean and latent variance at ``Xs`` (numpy in, numpy out)."""
+        with torch.no_grad():
+            m, v = self.predict_t(as_tensor(Xs, self.X.device))
+        return m.cpu().numpy(), v.cpu().numpy()
+
+    def log_predictive(self, Xs: np.ndarray, ys: np.ndarray) -> np.ndarray:
+        """Log predictive density of scores ``ys`` at ``Xs`` (noise included), original units."""
+        m, v = self.predict(Xs)
+        return normal_logpdf(ys, m, v + self.noise * self.scale**2)
+
+
+class Posterior(Predictive):
     """A GP posterior with fixed hyperparameters.
 
     Parameters
@@ -111,12 +134,6 @@ class Posterior:
         var = (self.prior_var - (v * v).sum(0)).clamp_min(1e-12)
         return self.shift + self.scale * mu, var * self.scale**2
 
-    def predict(self, Xs: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """Mean and latent variance at ``Xs`` (numpy in, numpy out)."""
-        with torch.no_grad():
-            m, v = self.predict_t(as_tensor(Xs, self.X.device))
-        return m.cpu().numpy(), v.cpu().numpy()
-
     def condition(self, X_new: torch.Tensor, y_new: torch.Tensor) -> Posterior:
         """The posterior after also seeing ``(X_new, y_new)``, hyperparameters unchanged."""
         return Posterior(
@@ -136,6 +153,11 @@ class Posterior:
             resid = self._alpha / d  # y_i - mu_i in normalised units
             ll = -0.5 * (torch.log(var) + resid**2 / var + _LOG_2PI)
         return float(ll.sum()) - self.n * math.log(self.scale)
+
+
+def normal_logpdf(y: Any, mean: np.ndarray, var: np.ndarray) -> np.ndarray:
+    """Elementwise log density of ``y`` under ``N(mean, var)``."""
+    return -0.5 * (np.log(var) + (np.asarray(y, float) - mean) ** 2 / var + _LOG_2PI)
 
 
 def dense_kernel(kernel: gpytorch.kernels.Kernel, A: torch.Tensor, B: torch.Tensor) -> torch.Tensor:
