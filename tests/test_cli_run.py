@@ -127,9 +127,12 @@ def test_check_reports_history_and_cluster_kinds(tmp_path: Path, extra: str, lin
 
 
 # -- bench subcommands: the CLI form of each, at its smallest size ----------------------------
-# Measured on the shared 2-core machine (load average 8 to 14): logbook 52 s, quality --smoke
-# 100 s; proposal, overhead and faults --short take minutes. All are slow; the default suite
-# tests their scenarios in tests/test_bench_quality.py, tests/test_faults.py and tests/test_load.py.
+# Sizes: quality has --smoke, faults --short, stopping --families/--runs/--trials; logbook,
+# proposal and overhead have no smaller size. Measured on the shared 2-core machine (load average
+# 8 to 14): logbook 52 s, quality --smoke 100 s, stopping mlp at 1 run of 4 trials 42 s; proposal,
+# overhead and faults --short take minutes. Those are slow; the default suite tests their
+# scenarios in tests/test_bench_quality.py, tests/test_faults.py and tests/test_load.py, and runs
+# stopping's analytic family from the command line (about 3 s).
 
 
 def _bench(*args: str, timeout: int) -> dict[str, Any]:
@@ -182,3 +185,45 @@ def test_bench_overhead_cli() -> None:
 def test_bench_faults_short_cli() -> None:
     fig = _bench("faults", "--short", timeout=1780)
     assert fig["size"] == "short" and fig["ok"], fig
+
+
+def test_bench_stopping_cli_analytic_family(tmp_path: Path) -> None:
+    """``bench stopping`` as a user runs it: the options reach the benchmark (the figures are the
+    library's own for the same arguments), ``--out`` writes what ``--json`` prints, and on pow3
+    curves halving stops trials and saves worker time while still reaching the target."""
+    from forebear.bench import stopping
+
+    out = tmp_path / "fig.json"
+    fig = _bench("stopping", "--families", "pow3", "--runs", "2", "--trials", "8", "--out", str(out), timeout=240)
+    assert set(fig) == {"stopping", "pow3"}  # --families: the real-training family did not run
+    assert json.loads(out.read_text()) == fig
+    pow3 = fig["pow3"]
+    assert (pow3["family"], pow3["runs"], pow3["trials"]) == ("pow3", 2, 8)
+    for rule in ("halving", "history"):
+        r = pow3[rule]
+        assert r["reached"] == 2, r  # both held-out tasks reach the no-stopping search's best
+        assert 0 < r["time_ratio_mean"] < 1 and r["time_ratio_mean"] <= r["time_ratio_max"] <= 1, r
+        assert r["halted_mean"] > 0 and r["best_stopped_share"] == r["best_stopped_runs"] / 2, r
+    # The same arguments in-process give the same figures, apart from the wall-clock seconds.
+    lib = stopping.main(families="pow3", runs=2, trials=8)
+    for d in (lib["pow3"], pow3):
+        d.pop("seconds")
+    assert lib == fig
+    # A family that does not exist: exit 2 and one line naming it.
+    res = subprocess.run([sys.executable, "-m", "forebear", "bench", "stopping", "--families", "nope", "--runs", "1"],
+                         capture_output=True, text=True, timeout=120, env=child_env())
+    assert res.returncode == 2 and res.stdout == ""
+    assert res.stderr.strip().splitlines() == ["forebear: ValueError: unknown family 'nope'; families: mlp, pow3"]
+
+
+@pytest.mark.slow
+@pytest.mark.timeout(600)
+def test_bench_stopping_cli_real_training_family() -> None:
+    fig = _bench("stopping", "--families", "mlp", "--runs", "1", "--trials", "4", timeout=580)
+    mlp = fig["mlp"]
+    assert set(fig) == {"stopping", "mlp"} and (mlp["runs"], mlp["trials"], mlp["steps"]) == (1, 4, 27)
+    for rule in ("halving", "history"):
+        r = mlp[rule]
+        # One run: its mean is its maximum, and the counts stay within that run's trials.
+        assert r["time_ratio_mean"] == r["time_ratio_max"] > 0 and r["reached"] in (0, 1), r
+        assert r["best_stopped_runs"] in (0, 1) and r["halted_mean"] >= 0, r
