@@ -70,22 +70,30 @@ def test_reduced_demo_end_to_end(tmp_path: Path, capsys: pytest.CaptureFixture[s
     warm = Logbook(folder / "runs" / "coast-history.jsonl").fold()
     assert cold.counts()["scored"] == warm.counts()["scored"] == 5
     assert cold.header["seed"] == warm.header["seed"]
-    # Only the history differs: the warm search's model rounds used a history-aware model.
-    assert {t.model for t in warm if t.source == "model"} & {"deep-kernel", "mix"} or all(t.source == "initial" for t in warm)
-    assert all(t.model in (None, "gp") for t in cold)
+    # At this size both searches are their first round (the initial design; the model rounds
+    # and their deep kernel are checked in test_examples.py's churn run and test_proposer.py).
+    # Only the history differs: the warm search's first round is the warm start, the earlier
+    # region's scored configurations best first, then the design's own fill; the cold one has
+    # none of them.
+    assert all(t.source == "initial" and t.model is None for t in [*cold, *warm])
+    north = Logbook(folder / "runs" / "history" / "region-north.jsonl").fold()
+    north_best_first = [t.config for t in sorted(north.scored(), key=lambda t: t.score)]
+    warm_configs = [t.config for t in sorted(warm, key=lambda t: t.trial)]
+    assert warm_configs[:4] == north_best_first and warm_configs[4] not in north_best_first
+    assert not [t for t in cold if t.config in north_best_first]
     for line in err.splitlines():
         if line.startswith("  with history ") or line.startswith("  cold start "):
             values = [float(v) for v in line.split()[2:]]
             assert values == sorted(values, reverse=True), f"best-so-far must not rise: {line}"
     # The gain it prints is the logbooks' own: the cold search's best minus the warm one's.
     cold_best, warm_best = cold.best().score, warm.best().score
+    # And there is one. Both searches have the same seed, so without history they would be the
+    # same search and the gain 0; measured at this plan: 10.644 against 10.783 (a 1.3% lower
+    # MAPE), the earlier region's second-best configuration being the coast's best.
+    assert warm_best < cold_best, (warm_best, cold_best)
     [gain_line] = [line for line in err.splitlines() if line.startswith("gain from history:")]
-    if cold_best - warm_best > 0:
-        assert gain_line == (f"gain from history: the final best is {cold_best - warm_best:.3f} points of MAPE lower "
-                             f"({warm_best:.3f} against {cold_best:.3f})")
-    else:
-        assert gain_line == (f"gain from history: none this time; the cold start ended {warm_best - cold_best:.3f} points "
-                             f"lower ({cold_best:.3f} against {warm_best:.3f})")
+    assert gain_line == (f"gain from history: the final best is {cold_best - warm_best:.3f} points of MAPE lower "
+                         f"({warm_best:.3f} against {cold_best:.3f})")
     assert (folder / "report" / "report.html").exists()
     assert (folder / "specs" / "coast-history.yaml").exists()
     # The written specs are valid on their own (cluster: local), so a user can rerun them.
