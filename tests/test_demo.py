@@ -110,5 +110,30 @@ def test_full_demo_from_the_command_line_within_three_minutes(tmp_path: Path) ->
                          capture_output=True, text=True, timeout=300)
     took = time.monotonic() - t0
     assert res.returncode == 0, res.stderr[-3000:]
-    assert "gain from history" in res.stderr
     assert took < 180, f"the demo took {took:.0f} s"
+    # The table and the gain it prints are the logbooks' own: the best score after N finished
+    # trials (first scored record of each trial, in logbook order) at N = 3, 6, 10, 14.
+    runs = tmp_path / "d" / "runs"
+    curves = {}
+    for label, name in (("cold start", "coast-cold"), ("with history", "coast-history")):
+        best, curve = float("inf"), []
+        seen: set[int] = set()
+        for r in Logbook(runs / f"{name}.jsonl").records():
+            if r["kind"] == "scored" and r["trial"] not in seen:
+                seen.add(r["trial"])
+                best = min(best, r["score"])
+                curve.append(best)
+        assert len(curve) == 14
+        curves[label] = curve
+        [row] = [line for line in res.stderr.splitlines() if line.startswith(f"  {label} ")]
+        assert [float(v) for v in row.split()[2:]] == [round(curve[k - 1], 3) for k in demo.CHECKPOINTS], row
+    cold, warm = curves["cold start"][-1], curves["with history"][-1]
+    [gain] = [line for line in res.stderr.splitlines() if line.startswith("gain from history:")]
+    if warm < cold:
+        assert gain.startswith(f"gain from history: the final best is {cold - warm:.3f} points of MAPE lower"), gain
+    else:
+        assert gain.startswith(f"gain from history: none this time; the cold start ended {warm - cold:.3f}"), gain
+    # History leads early: after the first round (3 trials) the warm start's best is lower.
+    # Measured: 10.467 against 10.783 after 3 trials; after 14 the cold start ended 0.128 lower
+    # (10.337 against 10.465), which the demo prints as "none this time".
+    assert curves["with history"][2] < curves["cold start"][2]
