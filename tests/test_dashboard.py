@@ -174,6 +174,8 @@ def test_an_unknown_search_is_a_clear_404() -> None:
         c.register_plugin(SearchPage("one", "/nonexistent/one.jsonl"), name="forebear-page-one")
         link = page_link(c, "one")
         assert link is not None
+        # 404 Not Found and 503 Service Unavailable as HTTP defines them (RFC 9110, secs. 15.5.5 and
+        # 15.6.4, from memory): no such resource; the server cannot serve it now.
         with pytest.raises(urllib.error.HTTPError) as err:
             urllib.request.urlopen(link.replace("search=one", "search=two"), timeout=30)
         assert err.value.code == 404 and "no such search on this scheduler (searches: one)" in err.value.read().decode()

@@ -284,7 +284,8 @@ def _pid_alive(pid: int) -> bool:
         os.kill(pid, 0)
     except ProcessLookupError:
         return False
-    # A zombie is a finished process its parent has not reaped yet.
+    # A zombie is a finished process its parent has not reaped yet: the third field of
+    # /proc/<pid>/stat is the state, "Z" for a zombie (Linux proc(5), from memory).
     try:
         return Path(f"/proc/{pid}/stat").read_text().split()[2] != "Z"
     except OSError:

@@ -236,7 +236,9 @@ def _gone(pid: int, within: float = 10.0) -> bool:
             os.kill(pid, 0)
         except ProcessLookupError:
             return True
-        try:  # a zombie not yet reaped by its parent counts as gone
+        # A zombie not yet reaped by its parent counts as gone: the state is the field after the
+        # parenthesised command name, "Z" for a zombie (Linux proc(5), /proc/<pid>/stat; from memory).
+        try:
             if open(f"/proc/{pid}/stat").read().rsplit(")", 1)[1].split()[0] == "Z":
                 return True
         except OSError:
@@ -300,7 +302,9 @@ def test_records_with_wrong_field_types_are_skipped_and_named_by_line(tmp_path: 
     assert "'score' must be a finite number, got '-1e9'" in table.invalid[1][1]
     code, out, err = cli("best", str(log), "--json")
     assert code == 0, err
-    best = json.loads(out)  # standard JSON: Python's parser accepts NaN/Infinity, so check the text too
+    # Standard JSON has no NaN or Infinity (RFC 8259, sec. 6, from memory); Python's parser
+    # accepts them, so check the text too.
+    best = json.loads(out)
     assert best["trial"] == 0 and best["score"] == 0.25
     assert "Infinity" not in out and "NaN" not in out
     assert "3 record(s) with wrong field types" in err and "line(s) 4, 6, 7" in err
@@ -363,6 +367,7 @@ def test_a_lock_file_that_cannot_be_created_is_not_reported_as_another_controlle
 
 
 def test_a_float_range_wider_than_the_largest_double_is_refused(tmp_path: Path) -> None:
+    # The largest IEEE 754 double is about 1.798e308 (sys.float_info.max): the width 2e308 overflows.
     spec = tmp_path / "s.yaml"
     spec.write_text("objective: {call: m:f, minimize: l}\nspace: {x: {float: [-1.0e308, 1.0e308]}}\n")
     code, _, err = cli("check", str(spec))
@@ -427,7 +432,7 @@ def test_memory_limit_applies_to_the_attempt_process() -> None:
     spec = load_spec_dict({"objective": {"call": "objectives:touch_memory", "minimize": "loss"}, "space": {"mb": {"int": [1, 4000]}},
                            "cluster": {"local": {"workers": 1, "memory_limit": "1500MB"}}}, base_dir=".")
     limit = attempt_memory(spec)
-    assert limit == 1_500_000_000
+    assert limit == 1_500_000_000  # dask's parse_bytes: MB is decimal; 1.5e9 bytes = 1431 MiB
     base = {"search": "t", "trial": 0, "attempt": 1, "metric": "loss", "call": "objectives:touch_memory", "memory_limit": limit}
     res = run_attempt(AttemptTask(config={"mb": 2000}, **base))  # type: ignore[arg-type]
     assert res.outcome == "failed"

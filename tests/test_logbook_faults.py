@@ -80,6 +80,7 @@ def test_full_disk_is_reported_and_nothing_lost(tiny_fs: Path) -> None:
     assert recs[: len(kept)] == kept and recs[-1] == closing and skipped == 0
 
 
+# Linux errno values and messages, errno(3) (EIO = 5, ENOSPC = 28), as os.strerror gives them.
 @pytest.mark.parametrize(("code", "text"), [(5, "Input/output error"), (28, "No space left on device")])
 def test_failing_fsync_keeps_earlier_records(tmp_path: Path, monkeypatch: pytest.MonkeyPatch, code: int, text: str) -> None:
     """A failing fsync (EIO from a dying disk, ENOSPC from a full one) is reported with the

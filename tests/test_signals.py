@@ -3,7 +3,8 @@
 A batch scheduler or Kubernetes sends SIGTERM before SIGKILL: forebear treats
 it as the first Ctrl-C (no new trials, running attempts finish, the logbook is
 closed ``interrupted``) with a grace period, then stops at once. Two quick
-Ctrl-C stop at once with one line and status 130 (128 + SIGINT).
+Ctrl-C stop at once with one line and status 130 (128 + SIGINT's number 2, the shells'
+convention for a command ended by a signal: bash manual, "Exit Status", from memory).
 """
 
 from __future__ import annotations
