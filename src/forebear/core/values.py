@@ -34,6 +34,7 @@ _RENAMED = {"journal": "logbook"}
 
 
 def check_keys(doc: Doc, path: tuple[str, ...], data: Mapping[str, Any], allowed: tuple[str, ...]) -> None:
+    """Report every key of ``data`` not in ``allowed``, with the nearest valid key or the renamed one."""
     for key in data:
         if key in _RENAMED and _RENAMED[key] in allowed:
             doc.error((*path, key), f"renamed: the key is now {_RENAMED[key]!r} (same value)")
@@ -44,10 +45,12 @@ def check_keys(doc: Doc, path: tuple[str, ...], data: Mapping[str, Any], allowed
 
 
 def is_number(v: Any) -> bool:
+    """True for an int or float that is not a boolean."""
     return isinstance(v, (int, float)) and not isinstance(v, bool)
 
 
 def want_mapping(doc: Doc, path: tuple[str, ...], v: Any) -> bool:
+    """True when ``v`` is a mapping; otherwise report it at ``path``."""
     if isinstance(v, dict):
         return True
     doc.error(path, f"must be a mapping, got {describe(v)}")
@@ -55,6 +58,7 @@ def want_mapping(doc: Doc, path: tuple[str, ...], v: Any) -> bool:
 
 
 def describe(v: Any) -> str:
+    """A value as an error message names it: ``nothing``, ``a list``, ``a string ('x')``."""
     if v is None:
         return "nothing"
     if isinstance(v, bool):
@@ -108,6 +112,7 @@ def parse_duration(value: Any) -> float:
 
 
 def int_field(doc: Doc, path: tuple[str, ...], v: Any, minimum: int) -> int | None:
+    """``v`` as a whole number >= ``minimum``, or ``None`` after reporting why not."""
     if isinstance(v, float) and v.is_integer():
         v = int(v)
     if not isinstance(v, int) or isinstance(v, bool):
@@ -120,5 +125,6 @@ def int_field(doc: Doc, path: tuple[str, ...], v: Any, minimum: int) -> int | No
 
 
 def resolve(base: Path, p: str) -> Path:
+    """``p`` with ``~`` expanded, relative to ``base`` unless absolute."""
     q = Path(os.path.expanduser(p))
     return q if q.is_absolute() else base / q
