@@ -16,7 +16,8 @@ from pathlib import Path
 from typing import Any
 
 from forebear.core._yaml import Doc
-from forebear.core.space import Param, Space
+from forebear.core.param import Param
+from forebear.core.space import Space
 from forebear.core.values import (
     DEFAULTS,
     check_keys,
