@@ -22,8 +22,7 @@ from typing import Any
 
 import numpy as np
 
-from forebear.core.param import Param
-from forebear.core.space import Space
+from forebear.core.space import Param, Space
 from forebear.records.files import NotRegularFile, open_regular, read_regular
 from forebear.records.logbook import fold, parse
 
