@@ -13,7 +13,7 @@ from pathlib import Path
 from typing import Any
 
 from forebear.cluster.dispatch import KEY_PREFIX
-from forebear.cluster.runner import PROBE_NAME
+from forebear.cluster.runner import PROBE_NAME, reachable
 from forebear.core.spec import Spec
 from forebear.loop.book import Book
 from forebear.loop.resume import SpecChanged, function_note, search_record, spec_changes
@@ -89,8 +89,7 @@ class Opening:
             os.close(fd)
 
     def _check_shared(self) -> None:
-        from forebear.cluster.runner import reachable
-
+        """Ask a worker whether it sees the probe token; without a shared filesystem, say so once."""
         assert self._dispatch is not None
         fut = self._dispatch.client.submit(reachable, str(self.logs), self.token, pure=False, key=f"{KEY_PREFIX}probe-{self.session}")
         try:
