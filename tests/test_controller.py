@@ -265,11 +265,11 @@ def test_second_ctrl_c_stops_at_once(tmp_path: Path, shared_loopback: LoopbackCl
 
 
 def test_without_a_shared_filesystem_the_controller_writes(tmp_path: Path, shared_loopback: LoopbackCluster, monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]) -> None:
-    import forebear.loop.controller as controller_mod
+    import forebear.loop.opening as opening_mod
 
     # The workers look for the token at runner.PROBE_NAME; writing it elsewhere makes the logbook's
     # folder look unreachable to them, as on a machine without the shared filesystem.
-    monkeypatch.setattr(controller_mod, "PROBE_NAME", ".probe-not-where-workers-look")
+    monkeypatch.setattr(opening_mod, "PROBE_NAME", ".probe-not-where-workers-look")
     spec = make_spec(tmp_path, shared_loopback, call="objectives:crash", trials=2)
     result = forebear.run(spec, quiet=False)
     assert result.counts["failed"] == 2

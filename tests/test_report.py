@@ -14,7 +14,8 @@ import numpy as np
 import pytest
 from click.testing import CliRunner
 
-from forebear.core.space import Param, Space
+from forebear.core.param import Param
+from forebear.core.space import Space
 from forebear.face.cli import main as cli_main
 from forebear.face.report import PLOTS, TOP_N, write_report
 from forebear.records.logbook import Logbook, record

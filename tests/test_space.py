@@ -9,7 +9,8 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from forebear.core.space import Param, Space
+from forebear.core.param import Param
+from forebear.core.space import Space
 
 SPACE = Space(
     (

@@ -8,7 +8,8 @@ from pathlib import Path
 import pytest
 
 from forebear.core import spec as spec_mod
-from forebear.core.spec import SpecError, load, parse_duration
+from forebear.core.spec import SpecError, load
+from forebear.core.values import parse_duration
 
 DATA = Path(__file__).parent / "data"
 BAD = sorted((DATA / "bad_specs").glob("*.yaml"))

@@ -5,7 +5,8 @@ from __future__ import annotations
 from typing import Any
 
 from forebear.cluster.notes import Halted
-from forebear.core.space import Param, Space
+from forebear.core.param import Param
+from forebear.core.space import Space
 from forebear.core.spec import Spec, SpecError
 from forebear.records.logbook import Logbook, Trial, TrialTable, load
 

@@ -50,7 +50,8 @@ import numpy as np
 from scipy.stats import qmc
 
 from forebear.bench import functions
-from forebear.core.space import Param, Space
+from forebear.core.param import Param
+from forebear.core.space import Space
 from forebear.records.history import History, Task
 
 DATA = Path(__file__).parent / "data" / "hgb_tasks.csv.gz"

@@ -30,7 +30,8 @@ from distributed import Client, Future
 from distributed.diagnostics.plugin import SchedulerPlugin
 from distributed.security import Security
 
-from forebear.core.spec import Cluster, Spec, memory_bytes
+from forebear.core.spec import Cluster, Spec
+from forebear.core.values import memory_bytes
 
 log = logging.getLogger("forebear.cluster.dispatch")
 

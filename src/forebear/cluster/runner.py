@@ -11,7 +11,9 @@ When the logbook's folder is reachable from the worker (a shared filesystem,
 proven by a token file the controller wrote), the runner appends its own
 ``started`` and ``scored``/``failed`` records and writes the full log beside
 the logbook; otherwise it returns the records and the log for the controller
-to write. The runner never imports the surrogate.
+to write. The task and its result are :mod:`forebear.cluster.task`; how the
+child's exit becomes the final record is :mod:`forebear.cluster.outcome`. The
+runner never imports the surrogate.
 """
 
 from __future__ import annotations
@@ -26,14 +28,14 @@ import socket
 import tempfile
 import time
 from collections.abc import Callable, Mapping
-from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from forebear.cluster.capture import read_log, read_text, with_tail
-from forebear.cluster.scoring import BadScore, score_of_stdout
+from forebear.cluster.capture import read_log, with_tail
+from forebear.cluster.outcome import finish
 from forebear.cluster.servers import RunnerError, _acquire, _release, _Server, shutdown_servers
-from forebear.cluster.steps import StepWatcher, without_marks
+from forebear.cluster.steps import StepWatcher
+from forebear.cluster.task import AttemptResult, AttemptTask, log_name
 from forebear.records.logbook import Logbook, ensure_folder, record
 
 __all__ = ["AttemptResult", "AttemptTask", "RunnerError", "log_name", "reachable", "run_attempt", "shutdown_servers"]
@@ -44,48 +46,6 @@ HALT_GRACE = 5.0  # seconds a halted command has between SIGTERM and SIGKILL to 
 POLL = 0.2  # how often a waiting runner checks whether its Dask task was cancelled
 
 
-@dataclass(frozen=True)
-class AttemptTask:
-    """Everything a worker needs for one attempt (plain data, pickled to the worker)."""
-
-    search: str
-    trial: int
-    attempt: int
-    config: Mapping[str, Any]
-    metric: str
-    call: str | None = None
-    command: tuple[str, ...] | None = None
-    timeout: float | None = None
-    logbook: str | None = None
-    lock: str = "strict"
-    lock_lifetime: float = 60.0
-    logs: str | None = None
-    token: str | None = None
-    cwd: str | None = None
-    retryable: bool = False  # the value of ``retryable`` in a ``failed`` record for an objective error
-    memory_limit: int | None = None  # bytes of address space for the attempt process (cluster.local.memory_limit)
-    function: bytes | None = None  # a callable objective, cloudpickled (forebear.cluster.shipping)
-    function_name: str | None = None  # its module:qualified.name, for messages
-    topic: str | None = None  # the Dask event topic intermediate scores are sent to
-    halt_event: str | None = None  # the distributed.Event that says "halt"; None when no rule halts trials
-
-
-@dataclass
-class AttemptResult:
-    """What an attempt came to; ``records`` are already in the logbook when ``written``."""
-
-    trial: int
-    attempt: int
-    outcome: str  # scored, failed, halted, timeout, cancelled, superseded (settled as lost by a controller meanwhile)
-    records: list[dict[str, Any]] = field(default_factory=list)
-    written: bool = False
-    error: str | None = None
-    seconds: float | None = None
-    worker: str | None = None
-    log_name: str | None = None
-    log_text: str | None = None
-
-
 def _server_key(task: AttemptTask) -> tuple[str | None, tuple[str, bytes] | None]:
     """The pool key of the server an attempt needs, and the shipped function it loads (if any)."""
     if task.command:
@@ -94,11 +54,6 @@ def _server_key(task: AttemptTask) -> tuple[str | None, tuple[str, bytes] | None
         name = task.function_name or "objective"
         return f"function {name} {hashlib.sha256(task.function).hexdigest()[:16]}", (name, task.function)
     return task.call, None
-
-
-def log_name(trial: int, attempt: int) -> str:
-    """The log file of an attempt inside the search's logs folder."""
-    return f"trial-{trial:05d}-attempt-{attempt}.log"
 
 
 # --------------------------------------------------------------------------
@@ -136,18 +91,6 @@ def reachable(logs: str | None, token: str | None) -> bool:
         except OSError:
             _SHARED[key] = False
     return _SHARED[key]
-
-
-def _exit_reason(status: int) -> str:
-    if os.WIFSIGNALED(status):
-        sig = os.WTERMSIG(status)
-        try:
-            name = signal.Signals(sig).name
-        except ValueError:
-            name = f"signal {sig}"
-        hint = " (out of memory, or killed from outside?)" if sig == signal.SIGKILL else ""
-        return f"the objective process was killed by {name} ({sig}){hint}"
-    return f"the objective process exited with status {os.waitstatus_to_exitcode(status)} before returning a result"
 
 
 # --------------------------------------------------------------------------
@@ -214,13 +157,13 @@ def _run(task: AttemptTask, worker: str, cancelled: Callable[[], bool], logbook:
         # The objective cannot be imported here: the attempt fails, it did not start anything.
         started = record("started", trial=task.trial, attempt=task.attempt, worker=worker, host=socket.gethostname(), pid=None)
         since = logbook.append(started) if logbook is not None else 0
-        return _finish(task, result, logbook, started, None, str(exc), 0.0, log, out, since=since)
+        return finish(task, result, logbook, started, None, str(exc), 0.0, log, out, since=since)
     try:
         outcome, status, started, seconds, since = _supervise(server, request, task, worker, logbook, cancelled, watcher)
     except RunnerError as exc:
         server.close()
         started = record("started", trial=task.trial, attempt=task.attempt, worker=worker, host=socket.gethostname(), pid=None)
-        return _finish(task, result, logbook, started, None, str(exc), 0.0, log, out)
+        return finish(task, result, logbook, started, None, str(exc), 0.0, log, out)
     finally:
         _release(server, key_call, task.cwd)
     watcher.poll(final=True)
@@ -235,7 +178,7 @@ def _run(task: AttemptTask, worker: str, cancelled: Callable[[], bool], logbook:
             result.log_text = read_log(log, out)
         return result
     result.outcome = outcome
-    return _finish(task, result, logbook, started, status, None, seconds, log, out, scratch / "result.json", since, watcher)
+    return finish(task, result, logbook, started, status, None, seconds, log, out, scratch / "result.json", since, watcher)
 
 
 def _supervise(
@@ -317,86 +260,3 @@ def _substitute(item: str, config: Mapping[str, Any]) -> str:
     snippet, a Python one-liner) stay as written.
     """
     return _PLACEHOLDER.sub(lambda m: str(config[m.group(1)]) if m.group(1) in config else m.group(0), item)
-
-
-def _finish(
-    task: AttemptTask,
-    result: AttemptResult,
-    logbook: Logbook | None,
-    started: dict[str, Any],
-    status: int | None,
-    error: str | None,
-    seconds: float,
-    log: Path,
-    out: Path | None,
-    result_file: Path | None = None,
-    since: int = 0,
-    watcher: StepWatcher | None = None,
-) -> AttemptResult:
-    score: float | None = None
-    metrics: dict[str, Any] = {}
-    dropped: dict[str, str] = {}
-    payload: dict[str, Any] | None = None
-    if error is None and result_file is not None and result_file.exists():
-        try:
-            payload = json.loads(result_file.read_text())
-        except (OSError, ValueError):
-            payload = None
-    halted = None
-    if watcher is not None and error is None and (result.outcome == "halted" or (payload or {}).get("halted")):
-        halted = watcher.halted_record(seconds)
-    if halted is None and error is None:
-        if status is None:
-            error = "the objective process could not be reaped after SIGKILL"
-        elif payload is not None and not payload.get("ok"):
-            error = str(payload.get("error"))
-        elif task.command:
-            code = os.waitstatus_to_exitcode(status)
-            if code != 0:
-                error = _exit_reason(status) if code < 0 else f"the command exited with status {code}"
-            else:
-                try:
-                    score, metrics = score_of_stdout(without_marks(read_text(out)), task.metric, dropped)
-                except BadScore as exc:
-                    error = f"bad result: {exc}"
-        elif payload is not None:
-            score, metrics = float(payload["score"]), dict(payload.get("metrics") or {})
-            dropped = dict(payload.get("dropped") or {})
-        else:
-            error = _exit_reason(status)
-    if error is not None and task.memory_limit and _memory_like(error):
-        error += f" (the attempt's address space is limited to {task.memory_limit / 2**20:.0f} MiB by cluster.local.memory_limit)"
-    steps = watcher.records if watcher is not None else []
-    if halted is not None:
-        final = halted
-        result.outcome = "halted"
-    elif error is None and score is not None:
-        extra = {"dropped": dropped} if dropped else {}
-        final = record("scored", trial=task.trial, attempt=task.attempt, score=score, metrics=metrics, seconds=round(seconds, 6), **extra)
-        result.outcome = "scored"
-    else:
-        result.error = with_tail(error or "no result", log, out)
-        final = record("failed", trial=task.trial, attempt=task.attempt, error=result.error, retryable=task.retryable)
-        result.outcome = "failed"
-    result.seconds = seconds
-    if logbook is not None:
-        if not logbook.append_result(final, since):
-            # A controller settled this attempt as lost (and resubmitted its trial) while it ran:
-            # the late result is not recorded, so the trial is never scored twice.
-            result.outcome = "superseded"
-            result.error = "the attempt was settled as lost while it ran; its result was not recorded"
-            result.records = [started]
-            result.written = True
-            result.seconds = seconds
-            return result
-        result.records = [started, final]
-        result.written = True
-    else:
-        result.records = [started, *steps, final]
-        result.log_text = read_log(log, out)
-    return result
-
-
-def _memory_like(error: str) -> bool:
-    """Whether a failure reads like an allocation refused by the attempt's address-space limit."""
-    return any(w in error for w in ("MemoryError", "SIGSEGV", "SIGABRT", "SIGKILL", "Cannot allocate memory", "bad_alloc"))

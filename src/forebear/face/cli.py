@@ -3,114 +3,32 @@
 Output for people goes to stderr; ``--json`` output for programs goes to
 stdout. Exit status: 0 success, 1 the search ran but nothing scored, 2 bad
 input, 128 + the signal when ``run`` stopped at once on a second Ctrl-C or
-SIGTERM (130, 143). No traceback reaches the user unless ``--debug`` is given.
+SIGTERM (130, 143). No traceback reaches the user unless ``--debug`` is given
+(:mod:`forebear.face.output`). What ``export`` writes is :mod:`forebear.face.export`.
 """
 
 from __future__ import annotations
 
-import csv
-import functools
 import importlib
 import json
-import math
-import sys
 from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
 import click
 
-from forebear.records.files import NotRegularFile, check_regular, write_atomic
-from forebear.records.logbook import (
-    Logbook,
-    LogbookBusy,
-    LogbookError,
-    LogbookMismatch,
-    TrialTable,
-    check_header,
-    is_logbook,
+from forebear.face import export as export_mod
+from forebear.face.output import (
+    EXIT_INTERRUPTED,
+    EXIT_NOTHING_SCORED,
+    Exit,
+    emit_json,
+    guarded,
+    say,
+    skipped_note,
 )
+from forebear.records.logbook import Logbook, TrialTable, check_header
 from forebear.records.status import best_payload, status_payload
-
-EXIT_OK, EXIT_NOTHING_SCORED, EXIT_BAD_INPUT = 0, 1, 2
-EXIT_INTERRUPTED = 130  # 128 + SIGINT, the shell's convention: stopped at once (143 after SIGTERM)
-
-
-class Exit(Exception):
-    """A clean stop with a message for stderr and an exit status."""
-
-    def __init__(self, message: str, code: int = EXIT_BAD_INPUT) -> None:
-        super().__init__(message)
-        self.code = code
-
-
-def say(message: str = "") -> None:
-    click.echo(message, err=True)
-
-
-def emit_json(payload: Any) -> None:
-    """Standard JSON on stdout: a non-finite number (from a hand-edited logbook) becomes null, never NaN or Infinity."""
-    click.echo(json.dumps(_finite(payload), indent=2, default=str, allow_nan=False))
-
-
-def _finite(value: Any) -> Any:
-    if isinstance(value, float):
-        return value if math.isfinite(value) else None
-    if isinstance(value, dict):
-        return {k: _finite(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [_finite(v) for v in value]
-    return value
-
-
-def skipped_note(table: TrialTable) -> str | None:
-    """One line on what the fold skipped (unreadable lines, records with wrong field types), with line numbers."""
-    parts = []
-    if table.skipped:
-        parts.append(f"{table.skipped} unreadable line(s)")
-    if table.invalid:
-        parts.append(f"{len(table.invalid)} record(s) with wrong field types ({table.invalid[0][1]})")
-    if not parts:
-        return None
-    lines = table.bad_lines
-    where = f" at line(s) {', '.join(map(str, lines[:10]))}{', ...' if len(lines) > 10 else ''}" if lines else ""
-    return f"note: {' and '.join(parts)} skipped{where}"
-
-
-def guarded(fn: Callable[..., Any]) -> Callable[..., Any]:
-    """Turn expected errors into one line and an exit status (tracebacks only with --debug)."""
-
-    @functools.wraps(fn)
-    def wrapper(*args: Any, **kwargs: Any) -> Any:
-        debug = bool((click.get_current_context().find_root().obj or {}).get("debug"))
-        try:
-            return fn(*args, **kwargs)
-        except Exit as exc:
-            if str(exc):
-                say(f"forebear: {exc}")
-            sys.exit(exc.code)
-        except click.exceptions.Exit:
-            raise
-        except (click.ClickException, click.Abort):
-            raise
-        except Exception as exc:
-            if debug:
-                raise
-            from forebear.core.spec import SpecError
-
-            if isinstance(exc, SpecError):
-                for line in exc.errors:
-                    say(f"error: {line}")
-                say(f"forebear: the spec has {len(exc.errors)} error{'s' if len(exc.errors) != 1 else ''}; nothing was written")
-            elif isinstance(exc, (LogbookBusy, LogbookMismatch, LogbookError, NotRegularFile)):
-                say(f"forebear: {exc.args[-1] if exc.args else exc}")
-            elif isinstance(exc, (ValueError, TypeError, OSError, ImportError, LookupError)):
-                say(f"forebear: {type(exc).__name__}: {exc}".replace("\n", " "))
-            else:
-                say(f"forebear: unexpected {type(exc).__name__}: {exc} (rerun with --debug for the traceback)".replace("\n", " "))
-            sys.exit(EXIT_BAD_INPUT)
-
-    return wrapper
 
 
 def _optional(module: str, what: str) -> Any:
@@ -294,55 +212,10 @@ def export(logbook: str, csv_path: str, replace: bool) -> None:
     name is one of these columns or holds a dot is written as ``config.<name>``, so no two
     columns share a name.
     """
-    _check_export_target(Path(logbook), Path(csv_path), replace)
+    export_mod.check_target(Path(logbook), Path(csv_path), replace)
     table = _table(logbook)
-    header, rows = export_rows(table)
-
-    def write(fh: Any) -> None:
-        w = csv.writer(fh)
-        w.writerow(header)
-        w.writerows(rows)
-
-    write_atomic(csv_path, write, newline="")
+    export_mod.write_csv(table, csv_path)
     say(f"wrote {len(table)} trials to {csv_path}")
-
-
-EXPORT_HEAD = ("trial", "state", "score")
-EXPORT_TAIL = ("seconds", "attempts", "round", "source", "model", "error")
-
-
-def export_rows(table: TrialTable) -> tuple[list[str], list[list[Any]]]:
-    """The header and rows of ``forebear export``: export's own columns never share a name with a parameter."""
-    params: dict[str, None] = {}
-    metrics: dict[str, None] = {}
-    for t in table:
-        params.update(dict.fromkeys(t.config))
-        metrics.update(dict.fromkeys(t.metrics))
-    own = set(EXPORT_HEAD) | set(EXPORT_TAIL)
-    # Export's own names hold no dot; a prefixed name always does: the two sets cannot meet.
-    columns = [f"config.{p}" if p in own or "." in p else p for p in params]
-    header = [*EXPORT_HEAD, *columns, *[f"metric.{m}" for m in metrics], *EXPORT_TAIL]
-    rows = [
-        [
-            t.trial, t.state, "" if t.score is None else t.score,
-            *[t.config.get(p, "") for p in params],
-            *[t.metrics.get(m, "") for m in metrics],
-            "" if t.seconds is None else t.seconds, len(t.attempts), t.round, t.source, t.model or "", t.error or "",
-        ]
-        for t in table
-    ]
-    return header, rows
-
-
-def _check_export_target(logbook: Path, target: Path, replace: bool) -> None:
-    """Refuse to write over a forebear logbook (the one read included), or over any file without ``--replace``."""
-    if not target.exists():
-        return
-    check_regular(target, "export target")
-    if (logbook.exists() and target.samefile(logbook)) or is_logbook(target):
-        raise Exit(f"{target} is a forebear logbook; export never writes over one (choose another file name)")
-    if not replace:
-        raise Exit(f"{target} already exists; pass --replace to write over it")
 
 
 # -- report / demo / bench --------------------------------------------------

@@ -22,7 +22,8 @@ from typing import Any
 
 import numpy as np
 
-from forebear.core.space import Param, Space
+from forebear.core.param import Param
+from forebear.core.space import Space
 from forebear.records.logbook import Attempt, Trial, TrialTable
 
 try:

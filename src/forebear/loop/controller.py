@@ -13,13 +13,14 @@ Resuming: a logbook that already holds the search is continued. A spec that
 changed is refused with the list of changes (``extend`` allows a larger
 ``trials`` or ``wall_time`` only). Attempts that were running when the last
 controller died and have no result in the logbook become ``lost`` (reason
-``restart``) and are resubmitted; results recorded meanwhile are kept.
+``restart``) and are resubmitted; results recorded meanwhile are kept. These
+opening steps are :mod:`forebear.loop.opening`; submitting and collecting
+attempts :mod:`forebear.loop.attempts`; proposing :mod:`forebear.loop.proposing`.
 """
 
 from __future__ import annotations
 
 import logging
-import os
 import secrets
 import threading
 import time
@@ -31,35 +32,27 @@ from typing import Any
 from distributed import as_completed
 
 from forebear.cluster.dashboard import publish
-from forebear.cluster.dispatch import KEY_PREFIX, Dispatch, connect
-from forebear.cluster.runner import PROBE_NAME
+from forebear.cluster.dispatch import Dispatch, connect
 from forebear.cluster.shipping import ObjectiveError, pack
 from forebear.core.spec import Spec
 from forebear.engine.proposer import Proposer
 from forebear.loop.attempts import Attempts
 from forebear.loop.book import Book, SearchResult
 from forebear.loop.halting import Halting
+from forebear.loop.opening import Opening, load_history
 from forebear.loop.proposing import ProposalEngine, Rounds
-from forebear.loop.resume import SpecChanged, function_note, search_record, spec_changes
 from forebear.loop.schedule import Timing
 from forebear.loop.stopping import Stop, StopNow, deadline
 from forebear.records.logbook import (
     ControllerLock,
     Logbook,
     LogbookError,
-    LogbookMismatch,
     TrialTable,
-    check_header,
-    ensure_folder,
-    fold,
     record,
 )
 
 log = logging.getLogger("forebear.loop.controller")
 
-RETRY_REASONS = ("worker", "timeout")  # lost attempts that use up a retry; restarts and interrupts do not
-BUDGET_KEYS = ("trials", "batch", "concurrency", "trial_timeout", "retries", "retry_errors", "wall_time")
-EXTENDABLE = ("trials", "wall_time")
 RESOURCE_CHECK_EVERY = 5.0  # seconds between checks that some worker still offers the trials' resources
 
 
@@ -67,7 +60,7 @@ RESOURCE_CHECK_EVERY = 5.0  # seconds between checks that some worker still offe
 # the loop
 
 
-class Controller(Attempts, Rounds):
+class Controller(Attempts, Rounds, Opening):
     """Drives one search to its budget (see the module docstring).
 
     Parameters
@@ -170,31 +163,7 @@ class Controller(Attempts, Rounds):
 
     def _run_locked(self) -> SearchResult:
         spec = self.spec
-        self._read_at = self.logbook.size()  # results that arrive after this are seen by _reconcile
-        records, skipped = self.logbook.read()
-        if skipped and not records and b"\n" in spec.logbook.read_bytes():
-            # Whole lines and none of them ours: someone else's file. Writing would append to it and
-            # cut its last line as a torn record. (A lone torn first record has no newline: resumable.)
-            raise LogbookMismatch(
-                f"logbook {spec.logbook}: holds no forebear records ({skipped} unreadable line(s)); "
-                "not a forebear logbook, so nothing is written to it"
-            )
-        table = fold(records)
-        table.skipped = skipped
-        check_header(table, spec.logbook)
-        headers = [r for r in records if r.get("kind") == "search"]
-        new_header: dict[str, Any] | None = None
-        if headers:
-            changes, grew = spec_changes(headers[-1], spec, self.extend)
-            if changes:
-                raise SpecChanged(str(spec.logbook), changes)
-            note = function_note(headers[-1], spec)
-            if note:
-                self.say(note)
-            if grew:
-                new_header = search_record(spec)
-        else:
-            new_header = search_record(spec)
+        table, new_header = self._read()
         self.book = Book.from_table(table)
         if table.closed and self.book.finished >= spec.budget.trials and new_header is None:
             self.say(f"search {spec.name} is already complete ({self.book.finished} trials finished); nothing to do")
@@ -214,63 +183,6 @@ class Controller(Attempts, Rounds):
             if self._own_dispatch and self._dispatch is not None:
                 self._dispatch.close()
                 self._dispatch = None
-
-    # -- setup ----------------------------------------------------------------
-
-    def _probe(self) -> None:
-        """Write the token workers look for to decide whether they share the logbook's filesystem."""
-        ensure_folder(self.logs)
-        path = self.logs / PROBE_NAME
-        fd = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o600)
-        try:
-            os.write(fd, self.token.encode())
-        finally:
-            os.close(fd)
-
-    def _check_shared(self) -> None:
-        from forebear.cluster.runner import reachable
-
-        assert self._dispatch is not None
-        fut = self._dispatch.client.submit(reachable, str(self.logs), self.token, pure=False, key=f"{KEY_PREFIX}probe-{self.session}")
-        try:
-            self.shared = bool(fut.result(timeout=30))
-        except Exception:  # noqa: BLE001 - no worker yet, or it cannot tell: results come back either way
-            self.shared = None
-            return
-        if not self.shared:
-            self.say(
-                f"note: the workers cannot see {self.logs.parent} (no shared filesystem); "
-                "the controller writes their records and logs from the results it collects"
-            )
-
-    def _reconcile(self, table: TrialTable) -> None:
-        """Settle what the last controller left: attempts it left running are lost (``restart``), then retried.
-
-        Each ``lost`` record is written only if the attempt's own result did not arrive since the
-        logbook was read (checked under the lock); a result that did arrive stands.
-        """
-        arrived = []
-        for t in table:
-            if t.terminal:
-                continue
-            if t.state == "running":
-                lost = record("lost", trial=t.trial, attempt=t.last_attempt, reason="restart")
-                if not self.logbook.append_unless(lost, ("scored", "failed"), self._read_at):
-                    arrived.append(t.trial)
-                    continue
-                self.say(f"trial {t.trial}: attempt {t.last_attempt} was running when the last controller stopped; resubmitting")
-            self.book.state[t.trial] = "queued"
-            self.retry_queue.append(t.trial)
-        if arrived:
-            fresh = Book.from_table(self.logbook.fold())
-            for tid in arrived:
-                for part in ("state", "scores", "attempts", "charged", "errors"):
-                    value = getattr(fresh, part).get(tid)
-                    if value is not None:
-                        getattr(self.book, part)[tid] = value
-                if self.book.state[tid] not in ("scored", "failed"):
-                    self.book.state[tid] = "queued"
-                    self.retry_queue.append(tid)
 
     # -- the loop -------------------------------------------------------------
 
@@ -403,21 +315,3 @@ def _ready(ac: as_completed, timeout: float, controller: Controller) -> list[Any
         if not ac.has_ready() and not (job is not None and job.done()):
             ac.thread_condition.wait(timeout)
     return ac.next_batch(block=False) if ac.has_ready() else []
-
-
-def load_history(spec: Spec, say: Any) -> Any:
-    """The spec's history (``forebear.records.history.History``), or None for a cold start."""
-    if not spec.history:
-        return None
-    try:
-        from forebear.records import history as history_mod
-    except ImportError:
-        say("warning: forebear.records.history is not available in this build; starting without history")
-        return None
-    hist = history_mod.load(spec.history, spec.space, spec.objective.sense, exclude=[spec.logbook])
-    for w in getattr(hist, "warnings", []) or []:
-        say(f"history: {w}")
-    say(f"history: {len(hist)} earlier search(es)")
-    return hist if len(hist) else None
-
-

@@ -6,8 +6,10 @@ One JSON object per line. Every record has ``v`` (format version), ``at``
 ``<logbook>.lock``, open the file after locking, cut off a torn last line left
 by a writer that died mid-write, write the record with one ``os.write``,
 ``fsync`` and release. Readers take no lock: they skip lines that do not
-parse and count them. The fold into a trial table is :mod:`forebear.records.table`;
-the locks are :mod:`forebear.records.locks`; both are re-exported here.
+parse and count them. The line format (records, parsing, the header check) is
+:mod:`forebear.records.lines`; the fold into a trial table is
+:mod:`forebear.records.table`; the locks are :mod:`forebear.records.locks`; all
+three are re-exported here.
 """
 
 from __future__ import annotations
@@ -15,7 +17,6 @@ from __future__ import annotations
 import json
 import os
 import threading
-import time
 from collections.abc import Callable, Iterable, Mapping
 from pathlib import Path
 from typing import Any
@@ -23,28 +24,26 @@ from typing import Any
 import filelock
 
 from forebear.records.files import NotRegularFile, ensure_folder, open_fd, read_regular
-from forebear.records.locks import ControllerLock, LogbookBusy, _lock_for
-from forebear.records.table import (
-    KINDS,
-    STATES,
-    TERMINAL,
-    Attempt,
-    Trial,
-    TrialTable,
-    _gc_paused,
-    finite,
-    fold,
+from forebear.records.lines import (
+    MAX_RECORD_BYTES,
+    VERSION,
+    LogbookMismatch,
+    bad_lines,
+    check_header,
+    encode,
+    holds,
+    is_logbook,
+    parse,
+    record,
 )
-from forebear.records.trim import FIT_BYTES, fit
+from forebear.records.locks import ControllerLock, LogbookBusy, _lock_for
+from forebear.records.table import KINDS, STATES, TERMINAL, Attempt, Trial, TrialTable, finite, fold
 
 __all__ = [
     "KINDS", "MAX_RECORD_BYTES", "STATES", "TERMINAL", "VERSION", "Attempt", "ControllerLock", "Logbook",
     "LogbookBusy", "LogbookError", "LogbookMismatch", "Trial", "TrialTable", "check_header", "ensure_folder",
     "finite", "fold", "is_logbook", "load", "parse", "record",
 ]
-
-VERSION = 1
-MAX_RECORD_BYTES = 1 << 20  # one record; error tails and metrics are trimmed well below this
 
 
 class LogbookError(OSError):
@@ -53,55 +52,6 @@ class LogbookError(OSError):
     def __reduce__(self) -> tuple[Any, ...]:
         return (self.__class__, self.args)
 
-
-class LogbookMismatch(ValueError):
-    """The logbook belongs to another search, or to a newer format."""
-
-    def __reduce__(self) -> tuple[Any, ...]:
-        return (self.__class__, self.args)
-
-
-# --------------------------------------------------------------------------
-# records
-
-
-def record(kind: str, **fields: Any) -> dict[str, Any]:
-    """A logbook record of ``kind`` with the common fields filled in.
-
-    Records that carry an objective's output (``scored``, ``failed``) are fitted
-    to :data:`forebear.records.trim.FIT_BYTES` here, where they are built, so that
-    what the worker returns to the controller is already the record to write.
-    """
-    if kind not in KINDS:
-        msg = f"record kind must be one of {KINDS}, got {kind!r}"
-        raise ValueError(msg)
-    rec = {"v": VERSION, "at": round(time.time(), 6), "kind": kind, **fields}
-    return fit(rec) if kind in ("scored", "failed") else rec
-
-
-def _encode(rec: Mapping[str, Any]) -> bytes:
-    data = _dump(rec)
-    if len(data) > FIT_BYTES:
-        data = _dump(fit(rec))  # a record built without record(): trimmed here, by the same rule
-    if len(data) > MAX_RECORD_BYTES:
-        msg = f"logbook record of {len(data)} bytes exceeds {MAX_RECORD_BYTES}"
-        raise ValueError(msg)
-    return data
-
-
-def _dump(rec: Mapping[str, Any]) -> bytes:
-    line = json.dumps(rec, separators=(",", ":"), allow_nan=False, default=_jsonable)
-    return (line + "\n").encode("utf-8")
-
-
-def _jsonable(value: Any) -> Any:
-    # numpy scalars reach the logbook from the surrogate and from user objectives.
-    if hasattr(value, "item"):
-        return value.item()
-    if hasattr(value, "tolist"):
-        return value.tolist()
-    msg = f"{type(value).__name__} is not JSON serialisable"
-    raise TypeError(msg)
 
 
 class Logbook:
@@ -158,7 +108,7 @@ class Logbook:
         The check and the write happen under one hold of the lock. Returns whether ``rec`` was written.
         """
         key = (rec.get("trial"), rec.get("attempt"))
-        return self.append_many([rec], unless=lambda tail: _names(tail, kinds, key), since=since) >= 0
+        return self.append_many([rec], unless=lambda tail: holds(tail, kinds, key), since=since) >= 0
 
     def size(self) -> int:
         """The logbook's size in bytes now (0 when it does not exist yet)."""
@@ -175,7 +125,7 @@ class Logbook:
         With ``unless``, the bytes from ``since`` to the end are read under the lock first; when
         ``unless(bytes)`` is true nothing is written and -1 is returned.
         """
-        payloads = [_encode(r) for r in recs]
+        payloads = [encode(r) for r in recs]
         if not payloads:
             return -1 if unless is not None else 0
         ensure_folder(self.path.parent)
@@ -246,74 +196,6 @@ class Logbook:
         return table
 
 
-def parse(data: bytes) -> tuple[list[dict[str, Any]], int]:
-    """Parse logbook bytes; returns records and the count of unparseable lines."""
-    with _gc_paused():
-        return _parse(data)
-
-
-def _parse(data: bytes) -> tuple[list[dict[str, Any]], int]:
-    out: list[dict[str, Any]] = []
-    skipped = 0
-    loads = json.loads
-    lines = [line for line in data.split(b"\n") if line.strip()]
-    try:
-        # Fast path: a healthy logbook parses as one JSON array, twice as fast as line by line.
-        whole = loads(b"[" + b",".join(lines) + b"]")
-    except ValueError:
-        whole = None
-    if whole is not None and len(whole) == len(lines) and all(isinstance(r, dict) and "kind" in r for r in whole):
-        return whole, 0
-    for line in lines:
-        try:
-            rec = loads(line)
-        except ValueError:  # JSONDecodeError and UnicodeDecodeError both derive from it
-            skipped += 1
-            continue
-        if isinstance(rec, dict) and "kind" in rec:
-            out.append(rec)
-        else:
-            skipped += 1
-    return out, skipped
-
-
-def _names(data: bytes, kinds: tuple[str, ...], key: tuple[Any, Any]) -> bool:
-    """True when ``data`` (whole lines of a logbook) holds a record of ``kinds`` for (trial, attempt) ``key``."""
-    needles = [f'"{k}"'.encode() for k in kinds]
-    if not any(n in data for n in needles):
-        return False
-    for line in data.split(b"\n"):
-        if not any(n in line for n in needles):
-            continue
-        try:
-            rec = json.loads(line)
-        except ValueError:
-            continue
-        if isinstance(rec, dict) and rec.get("kind") in kinds and (rec.get("trial"), rec.get("attempt")) == key:
-            return True
-    return False
-
-
-def bad_lines(data: bytes, invalid: set[int]) -> list[int]:
-    """Line numbers (from 1) of lines that do not parse as records, and of records numbered in ``invalid``."""
-    out: list[int] = []
-    number = 0
-    for i, line in enumerate(data.split(b"\n"), 1):
-        if not line.strip():
-            continue
-        try:
-            rec = json.loads(line)
-        except ValueError:
-            out.append(i)
-            continue
-        if not (isinstance(rec, dict) and "kind" in rec):
-            out.append(i)
-            continue
-        number += 1
-        if number in invalid:
-            out.append(i)
-    return out
-
 
 def _repair_tail(fd: int) -> None:
     """Cut off a torn last line (a writer died mid-write); keep every complete record."""
@@ -348,33 +230,7 @@ def _repair_tail(fd: int) -> None:
     else:
         os.ftruncate(fd, cut)
 
-def check_header(table: TrialTable, path: Path, spec_hash: str | None = None) -> None:
-    """Refuse a logbook of a newer format, or of another search when ``spec_hash`` is given."""
-    if table.header is None:
-        if table.trials:
-            msg = f"logbook {path}: has trial records but no search record; not a forebear logbook"
-            raise LogbookMismatch(msg)
-        return
-    v = table.header.get("v")
-    problem = _version_problem(v)
-    if problem:
-        raise LogbookMismatch(f"logbook {path}: {problem}")
-    if spec_hash is not None and table.header.get("spec_hash") != spec_hash:
-        msg = f"logbook {path}: belongs to another search (spec hash {table.header.get('spec_hash')}, this spec {spec_hash})"
-        raise LogbookMismatch(msg)
 
-
-def _version_problem(v: Any) -> str | None:
-    """What is wrong with a search record's format version ``v``, or None when this forebear reads it."""
-    if v is None:
-        return "the search record has no format version (v); not written by forebear, or edited by hand"
-    if not isinstance(v, int) or isinstance(v, bool):
-        return f"format version {v!r} is not a whole number; not written by forebear, or edited by hand"
-    if v < 1:
-        return f"format version {v} was never written by forebear (versions start at 1)"
-    if v > VERSION:
-        return f"format version {v} is newer than this forebear reads ({VERSION}); upgrade forebear"
-    return None
 
 
 def load(path: str | os.PathLike[str]) -> TrialTable:
@@ -394,21 +250,3 @@ def load(path: str | os.PathLike[str]) -> TrialTable:
     table = Logbook(p).fold()
     check_header(table, p)
     return table
-
-
-def is_logbook(path: str | os.PathLike[str]) -> bool:
-    """True when ``path`` is a regular file whose first record is a forebear logbook record."""
-    try:
-        fd = open_fd(path, os.O_RDONLY, what="logbook")
-    except OSError:
-        return False
-    try:
-        head = os.read(fd, 65536)
-    finally:
-        os.close(fd)
-    first = next((line for line in head.split(b"\n") if line.strip()), b"")
-    try:
-        rec = json.loads(first)
-    except ValueError:
-        return False
-    return isinstance(rec, dict) and rec.get("kind") in KINDS and "v" in rec
