@@ -19,11 +19,16 @@ median and spread of that search's scores at the first rung (every trial
 reaches it). For each rung it keeps the pairs (scaled score at the rung,
 scaled final score) of the history trials that ran to the end, and predicts
 a running trial's final score as a least-squares line through them plus the
-empirical distribution of the line's residuals. A trial halts when the
-predicted chance of ending below the current best final score is under
-``threshold``. Without enough history pairs at a rung, before the current
-search has a finished trial, or before enough trials reached its first rung
-to set the scale, it decides as :class:`HalvingRule`.
+empirical distribution of the line's residuals. The bar a trial must have a
+chance to beat is the best final score the search can already count on: the
+best finished trial's, or the median predicted final of another trial from
+its latest rung, whichever is lower (so the rule can decide before any trial
+has finished, and a trial level with a rival at a rung is not halted on a
+tie). A trial halts when its predicted chance of ending below that bar is
+under ``threshold``. Before enough trials reached the first rung to set the
+current search's scale it does not halt (the trial is judged at its next
+rung); at a rung without enough history pairs it decides as
+:class:`HalvingRule`.
 """
 
 from __future__ import annotations
@@ -138,6 +143,14 @@ class CurveModel:
     def usable(self) -> bool:
         return any(line is not None for line in self.lines)
 
+    def median(self, k: int, x: float) -> float | None:
+        """The median predicted final scaled score for scaled score ``x`` at fraction ``k``; None without a line."""
+        line = self.lines[k] if k < len(self.lines) else None
+        if line is None:
+            return None
+        slope, intercept, residuals = line
+        return slope * x + intercept + float(np.median(residuals))
+
     def chance_below(self, k: int, x: float, target: float) -> float | None:
         """P(final < target) for scaled score ``x`` at fraction ``k``; None without a line there."""
         line = self.lines[k] if k < len(self.lines) else None
@@ -164,17 +177,32 @@ class HistoryRule(HalvingRule):
         assert stopping.steps is not None
         self.threshold = stopping.threshold
         self.model = CurveModel(sets, [r / stopping.steps for r in self.rungs])
-        self.best: float | None = None
+        self.best: float | None = None  # the best final score of the search
+        self.latest: dict[int, tuple[int, float]] = {}  # unfinished trial -> (its latest rung, its score there)
 
     def finished(self, trial: int, value: float) -> None:
         self.best = value if self.best is None else min(self.best, value)
+        self.latest.pop(trial, None)
+
+    def bar(self, trial: int, loc: float, spread: float) -> float | None:
+        """The scaled score ``trial`` must beat: the best final, or a rival's median predicted final if lower."""
+        bars = [] if self.best is None else [(self.best - loc) / spread]
+        for t, (k, value) in self.latest.items():
+            if t != trial:
+                m = self.model.median(k, (value - loc) / spread)
+                if m is not None:
+                    bars.append(m)
+        return min(bars) if bars else None
 
     def verdict(self, trial: int, k: int) -> str | None:
+        value = self.values[k][trial]
+        self.latest[trial] = (k, value)
         scale = _scale(list(self.values[0].values())) if len(self.values[0]) >= MIN_SCALE_TRIALS else None
-        chance = None
-        if scale is not None and self.best is not None:
-            loc, spread = scale
-            chance = self.model.chance_below(k, (self.values[k][trial] - loc) / spread, (self.best - loc) / spread)
+        if scale is None:
+            return None  # no scale for this search yet: the trial is judged at its next rung
+        loc, spread = scale
+        bar = self.bar(trial, loc, spread)
+        chance = None if bar is None else self.model.chance_below(k, (value - loc) / spread, bar)
         if chance is None:
             return super().verdict(trial, k)
         if chance >= self.threshold:
