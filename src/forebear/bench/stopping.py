@@ -30,6 +30,7 @@ full runs of 30 random configurations on each of 4 other tasks.
 from __future__ import annotations
 
 import json
+import os
 import statistics
 import time
 import warnings
@@ -314,6 +315,95 @@ def main(
     return result
 
 
+# --------------------------------------------------------------------------
+# halt latency on a real local cluster
+
+LATENCY_DIR = "FOREBEAR_LATENCY_DIR"  # where the latency objective writes when it caught forebear.Halted
+LATENCY_NOTE_EVERY = 0.01  # seconds between the latency objective's intermediate scores
+
+
+def latency_objective(config: dict[str, Any], note: Any) -> float:
+    """An objective that notes ``x + 1/step`` every ``LATENCY_NOTE_EVERY`` s and records when it is halted."""
+    import forebear
+
+    x = float(config["x"])
+    try:
+        for step in range(1, 2001):
+            time.sleep(LATENCY_NOTE_EVERY)
+            note(step, x + 1.0 / step)
+    except forebear.Halted as halted:
+        caught = time.time()
+        Path(os.environ[LATENCY_DIR], f"{x!r}.json").write_text(json.dumps({"caught": caught, "step": halted.step}))
+        raise
+    return x
+
+
+def halt_latency(trials: int = 12, workers: int = 4) -> dict[str, Any]:
+    """Seconds from the controller setting an attempt's halt event to its objective catching forebear.Halted.
+
+    A halving search (rungs at steps 2, 4, ...) of :func:`latency_objective` on a local cluster of
+    ``workers``; the controller's side is timed by wrapping :meth:`forebear.loop.halting.Halting.drain`,
+    which sets the event of each trial it decides to halt just before it returns.
+    """
+    import tempfile
+
+    import forebear
+    from forebear.loop import halting
+
+    decided_at: dict[int, float] = {}
+    drain = halting.Halting.drain
+
+    def timed(self: Any, running: Any) -> list[str]:
+        lines = drain(self, running)
+        now = time.time()
+        for tid in self.decided:
+            decided_at.setdefault(tid, now)
+        return lines
+
+    with tempfile.TemporaryDirectory() as tmp:
+        os.environ[LATENCY_DIR] = tmp
+        spec = {
+            "name": "latency",
+            "objective": {"call": f"{__name__}:latency_objective", "minimize": "loss"},
+            "space": {"x": {"float": [0.0, 1.0]}},
+            "budget": {"trials": trials, "batch": workers, "concurrency": workers},
+            "cluster": {"local": {"workers": workers}},
+            "logbook": str(Path(tmp, "latency.jsonl")),
+            "stopping": {"rule": "halving", "steps": 2000, "min_step": 2, "eta": 2},
+            "seed": 0,
+        }
+        halting.Halting.drain = timed  # type: ignore[method-assign]
+        try:
+            forebear.run(spec)
+        finally:
+            halting.Halting.drain = drain  # type: ignore[method-assign]
+        table = forebear.load(Path(tmp, "latency.jsonl"))
+        gaps, steps_late = [], []
+        for t in table:
+            path = Path(tmp, f"{float(t.config['x'])!r}.json")
+            if t.state != "halted" or t.id not in decided_at or not path.is_file():
+                continue
+            caught = json.loads(path.read_text())
+            gaps.append(caught["caught"] - decided_at[t.id])
+            steps_late.append(caught["step"])
+    gaps.sort()
+    return {
+        "halted": len(gaps),
+        "note_every_s": LATENCY_NOTE_EVERY,
+        "check_every_s": _check_every(),
+        "latency_s_median": round(statistics.median(gaps), 3) if gaps else None,
+        "latency_s_max": round(gaps[-1], 3) if gaps else None,
+        "latency_s_all": [round(g, 3) for g in gaps],
+        "halted_at_step": steps_late,
+    }
+
+
+def _check_every() -> float:
+    from forebear.cluster.steps import CHECK_EVERY
+
+    return CHECK_EVERY
+
+
 if __name__ == "__main__":
     import argparse
 
@@ -323,5 +413,9 @@ if __name__ == "__main__":
     parser.add_argument("--first-run", type=int, default=0, help="the first run (held-out task and stream seed)")
     parser.add_argument("--threshold", type=float, default=0.05)
     parser.add_argument("--out", default=None)
+    parser.add_argument("--latency", action="store_true", help="measure the halt latency on a local cluster instead")
     a = parser.parse_args()
+    if a.latency:
+        print(json.dumps(halt_latency(), indent=2))
+        raise SystemExit(0)
     print(json.dumps(main(a.families, a.runs, threshold=a.threshold, out=a.out, first_run=a.first_run), indent=2))
