@@ -99,7 +99,7 @@ def test_history_rule_vetoes_a_ranking_halt_with_even_odds_and_halts_a_laggard()
     history = [_curves(rng, 40, 27, 0.0), _curves(rng, 40, 27, 3.0)]
     rule, ranking = make_rule(stopping, history), HalvingRule(stopping.rungs(), stopping.eta)
     assert isinstance(rule, HistoryRule)
-    # Before five trials set this search's scale the rule waits (the ranking would halt trial 1 at once).
+    # Before five trials set this search's scale the rule waits at the first rung (the ranking would halt trial 1 at once).
     assert rule.observe(0, 1, 0.1) is None and ranking.observe(0, 1, 0.1) is None
     assert rule.observe(1, 1, 5.0) is None and ranking.observe(1, 1, 5.0) is not None
     for trial, value in ((2, 0.15), (3, 1.7), (4, 2.1)):

@@ -31,10 +31,10 @@ ranking proposes, the model vetoes a halt of a trial that is as likely as not
 to beat the bar. Measured on runs other than the reported ones
 (docs/benchmarks.md), the threshold alone kept too many near-ties running to
 save more worker time than halving, and the ranking alone halted the best
-configuration on ties at the first rung. Before enough trials reached the first rung to set the
-current search's scale it does not halt (the trial is judged at its next
-rung); at a rung without enough history pairs it decides as
-:class:`HalvingRule`.
+configuration on ties at the first rung. Before enough trials reached the
+first rung to set the current search's scale it does not halt at the first
+rung and decides as :class:`HalvingRule` at later ones; so it does at a rung
+without enough history pairs.
 """
 
 from __future__ import annotations
@@ -206,7 +206,9 @@ class HistoryRule(HalvingRule):
         self.latest[trial] = (k, value)
         scale = _scale(list(self.values[0].values())) if len(self.values[0]) >= MIN_SCALE_TRIALS else None
         if scale is None:
-            return None  # no scale for this search yet: the trial is judged at its next rung
+            # No scale for this search yet. At the first rung the ranking has seen only a handful of trials
+            # and halts on ties (measured: it halted the best configuration so); later rungs rank.
+            return None if k == 0 else super().verdict(trial, k)
         loc, spread = scale
         bar = self.bar(trial, loc, spread)
         chance = None if bar is None else self.model.chance_below(k, (value - loc) / spread, bar)
