@@ -117,20 +117,12 @@ def _scale(values: Sequence[float]) -> tuple[float, float] | None:
 
 
 class CurveModel:
-    """Predicts a final scaled score from the scaled scores at each rung's step fraction and at its lag.
+    """Predicts a final scaled score from a scaled score at each of the given step fractions."""
 
-    Per rung ``k`` a least-squares plane ``final = a*x + b*u + c`` through the history pairs, ``x``
-    the scaled score at ``fractions[k]`` of the final step and ``u`` at ``lags[k]`` (the step a
-    factor ``eta`` earlier): the plane sees how fast a curve is still falling, so a slow starter
-    that is catching up is told from one that has levelled off. The predictive distribution is the
-    plane plus the empirical distribution of its residuals.
-    """
-
-    def __init__(self, sets: Sequence[CurveSet], fractions: Sequence[float], lags: Sequence[float] | None = None) -> None:
+    def __init__(self, sets: Sequence[CurveSet], fractions: Sequence[float]) -> None:
         self.fractions = list(fractions)
-        self.lags = list(lags) if lags is not None else list(fractions)
-        self.lines: list[tuple[np.ndarray, np.ndarray] | None] = []
-        rows: list[list[tuple[float, float, float]]] = [[] for _ in self.fractions]
+        self.lines: list[tuple[float, float, np.ndarray] | None] = []
+        pairs: list[list[tuple[float, float]]] = [[] for _ in self.fractions]
         for cs in sets:
             first = [value_at(c, self.fractions[0] * cs.final) for c in cs.curves] if self.fractions else []
             scale = _scale([v for v in first if v is not None])
@@ -141,43 +133,40 @@ class CurveModel:
                 if not complete:
                     continue
                 y = (value_at(curve, cs.final) - loc) / spread  # type: ignore[operator]
-                for k, (f, g) in enumerate(zip(self.fractions, self.lags, strict=True)):
-                    v, u = value_at(curve, f * cs.final), value_at(curve, g * cs.final)
-                    if v is not None and u is not None:
-                        rows[k].append(((v - loc) / spread, (u - loc) / spread, y))
-        for rs in rows:
-            if len(rs) < MIN_PAIRS:
+                for k, f in enumerate(self.fractions):
+                    v = value_at(curve, f * cs.final)
+                    if v is not None:
+                        pairs[k].append(((v - loc) / spread, y))
+        for ps in pairs:
+            if len(ps) < MIN_PAIRS:
                 self.lines.append(None)
                 continue
-            arr = np.asarray(rs)
-            design = np.column_stack([arr[:, 0], arr[:, 1], np.ones(len(arr))])
-            coef, *_ = np.linalg.lstsq(design, arr[:, 2], rcond=None)  # minimum-norm when x and u coincide
-            self.lines.append((coef, np.sort(arr[:, 2] - design @ coef)))
+            x, y = np.asarray(ps).T
+            slope, intercept = np.polyfit(x, y, 1) if np.ptp(x) > 0 else (0.0, float(np.mean(y)))
+            residuals = np.sort(y - (slope * x + intercept))
+            self.lines.append((float(slope), float(intercept), residuals))
 
     @property
     def usable(self) -> bool:
         return any(line is not None for line in self.lines)
 
-    def _line(self, k: int, x: float, u: float | None) -> tuple[float, np.ndarray] | None:
+    def median(self, k: int, x: float) -> float | None:
+        """The median predicted final scaled score for scaled score ``x`` at fraction ``k``; None without a line."""
         line = self.lines[k] if k < len(self.lines) else None
         if line is None:
             return None
-        coef, residuals = line
-        return float(coef[0] * x + coef[1] * (x if u is None else u) + coef[2]), residuals
+        slope, intercept, residuals = line
+        return slope * x + intercept + float(np.median(residuals))
 
-    def median(self, k: int, x: float, u: float | None = None) -> float | None:
-        """The median predicted final for scaled scores ``x`` at rung ``k`` and ``u`` at its lag; None without a fit."""
-        line = self._line(k, x, u)
-        return None if line is None else line[0] + float(np.median(line[1]))
-
-    def chance_below(self, k: int, x: float, target: float, u: float | None = None) -> float | None:
-        """P(final < target) for scaled scores ``x`` at rung ``k`` and ``u`` at its lag (``x`` when None)."""
-        line = self._line(k, x, u)
+    def chance_below(self, k: int, x: float, target: float) -> float | None:
+        """P(final < target) for scaled score ``x`` at fraction ``k``; None without a line there."""
+        line = self.lines[k] if k < len(self.lines) else None
         if line is None:
             return None
-        centre, residuals = line
+        slope, intercept, residuals = line
+        need = target - (slope * x + intercept)
         # Empirical CDF of the residuals, with half a count either side so it is never 0 or 1.
-        below = float(np.searchsorted(residuals, target - centre, side="left"))
+        below = float(np.searchsorted(residuals, need, side="left"))
         return (below + 0.5) / (len(residuals) + 1.0)
 
 
@@ -194,36 +183,27 @@ class HistoryRule(HalvingRule):
         super().__init__(stopping.rungs(), stopping.eta)
         assert stopping.steps is not None
         self.threshold = stopping.threshold
-        self.lag_steps = [max(1, int(round(r / stopping.eta))) for r in self.rungs]  # a factor eta before each rung
-        self.model = CurveModel(sets, [r / stopping.steps for r in self.rungs], [s / stopping.steps for s in self.lag_steps])
-        self.seen: dict[int, list[tuple[int, float]]] = {}  # unfinished trial -> its scores so far
+        self.model = CurveModel(sets, [r / stopping.steps for r in self.rungs])
         self.best: float | None = None  # the best final score of the search
-        self.latest: dict[int, tuple[int, float, float]] = {}  # unfinished trial -> (latest rung, score there, at its lag)
-
-    def observe(self, trial: int, step: int, value: float) -> str | None:
-        self.seen.setdefault(trial, []).append((step, value))
-        return super().observe(trial, step, value)
+        self.latest: dict[int, tuple[int, float]] = {}  # unfinished trial -> (its latest rung, its score there)
 
     def finished(self, trial: int, value: float) -> None:
         self.best = value if self.best is None else min(self.best, value)
         self.latest.pop(trial, None)
-        self.seen.pop(trial, None)
 
     def bar(self, trial: int, loc: float, spread: float) -> float | None:
         """The scaled score ``trial`` must beat: the best final, or a rival's median predicted final if lower."""
         bars = [] if self.best is None else [(self.best - loc) / spread]
-        for t, (k, value, lagged) in self.latest.items():
+        for t, (k, value) in self.latest.items():
             if t != trial:
-                m = self.model.median(k, (value - loc) / spread, (lagged - loc) / spread)
+                m = self.model.median(k, (value - loc) / spread)
                 if m is not None:
                     bars.append(m)
         return min(bars) if bars else None
 
     def verdict(self, trial: int, k: int) -> str | None:
         value = self.values[k][trial]
-        lagged = value_at(self.seen.get(trial, []), self.lag_steps[k])
-        lagged = value if lagged is None else lagged
-        self.latest[trial] = (k, value, lagged)
+        self.latest[trial] = (k, value)
         scale = _scale(list(self.values[0].values())) if len(self.values[0]) >= MIN_SCALE_TRIALS else None
         if scale is None:
             # No scale for this search yet. At the first rung the ranking has seen only a handful of trials
@@ -231,7 +211,7 @@ class HistoryRule(HalvingRule):
             return None if k == 0 else super().verdict(trial, k)
         loc, spread = scale
         bar = self.bar(trial, loc, spread)
-        chance = None if bar is None else self.model.chance_below(k, (value - loc) / spread, bar, (lagged - loc) / spread)
+        chance = None if bar is None else self.model.chance_below(k, (value - loc) / spread, bar)
         if chance is None:
             return super().verdict(trial, k)
         if chance < self.threshold:
