@@ -93,34 +93,6 @@ def test_history_rule_halts_a_hopeless_curve_and_keeps_a_promising_one() -> None
     assert reason is not None and reason.startswith("history:")
 
 
-def test_history_rule_vetoes_a_ranking_halt_with_even_odds_and_halts_a_laggard() -> None:
-    rng = np.random.default_rng(1)
-    stopping = Stopping("history", steps=27, min_step=1, eta=3, threshold=0.05)
-    history = [_curves(rng, 40, 27, 0.0), _curves(rng, 40, 27, 3.0)]
-    rule, ranking = make_rule(stopping, history), HalvingRule(stopping.rungs(), stopping.eta)
-    assert isinstance(rule, HistoryRule)
-    # Before five trials set this search's scale the rule waits at the first rung (the ranking would halt trial 1 at once).
-    assert rule.observe(0, 1, 0.1) is None and ranking.observe(0, 1, 0.1) is None
-    assert rule.observe(1, 1, 5.0) is None and ranking.observe(1, 1, 5.0) is not None
-    for trial, value in ((2, 0.15), (3, 1.7), (4, 2.1)):
-        rule.observe(trial, 1, value)
-        ranking.observe(trial, 1, value)
-    # Trials 0 and 2 led at step 1 but finished badly (1.0 and 1.2); the bar is now the lower of 1.0 and
-    # the other unfinished trials' median predicted finals (those of 1.7, 2.1 and 5.0 at step 1: about 1).
-    rule.finished(0, 1.0)
-    rule.finished(2, 1.2)
-    # 0.3 ranks 3 of 6 at step 1 where the top 2 go on: the ranking halts it. Its median predicted
-    # final is about -0.8, well below the bar: more likely than not to beat it, so it goes on.
-    assert ranking.observe(5, 1, 0.3) is not None
-    assert rule.observe(5, 1, 0.3) is None
-    # 0.5 ranks 4 of 7: the ranking halts it. Trial 5 is now a rival whose median predicted final (-0.94)
-    # is the bar; 0.5 heads for about -0.74 and the model gives it a chance near 0.24 of ending below
-    # the bar: above the threshold, below even odds. Halted; the reason names both.
-    reason = rule.observe(6, 1, 0.5)
-    assert reason is not None and reason.startswith("halving:") and "chance of beating the best" in reason
-    assert rule.observe(7, 1, 0.9).startswith("history:")  # chance about 0.006: below the threshold
-
-
 def test_history_rule_without_curves_is_halving() -> None:
     stopping = Stopping("history", steps=27, min_step=1, eta=3)
     assert type(make_rule(stopping, [])) is HalvingRule

@@ -19,22 +19,11 @@ median and spread of that search's scores at the first rung (every trial
 reaches it). For each rung it keeps the pairs (scaled score at the rung,
 scaled final score) of the history trials that ran to the end, and predicts
 a running trial's final score as a least-squares line through them plus the
-empirical distribution of the line's residuals. The bar a trial must have a
-chance to beat is the best final score the search can already count on: the
-best finished trial's, or the median predicted final of another trial from
-its latest rung, whichever is lower (so the rule can decide before any trial
-has finished, and a trial level with a rival at a rung is not halted on a
-tie). A trial halts when its predicted chance of ending below that bar is
-under ``threshold``, and also when the rung ranking of :class:`HalvingRule`
-would halt it and the model gives it less than even odds (``EVEN_ODDS``): the
-ranking proposes, the model vetoes a halt of a trial that is as likely as not
-to beat the bar. Measured on runs other than the reported ones
-(docs/benchmarks.md), the threshold alone kept too many near-ties running to
-save more worker time than halving, and the ranking alone halted the best
-configuration on ties at the first rung. Before enough trials reached the
-first rung to set the current search's scale it does not halt at the first
-rung and decides as :class:`HalvingRule` at later ones; so it does at a rung
-without enough history pairs.
+empirical distribution of the line's residuals. A trial halts when the
+predicted chance of ending below the current best final score is under
+``threshold``. Without enough history pairs at a rung, before the current
+search has a finished trial, or before enough trials reached its first rung
+to set the scale, it decides as :class:`HalvingRule`.
 """
 
 from __future__ import annotations
@@ -48,7 +37,6 @@ from forebear.records.curves import CurveSet, value_at
 
 MIN_PAIRS = 20  # history pairs per rung below which the line and its residuals are too rough to trust
 MIN_SCALE_TRIALS = 5  # trials at the first rung before the current search's scale is set
-EVEN_ODDS = 0.5  # a trial the rung ranking would halt goes on while the model gives it at least this chance
 SPREAD_FLOOR = 1e-9  # a search whose first-rung scores are all equal has no usable scale
 
 
@@ -150,14 +138,6 @@ class CurveModel:
     def usable(self) -> bool:
         return any(line is not None for line in self.lines)
 
-    def median(self, k: int, x: float) -> float | None:
-        """The median predicted final scaled score for scaled score ``x`` at fraction ``k``; None without a line."""
-        line = self.lines[k] if k < len(self.lines) else None
-        if line is None:
-            return None
-        slope, intercept, residuals = line
-        return slope * x + intercept + float(np.median(residuals))
-
     def chance_below(self, k: int, x: float, target: float) -> float | None:
         """P(final < target) for scaled score ``x`` at fraction ``k``; None without a line there."""
         line = self.lines[k] if k < len(self.lines) else None
@@ -184,43 +164,22 @@ class HistoryRule(HalvingRule):
         assert stopping.steps is not None
         self.threshold = stopping.threshold
         self.model = CurveModel(sets, [r / stopping.steps for r in self.rungs])
-        self.best: float | None = None  # the best final score of the search
-        self.latest: dict[int, tuple[int, float]] = {}  # unfinished trial -> (its latest rung, its score there)
+        self.best: float | None = None
 
     def finished(self, trial: int, value: float) -> None:
         self.best = value if self.best is None else min(self.best, value)
-        self.latest.pop(trial, None)
-
-    def bar(self, trial: int, loc: float, spread: float) -> float | None:
-        """The scaled score ``trial`` must beat: the best final, or a rival's median predicted final if lower."""
-        bars = [] if self.best is None else [(self.best - loc) / spread]
-        for t, (k, value) in self.latest.items():
-            if t != trial:
-                m = self.model.median(k, (value - loc) / spread)
-                if m is not None:
-                    bars.append(m)
-        return min(bars) if bars else None
 
     def verdict(self, trial: int, k: int) -> str | None:
-        value = self.values[k][trial]
-        self.latest[trial] = (k, value)
         scale = _scale(list(self.values[0].values())) if len(self.values[0]) >= MIN_SCALE_TRIALS else None
-        if scale is None:
-            # No scale for this search yet. At the first rung the ranking has seen only a handful of trials
-            # and halts on ties (measured: it halted the best configuration so); later rungs rank.
-            return None if k == 0 else super().verdict(trial, k)
-        loc, spread = scale
-        bar = self.bar(trial, loc, spread)
-        chance = None if bar is None else self.model.chance_below(k, (value - loc) / spread, bar)
+        chance = None
+        if scale is not None and self.best is not None:
+            loc, spread = scale
+            chance = self.model.chance_below(k, (self.values[k][trial] - loc) / spread, (self.best - loc) / spread)
         if chance is None:
             return super().verdict(trial, k)
-        if chance < self.threshold:
-            return f"history: at step {self.rungs[k]} its chance of beating the best ({chance:.3f}) is below {self.threshold:g}"
-        if chance < EVEN_ODDS:
-            ranked = super().verdict(trial, k)
-            if ranked is not None:
-                return f"{ranked}, and its chance of beating the best is {chance:.3f}"
-        return None
+        if chance >= self.threshold:
+            return None
+        return f"history: at step {self.rungs[k]} its chance of beating the best ({chance:.3f}) is below {self.threshold:g}"
 
 
 def make_rule(stopping: Stopping, sets: Sequence[CurveSet] = ()) -> HalvingRule | None:
