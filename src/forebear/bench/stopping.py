@@ -437,17 +437,18 @@ def run_treatments(name: str, runs: int, trials: int, workers: int, stopping: di
 # halt latency on a real local cluster
 
 LATENCY_DIR = "FOREBEAR_LATENCY_DIR"  # where the latency objective writes when it caught forebear.Halted
-LATENCY_NOTE_EVERY = 0.01  # seconds between the latency objective's intermediate scores
+LATENCY_EVERY = "FOREBEAR_LATENCY_NOTE_EVERY"  # seconds between the latency objective's intermediate scores
 
 
 def latency_objective(config: dict[str, Any], note: Any) -> float:
-    """An objective that notes ``x + 1/step`` every ``LATENCY_NOTE_EVERY`` s and records when it is halted."""
+    """An objective that notes ``x + 1/step`` every ``$FOREBEAR_LATENCY_NOTE_EVERY`` s and records when it is halted."""
     import forebear
 
     x = float(config["x"])
+    every = float(os.environ[LATENCY_EVERY])
     try:
-        for step in range(1, 2001):
-            time.sleep(LATENCY_NOTE_EVERY)
+        for step in range(1, int(round(20 / every)) + 1):  # 20 s of training
+            time.sleep(every)
             note(step, x + 1.0 / step)
     except forebear.Halted as halted:
         caught = time.time()
@@ -456,7 +457,7 @@ def latency_objective(config: dict[str, Any], note: Any) -> float:
     return x
 
 
-def halt_latency(trials: int = 12, workers: int = 4) -> dict[str, Any]:
+def halt_latency(trials: int = 12, workers: int = 4, note_every: float = 0.1) -> dict[str, Any]:
     """Seconds from the controller setting an attempt's halt event to its objective catching forebear.Halted.
 
     A halving search (rungs at steps 2, 4, ...) of :func:`latency_objective` on a local cluster of
@@ -480,14 +481,15 @@ def halt_latency(trials: int = 12, workers: int = 4) -> dict[str, Any]:
 
     with tempfile.TemporaryDirectory() as tmp:
         os.environ[LATENCY_DIR] = tmp
+        os.environ[LATENCY_EVERY] = str(note_every)
         spec = {
             "name": "latency",
-            "objective": {"call": f"{__name__}:latency_objective", "minimize": "loss"},
+            "objective": {"call": "forebear.bench.stopping:latency_objective", "minimize": "loss"},
             "space": {"x": {"float": [0.0, 1.0]}},
             "budget": {"trials": trials, "batch": workers, "concurrency": workers},
             "cluster": {"local": {"workers": workers}},
             "logbook": str(Path(tmp, "latency.jsonl")),
-            "stopping": {"rule": "halving", "steps": 2000, "min_step": 2, "eta": 2},
+            "stopping": {"rule": "halving", "steps": int(round(20 / note_every)), "min_step": 2, "eta": 2},
             "seed": 0,
         }
         halting.Halting.drain = timed  # type: ignore[method-assign]
@@ -499,15 +501,15 @@ def halt_latency(trials: int = 12, workers: int = 4) -> dict[str, Any]:
         gaps, steps_late = [], []
         for t in table:
             path = Path(tmp, f"{float(t.config['x'])!r}.json")
-            if t.state != "halted" or t.id not in decided_at or not path.is_file():
+            if t.state != "halted" or t.trial not in decided_at or not path.is_file():
                 continue
             caught = json.loads(path.read_text())
-            gaps.append(caught["caught"] - decided_at[t.id])
+            gaps.append(caught["caught"] - decided_at[t.trial])
             steps_late.append(caught["step"])
     gaps.sort()
     return {
         "halted": len(gaps),
-        "note_every_s": LATENCY_NOTE_EVERY,
+        "note_every_s": note_every,
         "check_every_s": _check_every(),
         "latency_s_median": round(statistics.median(gaps), 3) if gaps else None,
         "latency_s_max": round(gaps[-1], 3) if gaps else None,
@@ -532,9 +534,10 @@ if __name__ == "__main__":
     parser.add_argument("--threshold", type=float, default=0.05)
     parser.add_argument("--out", default=None)
     parser.add_argument("--treatments", action="store_true", help="also: halted trials left out of / shown to the proposer")
+    parser.add_argument("--note-every", type=float, default=0.1, help="with --latency: seconds between intermediate scores")
     parser.add_argument("--latency", action="store_true", help="measure the halt latency on a local cluster instead")
     a = parser.parse_args()
     if a.latency:
-        print(json.dumps(halt_latency(), indent=2))
+        print(json.dumps(halt_latency(note_every=a.note_every), indent=2))
         raise SystemExit(0)
     print(json.dumps(main(a.families, a.runs, threshold=a.threshold, out=a.out, first_run=a.first_run, treatments=a.treatments), indent=2))
