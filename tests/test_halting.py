@@ -174,3 +174,26 @@ def test_fold_keeps_curves_and_the_halted_state() -> None:
 def test_counts_of_a_search_without_stopping_are_as_before() -> None:
     recs = [record("search", spec_hash="h", objective={"call": "m:f", "minimize": "loss"})]
     assert fold(recs).counts() == {"queued": 0, "running": 0, "scored": 0, "failed": 0}
+
+
+# --------------------------------------------------------------------------
+# the benchmark's proposed search (bench/stopping.py)
+
+
+def test_proposed_search_halts_and_counts_worker_steps() -> None:
+    from forebear.bench.stopping import SPACES, TREATMENTS, _pow3_family, simulate_proposed
+    from forebear.core.space import Space
+
+    family = _pow3_family(steps=9)
+    space = Space.from_dict(SPACES["pow3"])
+
+    def curve(config: dict) -> list[float]:
+        return list(family.curve(1000, config))
+
+    reference, _, _ = simulate_proposed(curve, space, 8, 2, None, None, "left-out", 0)
+    assert reference.reached and reference.halted == 0 and reference.time == 8 * 9  # every trial to its end
+    for treatment in TREATMENTS:
+        out, _, in_budget = simulate_proposed(curve, space, 8, 2, HalvingRule([1, 3], 3.0), None, treatment, 0, reference.time)
+        # The rung rule halts some of the 8 trials; the steps they did not run are saved.
+        assert 0 < out.halted < 8 and out.time < reference.time
+        assert np.isfinite(in_budget)  # a trial finished within the reference's worker time

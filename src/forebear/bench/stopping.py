@@ -30,6 +30,7 @@ full runs of 30 random configurations on each of 4 other tasks.
 from __future__ import annotations
 
 import json
+import os
 import statistics
 import time
 import warnings
@@ -236,7 +237,7 @@ def _history(family: Family, cache: dict[tuple[int, int], Sequence[float]]) -> l
     return sets
 
 
-def run_family(name: str, runs: int, trials: int, workers: int, stopping: dict[str, Any]) -> dict[str, Any]:
+def run_family(name: str, runs: int, trials: int, workers: int, stopping: dict[str, Any], first_run: int = 0) -> dict[str, Any]:
     """The protocol of the module docstring on one family; figures per rule."""
     if name not in _MADE:
         _MADE[name] = (FAMILIES[name](), {})
@@ -246,7 +247,7 @@ def run_family(name: str, runs: int, trials: int, workers: int, stopping: dict[s
     rules = {r: Stopping(r, steps=family.steps, **stopping) for r in ("halving", "history")}
     per_rule: dict[str, list[Outcome]] = {r: [] for r in rules}
     stream = 3 * trials
-    for run in range(runs):
+    for run in range(first_run, first_run + runs):
         task = EVAL_TASK_BASE + run
         rng = np.random.default_rng(run)
         configs = [family.sample(rng) for _ in range(stream)]
@@ -264,7 +265,7 @@ def run_family(name: str, runs: int, trials: int, workers: int, stopping: dict[s
             outcome, _ = simulate(curves, stream, workers, make_rule(st, sets), target, best_index)
             outcome.time = outcome.time / reference.time if outcome.reached else max(1.0, outcome.time / reference.time)
             per_rule[r].append(outcome)
-    out: dict[str, Any] = {"family": name, "runs": runs, "trials": trials, "workers": workers, "steps": family.steps}
+    out: dict[str, Any] = {"family": name, "runs": runs, "first_run": first_run, "trials": trials, "workers": workers, "steps": family.steps}
     for r, outs in per_rule.items():
         out[r] = {
             "time_ratio_mean": round(statistics.fmean(o.time for o in outs), 3),
@@ -287,8 +288,15 @@ def main(
     eta: float = 3.0,
     threshold: float = 0.05,
     out: str | None = None,
+    first_run: int = 0,
+    treatments: bool = False,
 ) -> dict[str, Any]:
-    """Figures for docs/benchmarks.md; with ``out``, also written there as JSON."""
+    """Figures for docs/benchmarks.md; with ``out``, also written there as JSON.
+
+    Run ``r`` (from ``first_run``) is held-out task ``EVAL_TASK_BASE + r`` with configuration stream
+    seed ``r``. Runs 0-9 are the default; docs/benchmarks.md reports runs 100-419 too (rule changes
+    were tried on 100-109 and 200-209 and checked on the others).
+    """
     if isinstance(families, str):
         families = [f.strip() for f in families.split(",") if f.strip()]
     unknown = [f for f in families if f not in FAMILIES]
@@ -303,11 +311,234 @@ def main(
     with threadpool_limits(limits=1), warnings.catch_warnings():
         warnings.simplefilter("ignore", category=UserWarning)  # scikit-learn's notes on tiny minibatch fits
         for name in families:
-            result[name] = run_family(name, runs, trials, workers, stopping)
+            result[name] = run_family(name, runs, trials, workers, stopping, first_run)
+            if treatments:
+                result[f"{name}-proposed"] = run_treatments(name, runs, trials, workers, stopping, first_run)
     if out:
         Path(out).write_text(json.dumps(result, indent=2) + "\n")
     return result
 
 
+# --------------------------------------------------------------------------
+# what the surrogate makes of a halted trial's partial score
+
+TREATMENTS = ("left-out", "as-final")  # a halted trial is not shown to the proposer / shown with its partial score
+SPACES: dict[str, dict[str, dict[str, Any]]] = {
+    "mlp": {
+        "learning_rate_init": {"float": [1e-4, 1e-1], "log": True},
+        "alpha": {"float": [1e-5, 1.0], "log": True},
+        "hidden": {"int": [8, 64], "log": True},
+    },
+    "pow3": {f"x{i}": {"float": [0.0, 1.0]} for i in range(3)},
+}
+
+
+def simulate_proposed(
+    curve: Callable[[dict[str, Any]], Sequence[float]], space: Any, n_stream: int, workers: int, rule: HalvingRule | None,
+    target: float | None, treatment: str, seed: int, budget: float = float("inf"),
+) -> tuple[Outcome, float, float]:
+    """:func:`simulate` with configurations from forebear's proposer (plain GP) instead of a random stream.
+
+    A worker that comes free gets the proposer's next configuration, the running ones passed as
+    pending; a finished trial is an observation with its final score, a halted one as ``treatment``.
+    Returns the outcome, the best final score and the best final score within ``budget`` steps.
+    """
+    from forebear.engine.proposer import Observation, Proposer
+
+    proposer = Proposer(space, None, seed=seed, model="gp", cache_dir=False, n_candidates=512)
+    observed: list[Any] = []
+    configs: list[dict[str, Any]] = []
+    running: list[tuple[int, int] | None] = [None] * workers
+    used, halted, best = 0, 0, float("inf")
+    in_budget = float("inf")
+    while True:
+        free = [w for w in range(workers) if running[w] is None]
+        n = min(len(free), n_stream - len(configs))
+        if n > 0:
+            pending = [configs[r[0]] for r in running if r is not None]
+            for w, prop in zip(free, proposer.propose(n, observed, pending=pending), strict=False):
+                configs.append(dict(prop.config))
+                running[w] = (len(configs) - 1, 0)
+        if all(r is None for r in running):
+            break
+        for w in range(workers):
+            slot = running[w]
+            if slot is None:
+                continue
+            i, done = slot
+            values = curve(configs[i])
+            done += 1
+            used += 1
+            value = values[done - 1]
+            if done == len(values):
+                running[w] = None
+                best = min(best, value)
+                in_budget = best if used <= budget else in_budget
+                observed.append(Observation(configs[i], float(value)))
+                if rule is not None:
+                    rule.finished(i, value)
+                if target is not None and value <= target:
+                    return Outcome(used, True, False, halted), best, in_budget
+                continue
+            if rule is not None and rule.observe(i, done, value) is not None:
+                running[w] = None
+                halted += 1
+                if treatment == "as-final":
+                    observed.append(Observation(configs[i], float(value)))
+                continue
+            running[w] = (i, done)
+    return Outcome(used, target is None, False, halted), best, in_budget
+
+
+def run_treatments(name: str, runs: int, trials: int, workers: int, stopping: dict[str, Any], first_run: int = 0, rule: str = "history") -> dict[str, Any]:
+    """Worker time to the no-stopping proposed search's best, per treatment of halted trials."""
+    from forebear.core.space import Space
+
+    if name not in _MADE:
+        _MADE[name] = (FAMILIES[name](), {})
+    family, cache = _MADE[name]
+    t0 = time.perf_counter()
+    sets = _history(family, cache)
+    space = Space.from_dict(SPACES[name])
+    st = Stopping(rule, steps=family.steps, **stopping)
+    per: dict[str, list[Outcome]] = {t: [] for t in TREATMENTS}
+    gaps: dict[str, list[float]] = {t: [] for t in TREATMENTS}  # best final within the reference's worker time minus its best
+    for run in range(first_run, first_run + runs):
+        task = EVAL_TASK_BASE + run
+        store: dict[str, Sequence[float]] = {}
+
+        def curve(config: dict[str, Any], task: int = task, store: dict[str, Sequence[float]] = store) -> Sequence[float]:
+            key = json.dumps(config, sort_keys=True)
+            if key not in store:
+                store[key] = family.curve(task, config)
+            return store[key]
+
+        reference, target, _ = simulate_proposed(curve, space, trials, workers, None, None, "left-out", run)
+        for t in TREATMENTS:
+            outcome, _, in_budget = simulate_proposed(curve, space, 3 * trials, workers, make_rule(st, sets), target, t, run, reference.time)
+            gaps[t].append(in_budget - target)
+            outcome.time = outcome.time / reference.time if outcome.reached else max(1.0, outcome.time / reference.time)
+            per[t].append(outcome)
+    out: dict[str, Any] = {"family": name, "rule": rule, "runs": runs, "first_run": first_run, "trials": trials, "workers": workers}
+    for t, outs in per.items():
+        out[t] = {
+            "time_ratio_mean": round(statistics.fmean(o.time for o in outs), 3),
+            "time_ratio_max": round(max(o.time for o in outs), 3),
+            "reached": sum(o.reached for o in outs),
+            "halted_mean": round(statistics.fmean(o.halted for o in outs), 1),
+            "time_ratios": [round(o.time, 3) for o in outs],
+            "gap_at_reference_time_mean": round(statistics.fmean(gaps[t]), 4),
+            "at_or_below_reference_at_its_time": sum(g <= 0 for g in gaps[t]),
+        }
+    out["seconds"] = round(time.perf_counter() - t0, 1)
+    return out
+
+
+# --------------------------------------------------------------------------
+# halt latency on a real local cluster
+
+LATENCY_DIR = "FOREBEAR_LATENCY_DIR"  # where the latency objective writes when it caught forebear.Halted
+LATENCY_EVERY = "FOREBEAR_LATENCY_NOTE_EVERY"  # seconds between the latency objective's intermediate scores
+
+
+def latency_objective(config: dict[str, Any], note: Any) -> float:
+    """An objective that notes ``x + 1/step`` every ``$FOREBEAR_LATENCY_NOTE_EVERY`` s and records when it is halted."""
+    import forebear
+
+    x = float(config["x"])
+    every = float(os.environ[LATENCY_EVERY])
+    try:
+        for step in range(1, int(round(20 / every)) + 1):  # 20 s of training
+            time.sleep(every)
+            note(step, x + 1.0 / step)
+    except forebear.Halted as halted:
+        caught = time.time()
+        Path(os.environ[LATENCY_DIR], f"{x!r}.json").write_text(json.dumps({"caught": caught, "step": halted.step}))
+        raise
+    return x
+
+
+def halt_latency(trials: int = 12, workers: int = 4, note_every: float = 0.1) -> dict[str, Any]:
+    """Seconds from the controller setting an attempt's halt event to its objective catching forebear.Halted.
+
+    A halving search (rungs at steps 2, 4, ...) of :func:`latency_objective` on a local cluster of
+    ``workers``; the controller's side is timed by wrapping :meth:`forebear.loop.halting.Halting.drain`,
+    which sets the event of each trial it decides to halt just before it returns.
+    """
+    import tempfile
+
+    import forebear
+    from forebear.loop import halting
+
+    decided_at: dict[int, float] = {}
+    drain = halting.Halting.drain
+
+    def timed(self: Any, running: Any) -> list[str]:
+        lines = drain(self, running)
+        now = time.time()
+        for tid in self.decided:
+            decided_at.setdefault(tid, now)
+        return lines
+
+    with tempfile.TemporaryDirectory() as tmp:
+        os.environ[LATENCY_DIR] = tmp
+        os.environ[LATENCY_EVERY] = str(note_every)
+        spec = {
+            "name": "latency",
+            "objective": {"call": "forebear.bench.stopping:latency_objective", "minimize": "loss"},
+            "space": {"x": {"float": [0.0, 1.0]}},
+            "budget": {"trials": trials, "batch": workers, "concurrency": workers},
+            "cluster": {"local": {"workers": workers}},
+            "logbook": str(Path(tmp, "latency.jsonl")),
+            "stopping": {"rule": "halving", "steps": int(round(20 / note_every)), "min_step": 2, "eta": 2},
+            "seed": 0,
+        }
+        halting.Halting.drain = timed  # type: ignore[method-assign]
+        try:
+            forebear.run(spec)
+        finally:
+            halting.Halting.drain = drain  # type: ignore[method-assign]
+        table = forebear.load(Path(tmp, "latency.jsonl"))
+        gaps, steps_late = [], []
+        for t in table:
+            path = Path(tmp, f"{float(t.config['x'])!r}.json")
+            if t.state != "halted" or t.trial not in decided_at or not path.is_file():
+                continue
+            caught = json.loads(path.read_text())
+            gaps.append(caught["caught"] - decided_at[t.trial])
+            steps_late.append(caught["step"])
+    gaps.sort()
+    return {
+        "halted": len(gaps),
+        "note_every_s": note_every,
+        "check_every_s": _check_every(),
+        "latency_s_median": round(statistics.median(gaps), 3) if gaps else None,
+        "latency_s_max": round(gaps[-1], 3) if gaps else None,
+        "latency_s_all": [round(g, 3) for g in gaps],
+        "halted_at_step": steps_late,
+    }
+
+
+def _check_every() -> float:
+    from forebear.cluster.steps import CHECK_EVERY
+
+    return CHECK_EVERY
+
+
 if __name__ == "__main__":
-    print(json.dumps(main(), indent=2))
+    import argparse
+
+    parser = argparse.ArgumentParser(description="forebear bench stopping, with the options the command does not show.")
+    parser.add_argument("--families", default="mlp,pow3")
+    parser.add_argument("--runs", type=int, default=10)
+    parser.add_argument("--first-run", type=int, default=0, help="the first run (held-out task and stream seed)")
+    parser.add_argument("--threshold", type=float, default=0.05)
+    parser.add_argument("--out", default=None)
+    parser.add_argument("--treatments", action="store_true", help="also: halted trials left out of / shown to the proposer")
+    parser.add_argument("--note-every", type=float, default=0.1, help="with --latency: seconds between intermediate scores")
+    parser.add_argument("--latency", action="store_true", help="measure the halt latency on a local cluster instead")
+    a = parser.parse_args()
+    if a.latency:
+        print(json.dumps(halt_latency(note_every=a.note_every), indent=2))
+        raise SystemExit(0)
+    print(json.dumps(main(a.families, a.runs, threshold=a.threshold, out=a.out, first_run=a.first_run, treatments=a.treatments), indent=2))
