@@ -12,6 +12,7 @@ import pytest
 
 import forebear
 from forebear.core.spec import load
+from forebear.loop.book import Book
 from forebear.loop.controller import Controller
 from forebear.records.logbook import Logbook
 
@@ -57,6 +58,11 @@ def check_halted(logbook: Path) -> None:
         recorded = steps_of(logbook, t)
         assert recorded[:2] == [1, 2] and len(recorded) < 8, recorded
         assert trial.step == recorded[-1] and trial.score == pytest.approx(1.0 + t + 1.0 / trial.step)
+    # A resumed loop hands the halted trials to the proposer with their last intermediate score,
+    # as if final (measured better than leaving them out; docs/engine.md).
+    book = Book.from_table(table)
+    assert book.partial == {t: pytest.approx(table.trials[t].score) for t in (1, 2)}
+    assert set(book.scores) == {0}
 
 
 def test_a_callable_is_halted_and_cleans_up(tmp_path: Path, shared_loopback: LoopbackCluster) -> None:

@@ -155,6 +155,7 @@ class Attempts:
         if res.outcome == "halted":
             final = res.records[-1]
             self.book.state[tid] = "halted"
+            self.book.partial[tid] = float(final["score"])
             return f"trial {tid} halted at step {final.get('step')} with {float(final['score']):.6g}"
         if res.outcome == "failed":
             final = res.records[-1] if res.records else {}
@@ -187,6 +188,7 @@ class Attempts:
         final = next((r for r in mine if r.get("kind") in ("scored", "failed", "halted")), None)
         if final is not None and final["kind"] == "halted":
             self.book.state[tid] = "halted"
+            self.book.partial[tid] = float(final["score"])
             return f"trial {tid} halted at step {final.get('step')} (its worker died after recording it)"
         if final is not None and final["kind"] == "scored":
             self.book.state[tid] = "scored"

@@ -59,6 +59,9 @@ class Book:
     configs: dict[int, dict[str, Any]] = field(default_factory=dict)
     state: dict[int, str] = field(default_factory=dict)
     scores: dict[int, float] = field(default_factory=dict)
+    # Halted trials' last intermediate scores: the proposer sees them as if final, which measured
+    # better than leaving them out (docs/engine.md, "Halted trials and the surrogate").
+    partial: dict[int, float] = field(default_factory=dict)
     attempts: dict[int, int] = field(default_factory=dict)
     charged: dict[int, int] = field(default_factory=dict)
     errors: dict[int, str] = field(default_factory=dict)
@@ -72,6 +75,8 @@ class Book:
             book.state[t.trial] = t.state
             if t.state == "scored" and t.score is not None:
                 book.scores[t.trial] = float(t.score)
+            elif t.state == "halted" and t.score is not None:
+                book.partial[t.trial] = float(t.score)
             book.attempts[t.trial] = max((a.attempt for a in t.attempts), default=0)
             # An attempt lost before it started (no started record) used up no retry.
             charged = sum(1 for a in t.attempts if a.outcome == "lost" and a.detail in RETRY_REASONS and a.started_at is not None)

@@ -177,6 +177,7 @@ class Rounds:
             return
         sign = self.spec.objective.sign
         observed = [Observation(self.book.configs[t], sign * s) for t, s in self.book.scores.items()]
+        observed += [Observation(self.book.configs[t], sign * s) for t, s in self.book.partial.items()]
         failed = [self.book.configs[t] for t, s in self.book.state.items() if s == "failed"]
         pending = [self.book.configs[t] for t, s in self.book.state.items() if s in ("queued", "running")]
         self._job_started = time.monotonic()
