@@ -282,6 +282,10 @@ _bench_command("stopping", "Worker time the stopping rules save on learning-curv
     click.option("--families", default="mlp,pow3", show_default=True, help="Comma-separated: mlp (real training), pow3 (analytic)."),
     click.option("--runs", default=10, show_default=True, type=click.IntRange(1, 1000), help="Held-out tasks (runs) per family."),
     click.option("--trials", default=32, show_default=True, type=click.IntRange(2, 10000), help="Trials of the no-stopping search."),
+    click.option("--first-run", default=0, show_default=True, type=click.IntRange(0, 10**6), help="First run (held-out task and stream seed)."),
+    click.option("--threshold", default=0.05, show_default=True, type=click.FloatRange(0.0, 1.0, min_open=True, max_open=True),
+                 help="The history rule's halting probability."),
+    click.option("--treatments", is_flag=True, help="Also: halted trials left out of, or shown as final to, the proposer."),
     click.option("--out", default=None, type=click.Path(dir_okay=False), help="Also write the figures to this JSON file."),
 ])
 _bench_command("faults", "Fault-injection campaign against a loopback cluster.", [
