@@ -54,6 +54,7 @@ MODELS = ("auto", "gp", "deep-kernel")
 FAILED = ("impute", "classifier")
 HISTORY_SHARE = 1.0  # of the initial design from history; 0.5 measured worse (docs/engine.md)
 GUARD_FROM = 3  # observations before the guard fits the plain GP next to the deep kernel
+FEW = 40  # observations up to which every plain-GP refit also tries the default start
 DEFAULT_FAILED = "impute"  # chosen by `python -m forebear.bench.proposal failures` (docs/engine.md)
 
 
@@ -415,13 +416,15 @@ class Proposer:
         return choice
 
     def _fit_gp(self, X: np.ndarray, y: np.ndarray) -> Posterior:
-        # Warm-started from the previous round's hyperparameters; every fourth refit (and the
-        # first) also tries gpytorch's default start, so a poor local optimum is not kept forever.
+        # Warm-started from the previous round's hyperparameters. The default start is also tried
+        # at every refit on few points (a fit there costs milliseconds, and the optimum moves as
+        # points arrive: a warm start from 3 points kept a lengthscale of 0.1 on the bowl where a
+        # fresh fit on 5 found 0.55), and at every fourth refit past that.
         self._gp_fits += 1
         if self._gp_state is None:
             restarts = 3 if len(y) <= 100 else 1  # a cold fit on many points is slow; one start
         else:
-            restarts = 2 if self._gp_fits % 4 == 0 else 1
+            restarts = 2 if len(y) <= FEW or self._gp_fits % 4 == 0 else 1
         fit = fit_gp(X, y, restarts=restarts, init=self._gp_state, seed=self.seed, device=self.device)
         self._gp_state = fit.state
         return fit.posterior

@@ -1,8 +1,17 @@
 """The plain GP: constant mean, ScaleKernel(Matérn 5/2, ARD), Gaussian noise with a floor.
 
 Hyperparameters come from maximising the exact marginal likelihood
-(gpytorch's ``ExactMarginalLogLikelihood``) with L-BFGS from a few starting
-points, in float64 on standardised targets. Prediction and conditioning on
+(gpytorch's ``ExactMarginalLogLikelihood``) plus a log-normal prior on each
+lengthscale, with L-BFGS from a few starting points, in float64 on
+standardised targets. The prior is the dimension-scaled one of "Vanilla
+Bayesian Optimization Performs Great in High Dimensions" (ICML 2024):
+``log l ~ N(sqrt(2) + log(d) / 2, 3)`` on the unit cube, with the noise
+variance's ``log s2 ~ N(-4, 1)`` that goes with it there (both as we recall
+the paper; without the noise term the longer lengthscales let the fit call
+every score noise). Without the lengthscale prior, a fit on
+three to eight points often ends at a bound (lengthscales of 0.006 and 20 on
+the 2-D bowl of tests/test_async_bowl.py), and EI then only looks beside the
+observed points (docs/engine.md). Prediction and conditioning on
 extra points (constant-liar lies, pending trials) go through
 :class:`Posterior`, which holds the hyperparameters fixed and works from one
 Cholesky factor; the deep kernel uses the same class with its feature map.
@@ -26,6 +35,13 @@ DTYPE = torch.float64
 NOISE_FLOOR = 1e-6  # on standardised targets; keeps the kernel matrix well conditioned
 MAX_EXACT = 500  # past this many observations the posterior uses a subset of data (docs/engine.md)
 _LOG_2PI = math.log(2 * math.pi)
+LENGTHSCALE_SIGMA2 = 3.0  # variance of log l in the prior above
+NOISE_MU, NOISE_SIGMA2 = -4.0, 1.0  # mean and variance of log noise (standardised units)
+
+
+def lengthscale_mu(dim: int) -> float:
+    """Mean of log l in the lengthscale prior for ``dim`` inputs (ICML 2024, see above)."""
+    return math.sqrt(2.0) + 0.5 * math.log(max(1, dim))
 
 
 def as_tensor(x: Any, device: torch.device | str = "cpu") -> torch.Tensor:
@@ -320,20 +336,30 @@ def exact_mll(model: _ExactGP, X: torch.Tensor, y: torch.Tensor) -> torch.Tensor
     return -(0.5 * (r * a).sum() + torch.log(torch.diagonal(L)).sum() + 0.5 * n * _LOG_2PI) / n
 
 
+def log_posterior(model: _ExactGP, X: torch.Tensor, y: torch.Tensor) -> torch.Tensor:
+    """:func:`exact_mll` plus the log density of the lengthscale and noise priors (up to a
+    constant), per point."""
+    ls = model.covar_module.base_kernel.lengthscale.reshape(-1)
+    z = torch.log(ls) - lengthscale_mu(X.shape[-1])
+    zn = torch.log(model.likelihood.noise.reshape(-1)) - NOISE_MU
+    prior = 0.5 * (z * z).sum() / LENGTHSCALE_SIGMA2 + 0.5 * (zn * zn).sum() / NOISE_SIGMA2
+    return exact_mll(model, X, y) - prior / len(X)
+
+
 def _optimise(model: _ExactGP, mll: Any, X: torch.Tensor, y: torch.Tensor, max_iter: int) -> float:
     model.train()
     opt = torch.optim.LBFGS(model.parameters(), lr=1.0, max_iter=max_iter, line_search_fn="strong_wolfe")
 
     def closure() -> torch.Tensor:
         opt.zero_grad()
-        loss = -exact_mll(model, X, y)
+        loss = -log_posterior(model, X, y)
         loss.backward()
         return loss
 
     try:
         opt.step(closure)
         with torch.no_grad():
-            value = float(exact_mll(model, X, y))
+            value = float(log_posterior(model, X, y))
     except (NotPSDError, RuntimeError, ValueError):
         return -math.inf
     model.eval()
