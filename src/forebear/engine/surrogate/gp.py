@@ -281,6 +281,9 @@ def fit_gp(
         Hyperparameters of an earlier fit (``GPFit.state``) to start from.
     max_exact
         Past this many points, hyperparameters and posterior use a subset of data.
+    max_iter
+        L-BFGS iterations per start; 0 keeps ``init`` as it is (one start) and only
+        builds the posterior on ``(X, y)``.
     """
     y = np.asarray(y, dtype=float)
     rng = np.random.default_rng(seed)
@@ -293,6 +296,8 @@ def fit_gp(
     model = _ExactGP(Xt, yt, likelihood).to(device=device, dtype=DTYPE)
     mll = gpytorch.mlls.ExactMarginalLogLikelihood(likelihood, model)
     starts: list[dict[str, torch.Tensor] | None] = [init] if init is not None else []
+    if max_iter <= 0 and init is not None:
+        restarts = 1
     starts.append(None)
     gen = torch.Generator().manual_seed(seed)
     best_state, best_val = None, -math.inf
@@ -347,6 +352,14 @@ def log_posterior(model: _ExactGP, X: torch.Tensor, y: torch.Tensor) -> torch.Te
 
 
 def _optimise(model: _ExactGP, mll: Any, X: torch.Tensor, y: torch.Tensor, max_iter: int) -> float:
+    if max_iter <= 0:  # hyperparameters as given: only their value
+        try:
+            with torch.no_grad():
+                value = float(log_posterior(model, X, y))
+        except (NotPSDError, RuntimeError, ValueError):
+            return -math.inf
+        model.eval()
+        return value if math.isfinite(value) else -math.inf
     model.train()
     opt = torch.optim.LBFGS(model.parameters(), lr=1.0, max_iter=max_iter, line_search_fn="strong_wolfe")
 
