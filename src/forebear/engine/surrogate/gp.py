@@ -377,3 +377,11 @@ def _optimise(model: _ExactGP, mll: Any, X: torch.Tensor, y: torch.Tensor, max_i
         return -math.inf
     model.eval()
     return value if math.isfinite(value) else -math.inf
+
+
+def feasibility(X_ok: np.ndarray, X_bad: np.ndarray, *, seed: int = 0, device: torch.device | str = "cpu") -> Posterior:
+    """GP regression on +1 (scored) / -1 (failed) labels (least-squares classification,
+    Rasmussen & Williams 2006, sec. 6.5); its probit gives a probability of feasibility."""
+    Xl = np.vstack([X_ok, X_bad])
+    labels = np.concatenate([np.ones(len(X_ok)), -np.ones(len(X_bad))])
+    return fit_gp(Xl, labels, restarts=1, seed=seed, device=device).posterior
