@@ -15,10 +15,10 @@ from forebear.engine.surrogate.deep_kernel import (
     MetaModel,
     MetaPosterior,
     Settings,
-    _augment,
     cache_key,
 )
 from forebear.engine.surrogate.gp import fit_gp
+from forebear.engine.surrogate.meta_train import _augment
 
 FAST = Settings(max_steps=300, eval_every=50, patience=3, tasks_per_step=4, seed=0)
 

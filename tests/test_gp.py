@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import math
+
 import gpytorch
 import numpy as np
 import pytest
@@ -10,6 +12,7 @@ from sklearn.gaussian_process import GaussianProcessRegressor
 from sklearn.gaussian_process.kernels import RBF, ConstantKernel, Matern
 
 from forebear.bench.functions import branin
+from forebear.engine.surrogate import gp
 from forebear.engine.surrogate.gp import (
     NOISE_FLOOR,
     Posterior,
@@ -139,3 +142,37 @@ def test_subset_of_data_is_close_to_the_exact_gp() -> None:
     # tiny next to Branin's spread (std about 50).
     assert rmse_sub < 0.002 * np.std(ys)
     assert rmse_exact < rmse_sub
+
+
+def bowl_points() -> tuple[np.ndarray, np.ndarray]:
+    """Five design points of the 2-D bowl of tests/test_async_bowl.py (seed 5's first scores),
+    encoded to the unit square, and their scores."""
+    raw = np.array([(-0.704, -0.023), (0.097, -0.904), (0.742, 0.357), (-0.881, -0.981), (-0.027, 0.808)])
+    y = (raw[:, 0] - 0.3) ** 2 + (raw[:, 1] + 0.2) ** 2
+    return (raw + 1.0) / 2.0, y
+
+
+@pytest.mark.parametrize("n", [3, 4, 5])
+def test_a_fit_on_a_few_points_of_a_smooth_function_stays_off_the_bounds(n: int) -> None:
+    # Without the lengthscale prior the fit on these points ended at a bound (0.006 and 20 for
+    # the two lengthscales), and with a prior on the lengthscales alone the noise took every score.
+    X, y = bowl_points()
+    for init in (None, fit_gp(X[:3], y[:3], restarts=1, seed=0).state):
+        fit = fit_gp(X[:n], y[:n], restarts=2, init=init, seed=0)
+        ls = fit.posterior.kernel.base_kernel.lengthscale.detach().numpy().ravel()
+        assert np.all((ls > 0.1) & (ls < 10.0)), ls
+        assert fit.posterior.noise < 0.1  # standardised units: the scores are signal, not noise
+
+
+def test_log_posterior_is_the_mll_plus_the_priors() -> None:
+    X, y = bowl_points()
+    Xt, yt = as_tensor(X), as_tensor((y - y.mean()) / y.std())
+    lik = gpytorch.likelihoods.GaussianLikelihood().double()
+    model = _ExactGP(Xt, yt, lik).double()
+    model.covar_module.base_kernel.lengthscale = torch.tensor([0.2, 0.7], dtype=torch.float64)
+    lik.noise = 0.01
+    mu = gp.lengthscale_mu(2)
+    prior = sum((math.log(v) - mu) ** 2 for v in (0.2, 0.7)) / (2 * gp.LENGTHSCALE_SIGMA2)
+    prior += (math.log(0.01) - gp.NOISE_MU) ** 2 / (2 * gp.NOISE_SIGMA2)
+    got = float(gp.log_posterior(model, Xt, yt).detach())
+    assert got == pytest.approx(float(exact_mll(model, Xt, yt).detach()) - prior / len(X), rel=1e-6)

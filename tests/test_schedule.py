@@ -68,3 +68,27 @@ def test_timing_keeps_a_window_and_takes_medians() -> None:
     for s in range(20):
         t.refit(float(s))
     assert len(t.refits) == WINDOW and t.refit_seconds == pytest.approx(sum(range(20 - WINDOW, 20)) / WINDOW)
+
+
+def test_start_up_times_do_not_set_the_lead() -> None:
+    # The bowl of tests/test_async_bowl.py at 4 workers, as its logbook timed it: the first trial
+    # on each worker took 0.3-0.5 s (imports), later ones 0.02 s; the first model round 1.4 s,
+    # the next 0.1 s. Counted in, those start-up times made the loop propose 4 ahead.
+    t = Timing()
+    for s in (0.3, 0.48, 0.49, 0.5, 0.05, 0.022, 0.017):
+        t.trial(s)
+    for s in (1.44, 0.117):
+        t.refit(s)
+    assert ahead(4, t.trial_seconds, t.refit_seconds) == 4  # what the raw medians ask for
+    assert t.steady(4) == (pytest.approx(0.022), pytest.approx(0.117))
+    assert t.lead(4) == 0  # a trial a fifth of a refit: waiting costs little
+
+
+def test_the_start_up_samples_are_skipped_once_even_past_the_window() -> None:
+    t = Timing()
+    t.refit(5.0)
+    assert t.lead(1) == 0 and t.steady(1)[1] is None  # the first refit alone is no measurement
+    for _ in range(3 * WINDOW):
+        t.trial(1.0)
+        t.refit(0.6)
+    assert t.steady(2) == (1.0, 0.6) and t.lead(2) == 2

@@ -73,7 +73,8 @@ class _Clock:
 
 
 def main(repeats: int = 5) -> dict[str, Any]:
-    """The four figures: median proposal (q=8, 200 observations, 30 history tasks), meta-training
+    """The four figures: median proposal (q=8, 200 observations, 30 history tasks; each timed
+    round one observation more than the last, after a first round on the 200), meta-training
     (30 tasks x 300 points), loading the cached state, median proposal with 2000 observations.
 
     Wall-clock seconds are the figures; ``*_cpu`` companions give the process CPU time of the
@@ -92,10 +93,14 @@ def main(repeats: int = 5) -> dict[str, Any]:
         with _Clock() as cached:
             q.meta_model()
         assert q.meta_cached, "the second proposer should have loaded the cache"
+        with _Clock() as first:  # the round that meets the 200 observations (a cold GP fit)
+            q.propose(8, obs200)
         clocks = []
-        for _ in range(repeats):
+        extra = _observations(SPACE3, f, repeats, rng)
+        for i in range(repeats):
+            # Each timed round has one result more than the last, as in a running search.
             with _Clock() as c:
-                props = q.propose(8, obs200)
+                props = q.propose(8, obs200 + extra[: i + 1])
             clocks.append(c)
         models = sorted({str(pr.model) for pr in props})
     obs2000 = _observations(SPACE3, f, 2000, rng)
@@ -118,7 +123,7 @@ def main(repeats: int = 5) -> dict[str, Any]:
         "meta_train_seconds_cpu": round(meta_train.cpu, 3),
         "proposal_seconds_2000_cpu": med(big_clocks[1:], "cpu"),
         "proposal_seconds_2000_first": round(big_clocks[0].wall, 4),
-        "proposal_seconds_first": round(clocks[0].wall, 4),
+        "proposal_seconds_first": round(first.wall, 4),
         "meta_train_steps": steps,
         "proposal_models": ",".join(models),
         "load_average": round(os.getloadavg()[0], 2),

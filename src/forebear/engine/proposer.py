@@ -30,8 +30,6 @@ from __future__ import annotations
 
 import math
 import os
-import pickle
-import time
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, replace
 from pathlib import Path
@@ -42,11 +40,12 @@ import torch
 
 from forebear.core.space import Space
 from forebear.engine import acquisition
-from forebear.engine.cache import default_cache_dir, save_state
+from forebear.engine.cache import default_cache_dir, load_or_train
+from forebear.engine.refits import Refits
 from forebear.engine.runtime import finite as _finite
 from forebear.engine.runtime import threads as _threads
 from forebear.engine.surrogate.deep_kernel import MetaModel, Settings, cache_key
-from forebear.engine.surrogate.gp import Posterior, as_tensor, fit_gp
+from forebear.engine.surrogate.gp import Posterior, as_tensor, feasibility
 from forebear.engine.surrogate.select import Choice, Prequential, choose
 from forebear.engine.warmstart import extend_design, initial_design
 
@@ -201,8 +200,7 @@ class Proposer:
         self._initial: list[dict[str, Any]] | None = None
         self._k: int | None = None
         self._meta: MetaModel | None = None
-        self._gp_state: dict[str, torch.Tensor] | None = None
-        self._gp_fits = 0
+        self._gp = Refits(seed, device)  # the plain GP across rounds (engine/refits.py)
         # Encodings of configurations seen so far (None: outside the space). A search hands the
         # same observations to every round; each is validated and encoded once, not per round.
         self._rows: dict[tuple[Any, ...], np.ndarray | None] = {}
@@ -240,20 +238,9 @@ class Proposer:
         return History(list(self.tasks)).hash()
 
     def _load_or_train(self) -> MetaModel:
-        start = time.perf_counter()
-        meta = MetaModel(self.space.dim, self.settings, self.device)
-        path = self.cache_path()
-        if path is not None and path.is_file():
-            try:
-                meta.load_state_dict(torch.load(path, map_location=self.device, weights_only=True))
-                self.meta_seconds, self.meta_cached = time.perf_counter() - start, True
-                return meta
-            except (OSError, RuntimeError, ValueError, KeyError, EOFError, pickle.UnpicklingError):
-                meta = MetaModel(self.space.dim, self.settings, self.device)  # unreadable entry: retrain, overwrite
-        meta.meta_train([(t.X, t.y) for t in self.tasks])
-        self.meta_seconds, self.meta_cached = time.perf_counter() - start, False
-        if path is not None:
-            save_state(meta.state_dict(), path)
+        meta, self.meta_seconds, self.meta_cached = load_or_train(
+            lambda: MetaModel(self.space.dim, self.settings, self.device), [(t.X, t.y) for t in self.tasks],
+            self.cache_path(), self.device)
         return meta
 
     # -- proposing -----------------------------------------------------------
@@ -401,7 +388,7 @@ class Proposer:
             models["deep-kernel"] = meta.posterior(X, y, fine_tune=self.fine_tune, seed=self.seed)
         guarded = meta is not None and self.model == "auto" and self.guard
         if meta is None or (guarded and len(y) >= GUARD_FROM):
-            models["gp"] = self._fit_gp(X, y)
+            models["gp"] = self._gp.posterior(X, y)
         if not guarded:
             return choose(models, None, prefer="deep-kernel")
         keys = acquisition.keys(self._encode([o.config for o in scored]))
@@ -414,21 +401,5 @@ class Proposer:
         self._preq.keep(models)
         return choice
 
-    def _fit_gp(self, X: np.ndarray, y: np.ndarray) -> Posterior:
-        # Warm-started from the previous round's hyperparameters; every fourth refit (and the
-        # first) also tries gpytorch's default start, so a poor local optimum is not kept forever.
-        self._gp_fits += 1
-        if self._gp_state is None:
-            restarts = 3 if len(y) <= 100 else 1  # a cold fit on many points is slow; one start
-        else:
-            restarts = 2 if self._gp_fits % 4 == 0 else 1
-        fit = fit_gp(X, y, restarts=restarts, init=self._gp_state, seed=self.seed, device=self.device)
-        self._gp_state = fit.state
-        return fit.posterior
-
     def _feasibility(self, X_ok: np.ndarray, X_bad: np.ndarray) -> Posterior:
-        """GP regression on +1 (scored) / -1 (failed) labels (least-squares classification,
-        Rasmussen & Williams 2006, sec. 6.5); its probit gives a probability of feasibility."""
-        Xl = np.vstack([X_ok, X_bad])
-        labels = np.concatenate([np.ones(len(X_ok)), -np.ones(len(X_bad))])
-        return fit_gp(Xl, labels, restarts=1, seed=self.seed, device=self.device).posterior
+        return feasibility(X_ok, X_bad, seed=self.seed, device=self.device)

@@ -14,7 +14,13 @@ proposes ahead in about ``max(T, R)``. When the slower of the two dominates
 that fraction of the wall time and the loop waits: a round starts only for slots
 that are free now. Otherwise it proposes ahead by the completions expected
 during one refit, ``ceil(concurrency * R / T)``, at most ``concurrency``.
-Until both times have been measured once, the loop waits.
+Until both times have been measured once, the loop waits. Start-up costs are
+not counted: the first trial on each worker (``concurrency`` of them) pays the
+worker's imports and data loading, the first model round the proposer's first
+fit; in a short search these one-off times would otherwise be the medians
+(docs/engine.md measured 0.3-0.5 s first trials and a 1.4 s first refit
+against 0.02 s trials and 0.1 s refits afterwards, which made the loop propose
+four configurations ahead, blind to four results, in the last round).
 
 The first round of a search is its initial design: at least ``initial``
 configurations (``Proposer.initial_size``), whatever ``batch`` says.
@@ -32,6 +38,8 @@ from dataclasses import dataclass, field
 WAIT_WITHIN = 0.25
 #: Timings kept for the medians (recent behaviour counts, one slow outlier does not).
 WINDOW = 9
+#: Model rounds whose time is start-up, not refit (the first fit's one-off set-up).
+WARMUP_REFITS = 1
 
 
 def ahead(concurrency: int, trial_seconds: float | None, refit_seconds: float | None) -> int:
@@ -98,12 +106,16 @@ class Timing:
 
     trials: list[float] = field(default_factory=list)
     refits: list[float] = field(default_factory=list)
+    trial_count: int = 0  # samples ever recorded (the window keeps the last WINDOW)
+    refit_count: int = 0
 
     def trial(self, seconds: float) -> None:
         self.trials = [*self.trials, float(seconds)][-WINDOW:]
+        self.trial_count += 1
 
     def refit(self, seconds: float) -> None:
         self.refits = [*self.refits, float(seconds)][-WINDOW:]
+        self.refit_count += 1
 
     @property
     def trial_seconds(self) -> float | None:
@@ -113,6 +125,18 @@ class Timing:
     def refit_seconds(self) -> float | None:
         return _median(self.refits)
 
+    def steady(self, concurrency: int) -> tuple[float | None, float | None]:
+        """Median trial and refit times without the start-up samples: the first ``concurrency``
+        trials (one per worker) and the first :data:`WARMUP_REFITS` refits."""
+        return (_median(_after(self.trials, self.trial_count, concurrency)),
+                _median(_after(self.refits, self.refit_count, WARMUP_REFITS)))
+
     def lead(self, concurrency: int) -> int:
-        """:func:`ahead` for the medians so far."""
-        return ahead(concurrency, self.trial_seconds, self.refit_seconds)
+        """:func:`ahead` for the steady medians so far (0 until both are measured)."""
+        return ahead(concurrency, *self.steady(concurrency))
+
+
+def _after(window: Sequence[float], count: int, skip: int) -> list[float]:
+    """The samples of ``window`` (the last of ``count`` recorded) past the first ``skip`` ever."""
+    first = count - len(window)  # ordinal of window[0]
+    return list(window[max(0, skip - first):])

@@ -25,11 +25,9 @@ This module never touches files: the proposer caches ``state_dict()``.
 
 from __future__ import annotations
 
-import copy
 import hashlib
 import json
 import math
-import time
 from collections.abc import Mapping, Sequence
 from dataclasses import asdict, dataclass
 from typing import Any
@@ -47,6 +45,7 @@ from forebear.engine.surrogate.gp import (
     standardise,
     subset,
 )
+from forebear.engine.surrogate.meta_train import MetaReport
 
 FORMAT = 2  # bump when the state layout changes, so old cache entries are not reused
 LAMBDAS = (0.25, 0.5, 1.0, 2.0, 4.0)  # grid of the per-task residual amplitude
@@ -261,17 +260,6 @@ def _blocks(net: DeepKernel, X: torch.Tensor) -> tuple[torch.Tensor, ...]:
     return Z, m, net.affine(m, m), net.residual(X, Z, X, Z)
 
 
-@dataclass
-class MetaReport:
-    """What meta-training did."""
-
-    steps: int
-    seconds: float
-    holdout_tasks: int
-    best_holdout_nll: float | None  # held-out episodes' query NLL per point, task-standardised units
-    initial_holdout_nll: float | None = None  # the same before the first step
-
-
 class MetaModel:
     """A meta-trained deep-kernel GP and what it does for the proposer.
 
@@ -297,94 +285,11 @@ class MetaModel:
     # -- meta-training ------------------------------------------------------
 
     def meta_train(self, tasks: Sequence[tuple[np.ndarray, np.ndarray]]) -> MetaReport:
-        """Meta-train on history tasks ``[(X, y), ...]`` (lower is better)."""
-        s = self.settings
-        start = time.perf_counter()
-        rng = np.random.default_rng(s.seed)
-        torch.manual_seed(s.seed)
-        tasks = [(np.asarray(X, float), np.asarray(y, float)) for X, y in tasks if len(y) >= 2]
-        if not tasks:
-            msg = "meta-training needs at least one history task with two or more scored trials"
-            raise ValueError(msg)
-        data = []
-        for X, y in tasks:
-            shift, scale = standardise(y)  # each task on its own scale
-            data.append((as_tensor(X, self.device), as_tensor((y - shift) / scale, self.device)))
-        n_hold = int(round(s.holdout * len(data))) if len(data) >= 4 else 0
-        order = rng.permutation(len(data))
-        hold = [data[i] for i in order[:n_hold]]
-        train = [data[i] for i in order[n_hold:]]
-        val = self._val_episodes(hold, rng)
-        self.net.requires_grad_(True)
-        opt = torch.optim.Adam(self.net.parameters(), lr=s.lr)
-        max_steps = s.max_steps if val else min(s.max_steps, 500)
-        first = self._val_nll(val) if val else None
-        best_nll, best_state, since, step = math.inf, None, 0, 0
-        for step in range(1, max_steps + 1):
-            n_s = int(rng.integers(1, s.max_support + 1))
-            picks = rng.integers(len(train), size=s.tasks_per_step)
-            episodes = [_episode(*train[j], n_s, s.query, rng, s.augment) for j in picks]
-            episodes = [e for e in episodes if e is not None]
-            if not episodes:
-                continue
-            loss = -self._episode_ll(episodes).mean()
-            opt.zero_grad()
-            loss.backward()
-            opt.step()
-            if val and step % s.eval_every == 0:
-                v = self._val_nll(val)
-                if v < best_nll - 1e-4:
-                    best_nll, best_state, since = v, copy.deepcopy(self.net.state_dict()), 0
-                else:
-                    since += 1
-                    if since >= s.patience:
-                        break
-        if best_state is not None and first is not None and best_nll < first:
-            self.net.load_state_dict(best_state)
-        self.net.requires_grad_(False)
-        self.report = MetaReport(step, time.perf_counter() - start, len(hold), best_nll if val else None, first)
+        """Meta-train on history tasks ``[(X, y), ...]`` (lower is better); see :mod:`.meta_train`."""
+        from forebear.engine.surrogate.meta_train import train
+
+        self.report = train(self, tasks)
         return self.report
-
-    def _episode_ll(self, episodes: Sequence[tuple[torch.Tensor, ...]]) -> torch.Tensor:
-        """Query log-likelihood per point of a batch of same-size episodes, after the proposal-time refit."""
-        Xs = torch.stack([e[0] for e in episodes])
-        ts = torch.stack([e[1] for e in episodes])
-        Xq = torch.stack([e[2] for e in episodes])
-        tq = torch.stack([e[3] for e in episodes])
-        log_scale = torch.stack([e[4] for e in episodes])
-        net = self.net
-        Zs, ms = net.parts(Xs)
-        Zq, mq = net.parts(Xq)
-        A_ss, R_ss = net.affine(ms, ms), net.residual(Xs, Zs, Xs, Zs)
-        eye = torch.eye(Xs.shape[1], dtype=Xs.dtype, device=Xs.device)
-        noise = net.noise()
-        mean_s = net.a0 * ms
-        with torch.no_grad():  # the refit's grid choice, as at proposal time
-            lls = torch.stack([_lml(ts, mean_s, A_ss + lam * R_ss + noise * eye)[0] for lam in LAMBDAS], -1)
-            lam = torch.tensor(LAMBDAS, dtype=Xs.dtype, device=Xs.device)[_pick_lambda(lls)]
-        lam3 = lam.view(-1, 1, 1)
-        _, L, alpha = _lml(ts, mean_s, A_ss + lam3 * R_ss + noise * eye)
-        Kqs = net.affine(mq, ms) + lam3 * net.residual(Xq, Zq, Xs, Zs)
-        mu = net.a0 * mq + (Kqs @ alpha.unsqueeze(-1)).squeeze(-1)
-        v = torch.linalg.solve_triangular(L, Kqs.transpose(-1, -2), upper=False)
-        prior = torch.exp(net.log_vc) + torch.exp(net.log_va) * mq * mq + lam.view(-1, 1) * net.residual_var()
-        var = (prior - (v * v).sum(-2)).clamp_min(1e-9) + noise
-        ll = -0.5 * (torch.log(var) + (tq - mu) ** 2 / var + _LOG_2PI)
-        return ll.mean(-1) - log_scale  # per point, in the task's standardised units
-
-    def _val_episodes(self, hold: Sequence[tuple[torch.Tensor, torch.Tensor]], rng: np.random.Generator) -> list[list[tuple[torch.Tensor, ...]]]:
-        """Fixed held-out episodes, grouped by support size."""
-        sizes = sorted({1, 3, 5, 10, self.settings.max_support})
-        groups = []
-        for n_s in sizes:
-            eps = [e for X, t in hold for _ in range(2) if (e := _episode(X, t, n_s, 64, rng, False)) is not None]
-            if eps:
-                groups.append(eps)
-        return groups
-
-    def _val_nll(self, val: Sequence[Sequence[tuple[torch.Tensor, ...]]]) -> float:
-        with torch.no_grad():
-            return float(np.mean([-float(self._episode_ll(g).mean()) for g in val]))
 
     # -- the current search -------------------------------------------------
 
@@ -423,38 +328,6 @@ class MetaModel:
     def load_state_dict(self, state: Mapping[str, torch.Tensor]) -> None:
         self.net.load_state_dict(dict(state))
         self.net.requires_grad_(False)
-
-
-def _episode(X: torch.Tensor, t: torch.Tensor, n_s: int, n_q: int, rng: np.random.Generator, augment: bool) -> tuple[torch.Tensor, ...] | None:
-    """Support and query of one task, scores standardised on the support as the proposer does.
-
-    Returns ``(X_support, t_support, X_query, t_query, log_scale)``, ``log_scale`` the
-    support's spread in the task's standardised units (the likelihood's Jacobian).
-    """
-    n = len(t)
-    if n < 2:
-        return None
-    n_s = min(n_s, n - 1)
-    idx = rng.permutation(n)
-    s_idx, q_idx = idx[:n_s], idx[n_s:n_s + n_q]
-    if len(q_idx) < n_q:  # small tasks: draw query points with replacement from the rest
-        q_idx = rng.choice(idx[n_s:], size=n_q, replace=True)
-    tt = t
-    if augment and rng.random() < 0.5:
-        tt = _augment(t, rng)
-    ys = tt[s_idx].cpu().numpy()
-    shift, scale = standardise(ys)
-    return X[s_idx], (tt[s_idx] - shift) / scale, X[q_idx], (tt[q_idx] - shift) / scale, torch.tensor(math.log(scale), dtype=t.dtype, device=t.device)
-
-
-def _augment(t: torch.Tensor, rng: np.random.Generator) -> torch.Tensor:
-    """A random monotone warp of a task's scores: min-max onto [0, 1], then a power in [1/2, 2],
-    then standardised again. Rankings are kept; the shape changes, so only rankings carry over."""
-    lo, hi = t.min(), t.max()
-    if float(hi - lo) < 1e-12:
-        return t
-    u = ((t - lo) / (hi - lo)) ** float(np.exp(rng.uniform(math.log(0.5), math.log(2.0))))
-    return (u - u.mean()) / u.std(unbiased=False).clamp_min(1e-12)
 
 
 def cache_key(history_hash: str, space: Mapping[str, Any], settings: Settings) -> str:

@@ -1,8 +1,20 @@
 """The plain GP: constant mean, ScaleKernel(Matérn 5/2, ARD), Gaussian noise with a floor.
 
 Hyperparameters come from maximising the exact marginal likelihood
-(gpytorch's ``ExactMarginalLogLikelihood``) with L-BFGS from a few starting
-points, in float64 on standardised targets. Prediction and conditioning on
+(gpytorch's ``ExactMarginalLogLikelihood``) plus a log-normal prior on each
+lengthscale, with L-BFGS from a few starting points, in float64 on
+standardised targets. The prior is the dimension-scaled one of "Vanilla
+Bayesian Optimization Performs Great in High Dimensions" (ICML 2024):
+``log l ~ N(sqrt(2) + log(d) / 2, 3)`` on the unit cube (as we recall the
+paper), and a log-normal prior on the noise variance, ``log s2 ~ N(-7, 1)``
+(about 1e-3 of the score variance, the deep kernel's relative noise floor):
+without a noise term the longer lengthscales let a fit on three to five
+points call every score noise, and the paper's ``N(-4, 1)`` (as we recall it)
+blurred the last digits of deterministic families (docs/engine.md has the
+figures). Without the lengthscale prior, a fit on
+three to eight points often ends at a bound (lengthscales of 0.006 and 20 on
+the 2-D bowl of tests/test_async_bowl.py), and EI then only looks beside the
+observed points (docs/engine.md). Prediction and conditioning on
 extra points (constant-liar lies, pending trials) go through
 :class:`Posterior`, which holds the hyperparameters fixed and works from one
 Cholesky factor; the deep kernel uses the same class with its feature map.
@@ -26,6 +38,13 @@ DTYPE = torch.float64
 NOISE_FLOOR = 1e-6  # on standardised targets; keeps the kernel matrix well conditioned
 MAX_EXACT = 500  # past this many observations the posterior uses a subset of data (docs/engine.md)
 _LOG_2PI = math.log(2 * math.pi)
+LENGTHSCALE_SIGMA2 = 3.0  # variance of log l in the prior above
+NOISE_MU, NOISE_SIGMA2 = -7.0, 1.0  # mean and variance of log noise (standardised units)
+
+
+def lengthscale_mu(dim: int) -> float:
+    """Mean of log l in the lengthscale prior for ``dim`` inputs (ICML 2024, see above)."""
+    return math.sqrt(2.0) + 0.5 * math.log(max(1, dim))
 
 
 def as_tensor(x: Any, device: torch.device | str = "cpu") -> torch.Tensor:
@@ -265,6 +284,9 @@ def fit_gp(
         Hyperparameters of an earlier fit (``GPFit.state``) to start from.
     max_exact
         Past this many points, hyperparameters and posterior use a subset of data.
+    max_iter
+        L-BFGS iterations per start; 0 keeps ``init`` as it is (one start) and only
+        builds the posterior on ``(X, y)``.
     """
     y = np.asarray(y, dtype=float)
     rng = np.random.default_rng(seed)
@@ -277,6 +299,8 @@ def fit_gp(
     model = _ExactGP(Xt, yt, likelihood).to(device=device, dtype=DTYPE)
     mll = gpytorch.mlls.ExactMarginalLogLikelihood(likelihood, model)
     starts: list[dict[str, torch.Tensor] | None] = [init] if init is not None else []
+    if max_iter <= 0 and init is not None:
+        restarts = 1
     starts.append(None)
     gen = torch.Generator().manual_seed(seed)
     best_state, best_val = None, -math.inf
@@ -320,21 +344,47 @@ def exact_mll(model: _ExactGP, X: torch.Tensor, y: torch.Tensor) -> torch.Tensor
     return -(0.5 * (r * a).sum() + torch.log(torch.diagonal(L)).sum() + 0.5 * n * _LOG_2PI) / n
 
 
+def log_posterior(model: _ExactGP, X: torch.Tensor, y: torch.Tensor) -> torch.Tensor:
+    """:func:`exact_mll` plus the log density of the lengthscale and noise priors (up to a
+    constant), per point."""
+    ls = model.covar_module.base_kernel.lengthscale.reshape(-1)
+    z = torch.log(ls) - lengthscale_mu(X.shape[-1])
+    zn = torch.log(model.likelihood.noise.reshape(-1)) - NOISE_MU
+    prior = 0.5 * (z * z).sum() / LENGTHSCALE_SIGMA2 + 0.5 * (zn * zn).sum() / NOISE_SIGMA2
+    return exact_mll(model, X, y) - prior / len(X)
+
+
 def _optimise(model: _ExactGP, mll: Any, X: torch.Tensor, y: torch.Tensor, max_iter: int) -> float:
+    if max_iter <= 0:  # hyperparameters as given: only their value
+        try:
+            with torch.no_grad():
+                value = float(log_posterior(model, X, y))
+        except (NotPSDError, RuntimeError, ValueError):
+            return -math.inf
+        model.eval()
+        return value if math.isfinite(value) else -math.inf
     model.train()
     opt = torch.optim.LBFGS(model.parameters(), lr=1.0, max_iter=max_iter, line_search_fn="strong_wolfe")
 
     def closure() -> torch.Tensor:
         opt.zero_grad()
-        loss = -exact_mll(model, X, y)
+        loss = -log_posterior(model, X, y)
         loss.backward()
         return loss
 
     try:
         opt.step(closure)
         with torch.no_grad():
-            value = float(exact_mll(model, X, y))
+            value = float(log_posterior(model, X, y))
     except (NotPSDError, RuntimeError, ValueError):
         return -math.inf
     model.eval()
     return value if math.isfinite(value) else -math.inf
+
+
+def feasibility(X_ok: np.ndarray, X_bad: np.ndarray, *, seed: int = 0, device: torch.device | str = "cpu") -> Posterior:
+    """GP regression on +1 (scored) / -1 (failed) labels (least-squares classification,
+    Rasmussen & Williams 2006, sec. 6.5); its probit gives a probability of feasibility."""
+    Xl = np.vstack([X_ok, X_bad])
+    labels = np.concatenate([np.ones(len(X_ok)), -np.ones(len(X_bad))])
+    return fit_gp(Xl, labels, restarts=1, seed=seed, device=device).posterior
