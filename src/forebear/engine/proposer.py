@@ -10,15 +10,13 @@ How a call is answered (docs/engine.md has the reasons and the figures):
 
 1. The initial design (warm start from history, else a Latin hypercube) of
    at least ``min(dim + 1, 10)`` configurations, source ``initial``.
-2. Then the surrogate: the plain GP without history; with history, the
-   meta-trained deep kernel (its offset, amplitude and residual refitted in
-   closed form on the current search) under the transfer guard, which scores
-   both models prequentially across rounds. Failed configurations enter the targets with the worst
-   observed score. Pending configurations (running trials) enter under the
-   ``pending_lie``, earlier points of the same round under the ``lie``.
-   Source ``model``.
-3. While the model has too few scores: more of the design, source
-   ``initial``; random points (``random``) only when neither has a new one.
+2. Then the surrogate: the plain GP without history; with history, the meta-trained deep kernel
+   (offset, amplitude and residual refitted in closed form on this search) under the transfer
+   guard, which scores both models prequentially. Failed configurations enter the targets with
+   the worst observed score; pending ones (running trials) under the ``pending_lie``, earlier
+   points of the same round under the ``lie``. Source ``model``.
+3. While the model has too few scores: more of the design (``initial``); random points
+   (``random``) only when neither has a new one.
 
 The meta-trained state is cached on disk (``cache_dir``, default
 ``$FOREBEAR_CACHE`` or ``~/.cache/forebear``) as a ``state_dict`` of tensors,
@@ -154,16 +152,11 @@ class Proposer:
         if more:
             msg = f"Proposer got unknown settings: {', '.join(sorted(more))}"
             raise TypeError(msg)
-        if model not in MODELS:
-            msg = f"model must be one of {MODELS}, got {model!r}"
-            raise ValueError(msg)
-        for key, value in (("lie", lie), ("pending_lie", pending_lie)):
-            if value not in acquisition.LIES:
-                msg = f"{key} must be one of {acquisition.LIES}, got {value!r}"
+        choices = (("model", model, MODELS), ("lie", lie, acquisition.LIES), ("pending_lie", pending_lie, acquisition.LIES), ("failed", failed, FAILED))
+        for key, value, allowed in choices:
+            if value not in allowed:
+                msg = f"{key} must be one of {allowed}, got {value!r}"
                 raise ValueError(msg)
-        if failed not in FAILED:
-            msg = f"failed must be one of {FAILED}, got {failed!r}"
-            raise ValueError(msg)
         if device not in ("cpu", "cuda") and not str(device).startswith("cuda:"):
             msg = f"device must be 'cpu' or 'cuda', got {device!r}"
             raise ValueError(msg)
