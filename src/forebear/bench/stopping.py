@@ -563,7 +563,7 @@ def halt_latency(trials: int = 12, workers: int = 4, note_every: float = 0.1) ->
     return {
         "halted": len(gaps),
         "note_every_s": note_every,
-        "check_every_s": _check_every(),
+        **_intervals(),
         "latency_s_median": round(statistics.median(gaps), 3) if gaps else None,
         "latency_s_max": round(gaps[-1], 3) if gaps else None,
         "latency_s_all": [round(g, 3) for g in gaps],
@@ -574,10 +574,11 @@ def halt_latency(trials: int = 12, workers: int = 4, note_every: float = 0.1) ->
     }
 
 
-def _check_every() -> float:
-    from forebear.cluster.steps import CHECK_EVERY
+def _intervals() -> dict[str, float]:
+    from forebear.cluster.runner import POLL
+    from forebear.cluster.steps import WAIT_FOR
 
-    return CHECK_EVERY
+    return {"runner_poll_s": POLL, "halt_wait_s": WAIT_FOR}
 
 
 if __name__ == "__main__":
