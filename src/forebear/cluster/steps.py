@@ -21,6 +21,7 @@ halt one round trip after the decision and, for a callable, its next
 
 from __future__ import annotations
 
+import contextvars
 import json
 import threading
 import time
@@ -96,7 +97,8 @@ class StepWatcher:
         self._offset = 0
         self._buf = b""
         self._last_step: int | None = None
-        self._last_seen = 0.0
+        self._last_seen = time.monotonic()  # the last score's arrival (the start until one arrives)
+        self._started = False
         self._event: Any = None  # the distributed.Event, False when there is no scheduler to ask
         self._lock = threading.Lock()
         self._waiting = False  # a thread waits on the event
@@ -172,9 +174,10 @@ class StepWatcher:
         if final:
             self._over.set()  # a waiting thread stops at its next wake
             return False
-        if self.halted or not self.task.halt_event or self.last is None:
+        if self.halted or not self.task.halt_event:
             return False
-        if fresh:
+        if fresh or not self._started:
+            self._started = True
             self._keep_waiting()
         if not self._decided.is_set():
             return False
@@ -197,30 +200,32 @@ class StepWatcher:
     # -- the halt event -------------------------------------------------------
 
     def _keep_waiting(self) -> None:
-        """Make sure a thread waits on the attempt's halt event (called when scores arrive)."""
+        """Make sure a thread waits on the attempt's halt event (from the first poll, and when scores arrive)."""
         with self._lock:
-            if self._waiting:
-                return
-            if self._event is None:
-                try:
-                    from distributed import Event, get_client
-
-                    # The worker's client, fetched in the task's thread (the waiting thread has no worker context).
-                    self._event = Event(self.task.halt_event, client=get_client())
-                except Exception:  # noqa: BLE001 - no scheduler to ask (a direct call): nobody will halt it
-                    self._event = False
-                    return
-            if self._event is False:
+            if self._waiting or self._event is False:
                 return
             self._waiting = True
-        threading.Thread(target=self._wait, name=f"forebear-halt-{self.task.trial}", daemon=True).start()
+        context = contextvars.copy_context()  # the task's, so that get_client() in the thread finds the worker
+        threading.Thread(target=context.run, args=(self._wait,), name=f"forebear-halt-{self.task.trial}", daemon=True).start()
 
     def _wait(self) -> None:
         """Wait on the scheduler for the halt event, WAIT_FOR s at a time, while the attempt runs and scores arrive.
 
         The event is set the moment the controller decides, so the halt is learnt one round trip
-        later, with one request per WAIT_FOR s instead of a check per poll.
+        later, with one request per WAIT_FOR s instead of a check per poll. The worker's client
+        is made here (the first attempt on a worker), while the objective starts, not when its
+        first score is in.
         """
+        if self._event is None:
+            try:
+                from distributed import Event, get_client
+
+                self._event = Event(self.task.halt_event, client=get_client())
+            except Exception:  # noqa: BLE001 - no scheduler to ask (a direct call): nobody will halt it
+                with self._lock:
+                    self._event = False
+                    self._waiting = False
+                return
         while True:
             try:
                 decided = bool(self._event.wait(timeout=WAIT_FOR))
