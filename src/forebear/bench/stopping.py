@@ -510,8 +510,8 @@ def halt_latency(trials: int = 12, workers: int = 4, note_every: float = 0.1) ->
     """Seconds from the controller setting an attempt's halt event to its objective catching forebear.Halted.
 
     A halving search (rungs at steps 2, 4, ...) of :func:`latency_objective` on a local cluster of
-    ``workers``; the controller's side is timed by wrapping :meth:`forebear.loop.halting.Halting.drain`,
-    which sets the event of each trial it decides to halt just before it returns.
+    ``workers``; the controller's side is timed by wrapping ``forebear.loop.halting.Halting._signal``,
+    which sets the event of a trial just after ``drain`` records the decision.
     """
     import tempfile
 
@@ -519,14 +519,12 @@ def halt_latency(trials: int = 12, workers: int = 4, note_every: float = 0.1) ->
     from forebear.loop import halting
 
     decided_at: dict[int, float] = {}
-    drain = halting.Halting.drain
+    signal = halting.Halting._signal
 
-    def timed(self: Any, running: Any) -> list[str]:
-        lines = drain(self, running)
-        now = time.time()
-        for tid in self.decided:
-            decided_at.setdefault(tid, now)
-        return lines
+    def timed(self: Any, key: str) -> None:
+        for tid in self.decided:  # drain records the decision just before it signals
+            decided_at.setdefault(tid, time.time())
+        signal(self, key)
 
     with tempfile.TemporaryDirectory() as tmp:
         os.environ[LATENCY_DIR] = tmp
@@ -541,13 +539,13 @@ def halt_latency(trials: int = 12, workers: int = 4, note_every: float = 0.1) ->
             "stopping": {"rule": "halving", "steps": int(round(20 / note_every)), "min_step": 2, "eta": 2},
             "seed": 0,
         }
-        halting.Halting.drain = timed  # type: ignore[method-assign]
+        halting.Halting._signal = timed  # type: ignore[method-assign]
         sampler = _WorkerCPU(tmp)
         t0 = time.monotonic()
         try:
             forebear.run(spec)
         finally:
-            halting.Halting.drain = drain  # type: ignore[method-assign]
+            halting.Halting._signal = signal  # type: ignore[method-assign]
             cpu = sampler.stop()
         wall = time.monotonic() - t0
         table = forebear.load(Path(tmp, "latency.jsonl"))
