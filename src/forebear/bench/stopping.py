@@ -442,15 +442,22 @@ LATENCY_EVERY = "FOREBEAR_LATENCY_NOTE_EVERY"  # seconds between the latency obj
 
 
 def latency_objective(config: dict[str, Any], note: Any) -> float:
-    """An objective that notes ``x + 1/step`` every ``$FOREBEAR_LATENCY_NOTE_EVERY`` s and records when it is halted."""
+    """Notes ``u + 1/step`` every ``$FOREBEAR_LATENCY_NOTE_EVERY`` s and records when it is halted.
+
+    ``u`` is a number in [0, 1) drawn from ``x`` (a hash), so the trials' order at the rungs has
+    nothing to do with their final score ``x``: halving halts most trials whichever ``x`` the
+    proposer picks (with ``x + 1/step`` a proposer that improves steadily got 2 halts of 12).
+    """
     import forebear
 
     x = float(config["x"])
+    u = zlib.crc32(repr(x).encode()) / 2**32
     every = float(os.environ[LATENCY_EVERY])
+    Path(os.environ[LATENCY_DIR], f"worker-{_grandparent()}").touch()  # the Dask worker (this process's server's parent)
     try:
         for step in range(1, int(round(20 / every)) + 1):  # 20 s of training
             time.sleep(every)
-            note(step, x + 1.0 / step)
+            note(step, u + 1.0 / step)
     except forebear.Halted as halted:
         caught = time.time()
         Path(os.environ[LATENCY_DIR], f"{x!r}.json").write_text(json.dumps({"caught": caught, "step": halted.step}))
@@ -458,12 +465,53 @@ def latency_objective(config: dict[str, Any], note: Any) -> float:
     return x
 
 
+def _grandparent() -> int:
+    with open(f"/proc/{os.getppid()}/stat") as fh:
+        return int(fh.read().rsplit(")", 1)[1].split()[1])
+
+
+def _cpu_seconds(pid: int) -> float | None:
+    """User + system CPU seconds of process ``pid`` so far (Linux /proc), None when it is gone."""
+    try:
+        with open(f"/proc/{pid}/stat") as fh:
+            fields = fh.read().rsplit(")", 1)[1].split()
+    except OSError:
+        return None
+    return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
+
+
+class _WorkerCPU:
+    """Samples the CPU time of the Dask worker processes the latency objective names, every 0.5 s."""
+
+    def __init__(self, folder: str) -> None:
+        import threading
+
+        self.folder = Path(folder)
+        self.cpu: dict[int, float] = {}
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._run, daemon=True)
+        self._thread.start()
+
+    def _run(self) -> None:
+        while not self._stop.wait(0.5):
+            for f in self.folder.glob("worker-*"):
+                pid = int(f.name.split("-")[1])
+                cpu = _cpu_seconds(pid)
+                if cpu is not None:
+                    self.cpu[pid] = cpu
+
+    def stop(self) -> dict[int, float]:
+        self._stop.set()
+        self._thread.join()
+        return self.cpu
+
+
 def halt_latency(trials: int = 12, workers: int = 4, note_every: float = 0.1) -> dict[str, Any]:
     """Seconds from the controller setting an attempt's halt event to its objective catching forebear.Halted.
 
     A halving search (rungs at steps 2, 4, ...) of :func:`latency_objective` on a local cluster of
-    ``workers``; the controller's side is timed by wrapping :meth:`forebear.loop.halting.Halting.drain`,
-    which sets the event of each trial it decides to halt just before it returns.
+    ``workers``; the controller's side is timed by wrapping ``forebear.loop.halting.Halting._signal``,
+    which sets the event of a trial just after ``drain`` records the decision.
     """
     import tempfile
 
@@ -471,14 +519,12 @@ def halt_latency(trials: int = 12, workers: int = 4, note_every: float = 0.1) ->
     from forebear.loop import halting
 
     decided_at: dict[int, float] = {}
-    drain = halting.Halting.drain
+    signal = halting.Halting._signal
 
-    def timed(self: Any, running: Any) -> list[str]:
-        lines = drain(self, running)
-        now = time.time()
-        for tid in self.decided:
-            decided_at.setdefault(tid, now)
-        return lines
+    def timed(self: Any, key: str) -> None:
+        for tid in self.decided:  # drain records the decision just before it signals
+            decided_at.setdefault(tid, time.time())
+        signal(self, key)
 
     with tempfile.TemporaryDirectory() as tmp:
         os.environ[LATENCY_DIR] = tmp
@@ -493,11 +539,15 @@ def halt_latency(trials: int = 12, workers: int = 4, note_every: float = 0.1) ->
             "stopping": {"rule": "halving", "steps": int(round(20 / note_every)), "min_step": 2, "eta": 2},
             "seed": 0,
         }
-        halting.Halting.drain = timed  # type: ignore[method-assign]
+        halting.Halting._signal = timed  # type: ignore[method-assign]
+        sampler = _WorkerCPU(tmp)
+        t0 = time.monotonic()
         try:
             forebear.run(spec)
         finally:
-            halting.Halting.drain = drain  # type: ignore[method-assign]
+            halting.Halting._signal = signal  # type: ignore[method-assign]
+            cpu = sampler.stop()
+        wall = time.monotonic() - t0
         table = forebear.load(Path(tmp, "latency.jsonl"))
         gaps, steps_late = [], []
         for t in table:
@@ -511,18 +561,22 @@ def halt_latency(trials: int = 12, workers: int = 4, note_every: float = 0.1) ->
     return {
         "halted": len(gaps),
         "note_every_s": note_every,
-        "check_every_s": _check_every(),
+        **_intervals(),
         "latency_s_median": round(statistics.median(gaps), 3) if gaps else None,
         "latency_s_max": round(gaps[-1], 3) if gaps else None,
         "latency_s_all": [round(g, 3) for g in gaps],
         "halted_at_step": steps_late,
+        "seconds": round(wall, 1),
+        "worker_cpu_s": sorted(round(c, 2) for c in cpu.values()),  # each worker process's CPU time over the run
+        "load_average": [round(v, 2) for v in os.getloadavg()],  # 1, 5 and 15 min, at the end
     }
 
 
-def _check_every() -> float:
-    from forebear.cluster.steps import CHECK_EVERY
+def _intervals() -> dict[str, float]:
+    from forebear.cluster.runner import POLL
+    from forebear.cluster.steps import WAIT_FOR
 
-    return CHECK_EVERY
+    return {"runner_poll_s": POLL, "halt_wait_s": WAIT_FOR}
 
 
 if __name__ == "__main__":

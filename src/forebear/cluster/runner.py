@@ -43,7 +43,7 @@ __all__ = ["AttemptResult", "AttemptTask", "RunnerError", "log_name", "reachable
 PROBE_NAME = ".probe"
 KILL_GRACE = 10.0  # seconds to wait for a killed child to be reaped
 HALT_GRACE = 5.0  # seconds a halted command has between SIGTERM and SIGKILL to clean up
-POLL = 0.2  # how often a waiting runner checks whether its Dask task was cancelled
+POLL = 0.05  # how often a waiting runner reads new intermediate scores and checks whether its task was cancelled
 
 
 def _server_key(task: AttemptTask) -> tuple[str | None, tuple[str, bytes] | None]:

@@ -12,13 +12,18 @@ the last line of stdout is still the final score). The runner polls a
 record: appended to the logbook here when the worker shares its filesystem,
 kept for the attempt's result otherwise, and sent to the controller as a Dask
 event either way, since the controller decides from every trial's curve. Its
-decision comes back as a ``distributed.Event`` named for the attempt, which
-the watcher checks while scores arrive.
+decision comes back as a ``distributed.Event`` named for the attempt, which a
+thread of the watcher waits on while scores arrive (one wait held on the
+scheduler at a time, renewed every ``WAIT_FOR`` s): the attempt learns of the
+halt one round trip after the decision and, for a callable, its next
+``note()`` raises ``forebear.Halted``.
 """
 
 from __future__ import annotations
 
+import contextvars
 import json
+import threading
 import time
 from pathlib import Path
 from typing import Any
@@ -27,8 +32,8 @@ from forebear.cluster.scoring import BadScore, score_of
 from forebear.records.logbook import Logbook, record
 
 STEP_MARK = "forebear-step:"
-CHECK_EVERY = 0.5  # seconds between checks of the attempt's halt event while scores arrive
-CHECK_FOR = 30.0  # ... for this long after the last score: a decision takes a round trip to the controller
+WAIT_FOR = 5.0  # seconds one wait on the attempt's halt event lasts on the scheduler before it is renewed
+CHECK_FOR = 30.0  # waiting stops this long after the last score: a decision takes a round trip to the controller
 READ_LIMIT = 1 << 20  # bytes of new output read per poll
 
 
@@ -92,9 +97,13 @@ class StepWatcher:
         self._offset = 0
         self._buf = b""
         self._last_step: int | None = None
-        self._last_seen = 0.0
-        self._next_check = 0.0
-        self._event: Any = None
+        self._last_seen = time.monotonic()  # the last score's arrival (the start until one arrives)
+        self._started = False
+        self._event: Any = None  # the distributed.Event, False when there is no scheduler to ask
+        self._lock = threading.Lock()
+        self._waiting = False  # a thread waits on the event
+        self._decided = threading.Event()  # the event was found set
+        self._over = threading.Event()  # the attempt ended
 
     # -- reading ------------------------------------------------------------
 
@@ -162,17 +171,17 @@ class StepWatcher:
             if self.logbook is not None:
                 self.logbook.append_many(fresh)
             self._publish(fresh)
-        if final or self.halted or not self.task.halt_event or self.last is None:
+        if final:
+            self._over.set()  # a waiting thread stops at its next wake
             return False
-        now = time.monotonic()
-        if now < self._next_check or now - self._last_seen > CHECK_FOR:
+        if self.halted or not self.task.halt_event:
             return False
-        self._next_check = now + CHECK_EVERY
-        if not self._halt_decided():
+        if fresh or not self._started:
+            self._started = True
+            self._keep_waiting()
+        if not self._decided.is_set():
             return False
         self.halted = True
-        if not self._command:
-            self.halt_file.touch()  # the next note() call raises Halted
         return True
 
     def _publish(self, recs: list[dict[str, Any]]) -> None:
@@ -188,15 +197,52 @@ class StepWatcher:
         for rec in recs:
             worker.log_event(self.task.topic, {**rec, "written": written})
 
-    def _halt_decided(self) -> bool:
-        try:
-            if self._event is None:
-                from distributed import Event
+    # -- the halt event -------------------------------------------------------
 
-                self._event = Event(self.task.halt_event)
-            return bool(self._event.is_set())
-        except Exception:  # noqa: BLE001 - no scheduler to ask (a direct call, a lost connection): run on
-            return False
+    def _keep_waiting(self) -> None:
+        """Make sure a thread waits on the attempt's halt event (from the first poll, and when scores arrive)."""
+        with self._lock:
+            if self._waiting or self._event is False:
+                return
+            self._waiting = True
+        context = contextvars.copy_context()  # the task's, so that get_client() in the thread finds the worker
+        threading.Thread(target=context.run, args=(self._wait,), name=f"forebear-halt-{self.task.trial}", daemon=True).start()
+
+    def _wait(self) -> None:
+        """Wait on the scheduler for the halt event, WAIT_FOR s at a time, while the attempt runs and scores arrive.
+
+        The event is set the moment the controller decides, so the halt is learnt one round trip
+        later, with one request per WAIT_FOR s instead of a check per poll. The worker's client
+        is made here (the first attempt on a worker), while the objective starts, not when its
+        first score is in.
+        """
+        if self._event is None:
+            try:
+                from distributed import Event, get_client
+
+                self._event = Event(self.task.halt_event, client=get_client())
+            except Exception:  # noqa: BLE001 - no scheduler to ask (a direct call): nobody will halt it
+                with self._lock:
+                    self._event = False
+                    self._waiting = False
+                return
+        while True:
+            try:
+                decided = bool(self._event.wait(timeout=WAIT_FOR))
+            except Exception:  # noqa: BLE001 - a lost connection: run on, as without a decision
+                decided = False
+                self._over.wait(WAIT_FOR)
+            if decided:
+                self._decided.set()
+                if not self._command and not self._over.is_set():
+                    try:
+                        self.halt_file.touch()  # the next note() call raises Halted
+                    except OSError:
+                        pass  # the attempt just ended and its scratch folder is gone
+            with self._lock:
+                if decided or self._over.is_set() or time.monotonic() - self._last_seen > CHECK_FOR:
+                    self._waiting = False
+                    return
 
     # -- the end ------------------------------------------------------------
 

@@ -307,11 +307,12 @@ class Controller(Attempts, Rounds, Opening):
 
 
 def _ready(ac: as_completed, timeout: float, controller: Controller) -> list[Any]:
-    """Futures that completed, waiting up to ``timeout`` s for the first one or a finished round."""
+    """Futures that completed, waiting up to ``timeout`` s for the first one, a finished round or a score."""
     # Check and wait under the iterator's condition: as_completed puts a future in its queue and
-    # then notifies under this condition, so a completion cannot slip between the check and the wait.
+    # then notifies under this condition (as the halting handler does after queueing a score), so a
+    # completion or a score cannot slip between the check and the wait.
     with ac.thread_condition:
         job = controller._job
-        if not ac.has_ready() and not (job is not None and job.done()):
+        if not ac.has_ready() and not (job is not None and job.done()) and not controller.halting.pending():
             ac.thread_condition.wait(timeout)
     return ac.next_batch(block=False) if ac.has_ready() else []

@@ -103,6 +103,10 @@ class Halting:
                 self._queue.append(msg)
             self._wake()
 
+    def pending(self) -> bool:
+        """True while scores wait to be drained: the loop must not sleep on them."""
+        return bool(self._queue)
+
     def drain(self, running: Mapping[int, tuple[int, str]]) -> list[str]:
         """Handle queued scores; ``running`` maps a trial to its running (attempt, Dask key). Lines for the display."""
         with self._lock:
