@@ -172,7 +172,8 @@ class StepWatcher:
                 self.logbook.append_many(fresh)
             self._publish(fresh)
         if final:
-            self._over.set()  # a waiting thread stops at its next wake
+            self._over.set()
+            self._release()
             return False
         if self.halted or not self.task.halt_event:
             return False
@@ -227,6 +228,10 @@ class StepWatcher:
                     self._waiting = False
                 return
         while True:
+            with self._lock:
+                if self._over.is_set():  # ended while the client was made: no wait to hold
+                    self._waiting = False
+                    return
             try:
                 decided = bool(self._event.wait(timeout=WAIT_FOR))
             except Exception:  # noqa: BLE001 - a lost connection: run on, as without a decision
@@ -243,6 +248,22 @@ class StepWatcher:
                 if decided or self._over.is_set() or time.monotonic() - self._last_seen > CHECK_FOR:
                     self._waiting = False
                     return
+
+    def _release(self) -> None:
+        """End a wait still held on the scheduler: set and clear the event (the attempt is over).
+
+        A wait left pending would be cancelled when the search closes its cluster, and the
+        scheduler logs every cancelled wait as an error with a traceback.
+        """
+        with self._lock:
+            event = self._event if self._waiting else None
+        if not event:
+            return
+        try:
+            event.set()
+            event.clear()  # the scheduler forgets an event that is clear and has no waiter
+        except Exception:  # noqa: BLE001 - the scheduler is gone, and the wait with it
+            pass
 
     # -- the end ------------------------------------------------------------
 
