@@ -162,6 +162,7 @@ def _run(task: AttemptTask, worker: str, cancelled: Callable[[], bool], logbook:
         outcome, status, started, seconds, since = _supervise(server, request, task, worker, logbook, cancelled, watcher)
     except RunnerError as exc:
         server.close()
+        watcher.close()
         started = record("started", trial=task.trial, attempt=task.attempt, worker=worker, host=socket.gethostname(), pid=None)
         return finish(task, result, logbook, started, None, str(exc), 0.0, log, out)
     finally:

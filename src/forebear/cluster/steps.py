@@ -172,8 +172,7 @@ class StepWatcher:
                 self.logbook.append_many(fresh)
             self._publish(fresh)
         if final:
-            self._over.set()
-            self._release()
+            self.close()
             return False
         if self.halted or not self.task.halt_event:
             return False
@@ -248,6 +247,11 @@ class StepWatcher:
                 if decided or self._over.is_set() or time.monotonic() - self._last_seen > CHECK_FOR:
                     self._waiting = False
                     return
+
+    def close(self) -> None:
+        """The attempt is over: a waiting thread stops, and a wait held on the scheduler is released."""
+        self._over.set()
+        self._release()
 
     def _release(self) -> None:
         """End a wait still held on the scheduler: set and clear the event (the attempt is over).
