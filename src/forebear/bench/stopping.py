@@ -35,7 +35,7 @@ import statistics
 import time
 import warnings
 import zlib
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -177,6 +177,34 @@ class Outcome:
     halted: int
 
 
+def _advance(
+    running: list[tuple[int, int] | None], curve_of: Callable[[int], Sequence[float]], rule: HalvingRule | None
+) -> Iterator[tuple[int, float, str | None]]:
+    """One step of every running trial: ``(index, value, end)`` per step, ``end`` None, "finished" or "halted".
+
+    The rule sees each value (and each final score) before it is yielded; a trial that ends frees
+    its worker's slot in ``running``.
+    """
+    for w, slot in enumerate(running):
+        if slot is None:
+            continue
+        i, done = slot
+        values = curve_of(i)
+        done += 1
+        value = values[done - 1]
+        if done == len(values):
+            running[w] = None
+            if rule is not None:
+                rule.finished(i, value)
+            yield i, value, "finished"
+        elif rule is not None and rule.observe(i, done, value) is not None:
+            running[w] = None
+            yield i, value, "halted"
+        else:
+            running[w] = (i, done)
+            yield i, value, None
+
+
 def simulate(
     curves: Callable[[int], Sequence[float]], n_stream: int, workers: int, rule: HalvingRule | None, target: float | None, best_index: int | None
 ) -> tuple[Outcome, float]:
@@ -194,29 +222,15 @@ def simulate(
                 nxt += 1
         if all(r is None for r in running):
             break
-        for w in range(workers):
-            slot = running[w]
-            if slot is None:
-                continue
-            i, done = slot
-            values = curves(i)
-            done += 1
+        for i, value, end in _advance(running, curves, rule):
             used += 1
-            value = values[done - 1]
-            if done == len(values):
-                running[w] = None
+            if end == "finished":
                 best = min(best, value)
-                if rule is not None:
-                    rule.finished(i, value)
                 if target is not None and value <= target:
                     return Outcome(used, True, best_halted, halted), best
-                continue
-            if rule is not None and rule.observe(i, done, value) is not None:
-                running[w] = None
+            elif end == "halted":
                 halted += 1
                 best_halted = best_halted or i == best_index
-                continue
-            running[w] = (i, done)
     return Outcome(used, target is None, best_halted, halted), best
 
 
@@ -361,32 +375,18 @@ def simulate_proposed(
                 running[w] = (len(configs) - 1, 0)
         if all(r is None for r in running):
             break
-        for w in range(workers):
-            slot = running[w]
-            if slot is None:
-                continue
-            i, done = slot
-            values = curve(configs[i])
-            done += 1
+        for i, value, end in _advance(running, lambda i: curve(configs[i]), rule):
             used += 1
-            value = values[done - 1]
-            if done == len(values):
-                running[w] = None
+            if end == "finished":
                 best = min(best, value)
                 in_budget = best if used <= budget else in_budget
                 observed.append(Observation(configs[i], float(value)))
-                if rule is not None:
-                    rule.finished(i, value)
                 if target is not None and value <= target:
                     return Outcome(used, True, False, halted), best, in_budget
-                continue
-            if rule is not None and rule.observe(i, done, value) is not None:
-                running[w] = None
+            elif end == "halted":
                 halted += 1
                 if treatment == "as-final":
                     observed.append(Observation(configs[i], float(value)))
-                continue
-            running[w] = (i, done)
     return Outcome(used, target is None, False, halted), best, in_budget
 
 

@@ -355,25 +355,19 @@ def log_posterior(model: _ExactGP, X: torch.Tensor, y: torch.Tensor) -> torch.Te
 
 
 def _optimise(model: _ExactGP, mll: Any, X: torch.Tensor, y: torch.Tensor, max_iter: int) -> float:
-    if max_iter <= 0:  # hyperparameters as given: only their value
-        try:
-            with torch.no_grad():
-                value = float(log_posterior(model, X, y))
-        except (NotPSDError, RuntimeError, ValueError):
-            return -math.inf
-        model.eval()
-        return value if math.isfinite(value) else -math.inf
-    model.train()
-    opt = torch.optim.LBFGS(model.parameters(), lr=1.0, max_iter=max_iter, line_search_fn="strong_wolfe")
-
-    def closure() -> torch.Tensor:
-        opt.zero_grad()
-        loss = -log_posterior(model, X, y)
-        loss.backward()
-        return loss
-
+    """L-BFGS on the log posterior for ``max_iter`` iterations (none: the hyperparameters as given); its final value."""
     try:
-        opt.step(closure)
+        if max_iter > 0:
+            model.train()
+            opt = torch.optim.LBFGS(model.parameters(), lr=1.0, max_iter=max_iter, line_search_fn="strong_wolfe")
+
+            def closure() -> torch.Tensor:
+                opt.zero_grad()
+                loss = -log_posterior(model, X, y)
+                loss.backward()
+                return loss
+
+            opt.step(closure)
         with torch.no_grad():
             value = float(log_posterior(model, X, y))
     except (NotPSDError, RuntimeError, ValueError):
