@@ -5,8 +5,9 @@ The model of one task, in that task's standardised units ``t``::
     t(x) = c + a * m(x) + r(x),     c ~ N(0, v_c),  a ~ N(a_0, v_a),
     r ~ GP(0, lam * (s_f * k(phi(x), phi(x')) + s_x * k_x(x, x'))),  noise s_n >= floor
 
-``phi`` is an MLP feature map and ``m`` a mean head on the same MLP (the
-history's average standardised surface); ``k`` is a Matérn-5/2 (or RBF)
+``phi`` is an MLP feature map and ``m`` a prior mean, a second small MLP
+fitted by least squares to the history's task-standardised scores (the
+history's average surface); ``k`` is a Matérn-5/2 (or RBF)
 kernel on the features and ``k_x`` a small ARD Matérn-5/2 on the raw inputs
 (so the kernel cannot collapse onto a few features). Offset ``c`` and
 amplitude ``a`` have Gaussian priors and are integrated out in closed form,
@@ -47,9 +48,13 @@ from forebear.engine.surrogate.gp import (
 )
 from forebear.engine.surrogate.meta_train import MetaReport
 
-FORMAT = 2  # bump when the state layout changes, so old cache entries are not reused
+FORMAT = 3  # bump when the state layout changes, so old cache entries are not reused
 LAMBDAS = (0.25, 0.5, 1.0, 2.0, 4.0)  # grid of the per-task residual amplitude
 LAMBDA_PRIOR_SD = 1.0  # sd of log(lam): a weak prior around the meta-trained amplitude
+# Grid of the per-task noise, as multiples of the meta-trained noise (floored at the relative
+# floor): meta-training learns the noise of warped, imperfectly fitted episodes, which for a
+# noiseless objective blurs the refinement near the best point (docs/engine.md).
+NOISE_SCALES = (1.0, 0.1, 0.01)
 _LOG_2PI = math.log(2 * math.pi)
 _SQRT5 = math.sqrt(5.0)
 
@@ -125,24 +130,28 @@ class DeepKernel(nn.Module):
             width_in = settings.width
         self.trunk = nn.Sequential(*layers)
         self.head = nn.Linear(width_in, settings.features)
-        self.mean_head = nn.Linear(width_in, 1)
+        # The prior mean: its own MLP, fitted by least squares to the history (meta_train.fit_mean),
+        # not through the episodes' likelihood, which made it a basis rather than the average.
+        self.mean_net = nn.Sequential(
+            nn.Linear(dim, settings.width), nn.Tanh(), nn.Linear(settings.width, settings.width), nn.Tanh(),
+            nn.Linear(settings.width, 1),
+        )
         # Log-variances and the raw kernel's log-lengthscales; start where standardised tasks are.
         self.log_vf = nn.Parameter(torch.tensor(math.log(0.5)))
         self.log_vx = nn.Parameter(torch.tensor(math.log(0.2)))
         self.log_lx = nn.Parameter(torch.full((dim,), math.log(0.3)))
         self.log_vc = nn.Parameter(torch.tensor(math.log(0.5)))
-        # The amplitude's prior mean starts at 0, so the mean head enters first as a basis
-        # function whose amplitude each task fits; a start at 1 measured no better (docs/engine.md).
+        # The amplitude's prior mean starts at 1: the mean is the history's average, in task units.
         self.log_va = nn.Parameter(torch.tensor(math.log(0.2)))
-        self.a0 = nn.Parameter(torch.tensor(0.0))
+        self.a0 = nn.Parameter(torch.tensor(1.0 if settings.prior_mean else 0.0))
         self.raw_noise = nn.Parameter(torch.tensor(-4.0))
         self.to(DTYPE)
 
     def parts(self, X: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
         """Features ``phi(X)`` and prior-mean head ``m(X)`` (zero without a learned mean)."""
-        h = self.trunk(2.0 * X - 1.0)
-        m = self.mean_head(h).squeeze(-1) if self.settings.prior_mean else torch.zeros(X.shape[:-1], dtype=X.dtype, device=X.device)
-        return self.head(h), m
+        u = 2.0 * X - 1.0
+        m = self.mean_net(u).squeeze(-1) if self.settings.prior_mean else torch.zeros(X.shape[:-1], dtype=X.dtype, device=X.device)
+        return self.head(self.trunk(u)), m
 
     def noise(self) -> torch.Tensor:
         return self.settings.noise_floor + softplus(self.raw_noise)
@@ -190,10 +199,21 @@ def _chol(K: torch.Tensor) -> torch.Tensor:
     return torch.linalg.cholesky(K + 1e-3 * eye)
 
 
-def _pick_lambda(ll_by_lam: torch.Tensor) -> torch.Tensor:
-    """Index of the grid value with the best marginal likelihood plus log-normal prior (last dim)."""
-    prior = torch.tensor([-0.5 * (math.log(v) / LAMBDA_PRIOR_SD) ** 2 for v in LAMBDAS], dtype=ll_by_lam.dtype, device=ll_by_lam.device)
-    return torch.argmax(ll_by_lam + prior, dim=-1)
+GRID = tuple((lam, ns) for lam in LAMBDAS for ns in NOISE_SCALES)  # the refit's (lam, noise scale) pairs
+
+
+def _pick_lambda(ll_by_grid: torch.Tensor) -> torch.Tensor:
+    """Index into :data:`GRID` with the best marginal likelihood plus the prior (last dim).
+
+    The prior is log-normal on ``lam`` and flat over the noise scales.
+    """
+    prior = torch.tensor([-0.5 * (math.log(lam) / LAMBDA_PRIOR_SD) ** 2 for lam, _ in GRID], dtype=ll_by_grid.dtype, device=ll_by_grid.device)
+    return torch.argmax(ll_by_grid + prior, dim=-1)
+
+
+def grid_noise(net: DeepKernel, scale: float | torch.Tensor) -> torch.Tensor:
+    """The noise variance at a grid scale, floored at the relative floor."""
+    return (net.noise() * scale).clamp_min(net.settings.noise_floor)
 
 
 class MetaPosterior(Predictive):
@@ -204,12 +224,13 @@ class MetaPosterior(Predictive):
 
     def __init__(
         self, net: DeepKernel, X: torch.Tensor, y: torch.Tensor, shift: float, scale: float, lam: float,
-        name: str = "deep-kernel", blocks: tuple[torch.Tensor, ...] | None = None,
+        name: str = "deep-kernel", blocks: tuple[torch.Tensor, ...] | None = None, noise_scale: float = 1.0,
     ) -> None:
         self.net, self.X, self.y = net, X, y
         self.shift, self.scale, self.lam, self.name = float(shift), float(scale), float(lam), name
+        self.noise_scale = float(noise_scale)
         with torch.no_grad():
-            self.noise = float(net.noise())
+            self.noise = float(grid_noise(net, self.noise_scale))
             # (features, mean head, affine block, residual block) of X: shared by the refit's
             # grid and extended, not recomputed, when conditioning on lies.
             self.blocks = blocks if blocks is not None else _blocks(net, X)
@@ -252,7 +273,7 @@ class MetaPosterior(Predictive):
                 torch.cat([torch.cat([A, A_on], 1), torch.cat([A_on.T, A_nn], 1)]),
                 torch.cat([torch.cat([R, R_on], 1), torch.cat([R_on.T, R_nn], 1)]),
             )
-        return MetaPosterior(net, torch.cat([self.X, X_new]), torch.cat([self.y, y_new]), self.shift, self.scale, self.lam, self.name, blocks)
+        return MetaPosterior(net, torch.cat([self.X, X_new]), torch.cat([self.y, y_new]), self.shift, self.scale, self.lam, self.name, blocks, self.noise_scale)
 
 
 def _blocks(net: DeepKernel, X: torch.Tensor) -> tuple[torch.Tensor, ...]:
@@ -298,7 +319,7 @@ class MetaModel:
 
         Scores are standardised on their own mean and spread; offset and amplitude are
         integrated out; with ``fine_tune`` the residual amplitude is chosen on the grid
-        ``LAMBDAS`` (otherwise it stays at the meta-trained value).
+        ``LAMBDAS`` and the noise on ``NOISE_SCALES`` (otherwise both stay at the meta-trained values).
         """
         y = np.asarray(y, float)
         idx = subset(y, max_exact, np.random.default_rng(seed))
@@ -308,7 +329,7 @@ class MetaModel:
             return MetaPosterior(self.net, Xt, yt, shift, scale, 1.0)
         with torch.no_grad():
             blocks = _blocks(self.net, Xt)
-        posts = [MetaPosterior(self.net, Xt, yt, shift, scale, lam, blocks=blocks) for lam in LAMBDAS]
+        posts = [MetaPosterior(self.net, Xt, yt, shift, scale, lam, blocks=blocks, noise_scale=ns) for lam, ns in GRID]
         best = int(_pick_lambda(torch.stack([p.lml for p in posts])))
         return posts[best]
 

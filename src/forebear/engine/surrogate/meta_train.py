@@ -59,10 +59,13 @@ def train(model: MetaModel, tasks: Sequence[tuple[np.ndarray, np.ndarray]]) -> M
     hold = [data[i] for i in order[:n_hold]]
     rest = [data[i] for i in order[n_hold:]]
     val = val_episodes(hold, rng, s.max_support)
-    model.net.requires_grad_(True)
-    opt = torch.optim.Adam(model.net.parameters(), lr=s.lr)
-    max_steps = s.max_steps if val else min(s.max_steps, 500)
     first = val_nll(model.net, val) if val else None
+    if s.prior_mean:
+        fit_mean(model.net, rest)
+    model.net.requires_grad_(True)
+    model.net.mean_net.requires_grad_(False)  # fitted above; the episodes train the rest
+    opt = torch.optim.Adam([p for p in model.net.parameters() if p.requires_grad], lr=s.lr)
+    max_steps = s.max_steps if val else min(s.max_steps, 500)
     best_nll, best_state, since, step = math.inf, None, 0, 0
     for step in range(1, max_steps + 1):
         n_s = int(rng.integers(1, s.max_support + 1))
@@ -89,12 +92,42 @@ def train(model: MetaModel, tasks: Sequence[tuple[np.ndarray, np.ndarray]]) -> M
     return MetaReport(step, time.perf_counter() - start, len(hold), best_nll if val else None, first)
 
 
+MEAN_STEPS = 400  # full-batch Adam steps of the prior mean's least-squares fit
+MEAN_LR = 1e-2
+
+
+def fit_mean(net: DeepKernel, tasks: Sequence[tuple[torch.Tensor, torch.Tensor]]) -> float:
+    """Fit the prior mean by least squares to every task's standardised scores; the final mean squared error.
+
+    Each task weighs the same (its points are weighted by one over its size), so a long
+    earlier search does not outweigh a short one. The result is the history's average
+    standardised surface, which the episodes then scale and shift per task.
+    """
+    X = torch.cat([x for x, _ in tasks])
+    t = torch.cat([tt for _, tt in tasks])
+    w = torch.cat([torch.full((len(tt),), 1.0 / len(tt), dtype=t.dtype, device=t.device) for _, tt in tasks])
+    w = w / w.sum()
+    mean_net = net.mean_net
+    mean_net.requires_grad_(True)
+    opt = torch.optim.Adam(mean_net.parameters(), lr=MEAN_LR)
+    u = 2.0 * X - 1.0
+    for _ in range(MEAN_STEPS):
+        loss = (w * (mean_net(u).squeeze(-1) - t) ** 2).sum()
+        opt.zero_grad()
+        loss.backward()
+        opt.step()
+    mean_net.requires_grad_(False)
+    with torch.no_grad():
+        return float((w * (mean_net(u).squeeze(-1) - t) ** 2).sum())
+
+
 def episode_ll(net: DeepKernel, episodes: Sequence[tuple[torch.Tensor, ...]]) -> torch.Tensor:
     """Query log-likelihood per point of a batch of same-size episodes, after the proposal-time refit."""
     from forebear.engine.surrogate.deep_kernel import (  # the module that imports this one
-        LAMBDAS,
+        GRID,
         _lml,
         _pick_lambda,
+        grid_noise,
     )
 
     Xs = torch.stack([e[0] for e in episodes])
@@ -106,18 +139,20 @@ def episode_ll(net: DeepKernel, episodes: Sequence[tuple[torch.Tensor, ...]]) ->
     Zq, mq = net.parts(Xq)
     A_ss, R_ss = net.affine(ms, ms), net.residual(Xs, Zs, Xs, Zs)
     eye = torch.eye(Xs.shape[1], dtype=Xs.dtype, device=Xs.device)
-    noise = net.noise()
     mean_s = net.a0 * ms
     with torch.no_grad():  # the refit's grid choice, as at proposal time
-        lls = torch.stack([_lml(ts, mean_s, A_ss + lam * R_ss + noise * eye)[0] for lam in LAMBDAS], -1)
-        lam = torch.tensor(LAMBDAS, dtype=Xs.dtype, device=Xs.device)[_pick_lambda(lls)]
+        lls = torch.stack([_lml(ts, mean_s, A_ss + lam * R_ss + grid_noise(net, ns) * eye)[0] for lam, ns in GRID], -1)
+        pick = _pick_lambda(lls)
+        lam = torch.tensor([g[0] for g in GRID], dtype=Xs.dtype, device=Xs.device)[pick]
+        scales = torch.tensor([g[1] for g in GRID], dtype=Xs.dtype, device=Xs.device)[pick]
     lam3 = lam.view(-1, 1, 1)
-    _, L, alpha = _lml(ts, mean_s, A_ss + lam3 * R_ss + noise * eye)
+    noise = grid_noise(net, scales)  # per episode, differentiable in the meta-trained noise
+    _, L, alpha = _lml(ts, mean_s, A_ss + lam3 * R_ss + noise.view(-1, 1, 1) * eye)
     Kqs = net.affine(mq, ms) + lam3 * net.residual(Xq, Zq, Xs, Zs)
     mu = net.a0 * mq + (Kqs @ alpha.unsqueeze(-1)).squeeze(-1)
     v = torch.linalg.solve_triangular(L, Kqs.transpose(-1, -2), upper=False)
     prior = torch.exp(net.log_vc) + torch.exp(net.log_va) * mq * mq + lam.view(-1, 1) * net.residual_var()
-    var = (prior - (v * v).sum(-2)).clamp_min(1e-9) + noise
+    var = (prior - (v * v).sum(-2)).clamp_min(1e-9) + noise.view(-1, 1)
     ll = -0.5 * (torch.log(var) + (tq - mu) ** 2 / var + _LOG_2PI)
     return ll.mean(-1) - log_scale  # per point, in the task's standardised units
 
