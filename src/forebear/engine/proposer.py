@@ -45,7 +45,7 @@ from forebear.engine.runtime import threads as _threads
 from forebear.engine.surrogate.deep_kernel import MetaModel, Settings, cache_key
 from forebear.engine.surrogate.gp import Posterior, as_tensor, feasibility
 from forebear.engine.surrogate.select import Choice, Prequential, choose
-from forebear.engine.warmstart import extend_design, initial_design
+from forebear.engine.warmstart import extend_design, gp_imputer, initial_design
 
 MODELS = ("auto", "gp", "deep-kernel")
 FAILED = ("impute", "classifier")
@@ -318,14 +318,7 @@ class Proposer:
     def _design(self, k: int) -> list[dict[str, Any]]:
         if not (self.tasks and self.warm_start):
             return self.space.latin_hypercube(k, seed=self.seed)
-        meta = self.meta_model()
-        impute = None
-        if meta is not None:
-            tasks = self.tasks
-
-            def impute(j: int, Xq: np.ndarray) -> np.ndarray:
-                return meta.impute(tasks[j].X, tasks[j].y, Xq)
-
+        impute = gp_imputer(self.tasks, seed=self.seed) if self.meta_model() is not None else None
         return initial_design(self.space, k, tasks=self.tasks, impute=impute, seed=self.seed, share=self.history_share)
 
     def _model_batch(

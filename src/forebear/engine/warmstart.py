@@ -3,8 +3,8 @@
 With history: an evolutionary search over history configurations for the
 ``k`` configurations that minimise the sum over history tasks of the
 task-normalised best score within the set. A set member that a task did not
-observe gets that task's score imputed by the meta-trained model (or, without
-one, the task's worst normalised score, 1). Mutation replaces one member with
+observe gets that task's score imputed by a plain GP fitted to that task
+(:func:`gp_imputer`; without imputation, the task's worst normalised score, 1). Mutation replaces one member with
 another history configuration; crossover draws a child from the union of two
 good sets. Without history: a Latin hypercube scaled to the space (log
 parameters on their log scale).
@@ -20,9 +20,36 @@ from scipy.stats import qmc
 
 from forebear.core.space import Space
 from forebear.engine.acquisition import keys, project
+from forebear.engine.surrogate.gp import fit_gp, subset
 
 # impute(task_index, X_query) -> task-normalised predicted scores in [0, 1]
 Imputer = Callable[[int, np.ndarray], np.ndarray]
+IMPUTE_FIT_POINTS = 300  # a history task's GP fits its hyperparameters on at most this many points
+
+
+def gp_imputer(tasks: Sequence[Any], seed: int = 0) -> Imputer:
+    """Impute each history task's scores by a plain GP fitted to that task alone.
+
+    Hyperparameters are fitted on at most :data:`IMPUTE_FIT_POINTS` of the task's
+    points (its best half and a random draw from the rest, ``gp.subset``), the
+    posterior conditions on all of them; each task is fitted once, when first asked.
+    A per-task GP measured better than the meta-trained model's imputation on the
+    hartmann families (docs/engine.md, "The warm start").
+    """
+    posts: dict[int, Any] = {}
+
+    def impute(j: int, X_query: np.ndarray) -> np.ndarray:
+        t = tasks[j]
+        y = np.asarray(t.y, float)
+        if j not in posts:
+            idx = subset(y, IMPUTE_FIT_POINTS, np.random.default_rng([seed, j]))
+            fit = fit_gp(t.X[idx], y[idx], restarts=1, seed=seed)
+            posts[j] = fit_gp(t.X, y, init=fit.state, max_iter=0, seed=seed).posterior if len(idx) < len(y) else fit.posterior
+        lo, hi = float(y.min()), float(y.max())
+        mean = np.asarray(posts[j].predict(np.asarray(X_query, float))[0], float)
+        return (mean - lo) / (hi - lo if hi - lo > 1e-12 else 1.0)
+
+    return impute
 
 
 def initial_design(

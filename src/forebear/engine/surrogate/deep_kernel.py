@@ -118,7 +118,7 @@ def _rbf_r(r: torch.Tensor) -> torch.Tensor:
 
 
 class DeepKernel(nn.Module):
-    """Feature map, mean head and the kernel's few global hyperparameters."""
+    """Feature map, prior mean and the kernel's few global hyperparameters."""
 
     def __init__(self, dim: int, settings: Settings) -> None:
         super().__init__()
@@ -148,7 +148,7 @@ class DeepKernel(nn.Module):
         self.to(DTYPE)
 
     def parts(self, X: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
-        """Features ``phi(X)`` and prior-mean head ``m(X)`` (zero without a learned mean)."""
+        """Features ``phi(X)`` and prior mean ``m(X)`` (zero without a learned mean)."""
         u = 2.0 * X - 1.0
         m = self.mean_net(u).squeeze(-1) if self.settings.prior_mean else torch.zeros(X.shape[:-1], dtype=X.dtype, device=X.device)
         return self.head(self.trunk(u)), m
@@ -231,7 +231,7 @@ class MetaPosterior(Predictive):
         self.noise_scale = float(noise_scale)
         with torch.no_grad():
             self.noise = float(grid_noise(net, self.noise_scale))
-            # (features, mean head, affine block, residual block) of X: shared by the refit's
+            # (features, prior mean, affine block, residual block) of X: shared by the refit's
             # grid and extended, not recomputed, when conditioning on lies.
             self.blocks = blocks if blocks is not None else _blocks(net, X)
             self._Z, self._m, A, R = self.blocks
