@@ -9,7 +9,7 @@ import numpy as np
 import pytest
 
 from forebear.core.space import Space
-from forebear.engine.warmstart import evolve, initial_design, set_score
+from forebear.engine.warmstart import evolve, gp_imputer, initial_design, set_score
 from forebear.records.history import Task
 
 SPACE = Space.from_dict({"a": {"float": [0.0, 1.0]}, "b": {"int": [1, 9]}, "c": {"categories": ["x", "y"]}})
@@ -85,6 +85,25 @@ def test_imputation_decides_for_configurations_a_task_did_not_see() -> None:
             return np.where(np.all(np.isclose(Xq, x_target), axis=1), 0.0, 1.0)
 
         assert initial_design(SPACE, 1, tasks=tasks, impute=impute, seed=0) == [target]
+
+
+def test_the_gp_imputer_predicts_a_task_in_its_own_normalised_units() -> None:
+    # Branin (Surjanovic & Bingham's library of test functions) on the unit square, 40
+    # observed points: the imputer's predictions at 200 unseen points are on the task's
+    # [min, max] scale of the observed scores and rank the points as Branin does.
+    from scipy.stats import spearmanr
+
+    from forebear.bench.functions import branin
+
+    rng = np.random.default_rng(0)
+    X, Xq = rng.random((40, 2)), rng.random((200, 2))
+    y = np.array([branin(x) for x in X])
+    impute = gp_imputer([Task("b", [{}] * 40, X, y)], seed=0)
+    pred = impute(0, Xq)
+    truth = (np.array([branin(x) for x in Xq]) - y.min()) / (y.max() - y.min())
+    assert np.all(np.isfinite(pred)) and spearmanr(pred, truth)[0] > 0.9
+    np.testing.assert_allclose(impute(0, X), (y - y.min()) / (y.max() - y.min()), atol=0.02)  # it interpolates
+    assert impute(0, Xq) is not pred and np.array_equal(impute(0, Xq), pred)  # fitted once, same answer
 
 
 def test_share_and_fill_from_a_latin_hypercube() -> None:

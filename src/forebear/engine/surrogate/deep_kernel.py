@@ -333,13 +333,6 @@ class MetaModel:
         best = int(_pick_lambda(torch.stack([p.lml for p in posts])))
         return posts[best]
 
-    def impute(self, X: np.ndarray, y: np.ndarray, X_query: np.ndarray) -> np.ndarray:
-        """Task-normalised ([0, 1]) predicted scores at ``X_query`` for a task observed at ``(X, y)``."""
-        y = np.asarray(y, float)
-        lo, hi = float(np.min(y)), float(np.max(y))
-        mean = self.posterior(X, y, fine_tune=False).predict(X_query)[0]
-        return (mean - lo) / (hi - lo if hi - lo > 1e-12 else 1.0)
-
     # -- state --------------------------------------------------------------
 
     def state_dict(self) -> dict[str, torch.Tensor]:
