@@ -104,7 +104,8 @@ def test_conditioning_on_a_lie_pins_the_prediction(trained: MetaModel) -> None:
     m, v = cond.predict(Xs[:1])
     assert abs(m[0] - y.min()) < 0.2 * np.std(y) and v[0] < post.predict(Xs[:1])[1][0]
     # Extending the stored blocks gives the posterior built from scratch on all points.
-    fresh = MetaPosterior(trained.net, torch.cat([post.X, x]), torch.cat([post.y, cond.y[-1:]]), post.shift, post.scale, post.lam)
+    fresh = MetaPosterior(trained.net, torch.cat([post.X, x]), torch.cat([post.y, cond.y[-1:]]), post.shift, post.scale, post.lam,
+                           noise_scale=post.noise_scale)
     np.testing.assert_allclose(cond.predict(Xs)[0], fresh.predict(Xs)[0], rtol=1e-7, atol=1e-9)
     np.testing.assert_allclose(cond.predict(Xs)[1], fresh.predict(Xs)[1], rtol=1e-6, atol=1e-10)
 
