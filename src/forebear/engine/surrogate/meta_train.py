@@ -92,7 +92,8 @@ def train(model: MetaModel, tasks: Sequence[tuple[np.ndarray, np.ndarray]]) -> M
     return MetaReport(step, time.perf_counter() - start, len(hold), best_nll if val else None, first)
 
 
-MEAN_STEPS = 400  # full-batch Adam steps of the prior mean's least-squares fit
+MEAN_STEPS = 400  # Adam steps of the prior mean's least-squares fit
+MEAN_BATCH = 3000  # points per step, drawn by the tasks' weights (the full data when smaller)
 MEAN_LR = 1e-2
 
 
@@ -111,8 +112,13 @@ def fit_mean(net: DeepKernel, tasks: Sequence[tuple[torch.Tensor, torch.Tensor]]
     mean_net.requires_grad_(True)
     opt = torch.optim.Adam(mean_net.parameters(), lr=MEAN_LR)
     u = 2.0 * X - 1.0
+    gen = torch.Generator(device=X.device).manual_seed(net.settings.seed)
     for _ in range(MEAN_STEPS):
-        loss = (w * (mean_net(u).squeeze(-1) - t) ** 2).sum()
+        if len(t) > MEAN_BATCH:  # a minibatch: full passes over 30 tasks x 300 points took 13 s of CPU
+            idx = torch.multinomial(w, MEAN_BATCH, replacement=True, generator=gen)
+            loss = ((mean_net(u[idx]).squeeze(-1) - t[idx]) ** 2).mean()
+        else:
+            loss = (w * (mean_net(u).squeeze(-1) - t) ** 2).sum()
         opt.zero_grad()
         loss.backward()
         opt.step()
