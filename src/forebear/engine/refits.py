@@ -69,7 +69,6 @@ class Refits:
         if len(y) > INTEGRATE_UPTO:
             return [post], [1.0]
         try:
-            centre = post.kernel.base_kernel.lengthscale.detach().cpu()
-            return samples.mixture(X, y, seed=self.seed + len(y), centre=centre, device=self.device)
+            return samples.mixture(X, y, seed=self.seed + len(y), device=self.device)
         except ValueError:
             return [post], [1.0]

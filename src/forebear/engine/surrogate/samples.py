@@ -9,16 +9,13 @@ acquisition of Snoek, Larochelle & Adams ("Practical Bayesian Optimization of
 Machine Learning Algorithms", NeurIPS 2012) averages EI over the
 hyperparameter posterior instead of plugging in one point of it.
 
-The cheap form here is importance sampling: ``draws`` lengthscale vectors,
-half from the lengthscale prior of :mod:`forebear.engine.surrogate.gp` and
-half (when the fitted lengthscales are given) from a log-normal of sd
-:data:`CENTRE_SD` around them, a defensive mixture proposal (Hesterberg 1995),
-and as many noise-to-signal ratios from its
+The cheap form here is importance sampling with the prior as proposal:
+``draws`` lengthscale vectors from the lengthscale prior of
+:mod:`forebear.engine.surrogate.gp` and as many noise-to-signal ratios from its
 noise prior (read as a prior on the ratio, since targets are standardised),
 with the constant mean and the outputscale profiled out in closed form (their
 maximum-likelihood values given the rest). Each draw is weighted by its
-marginal likelihood times prior over proposal density (the clamp to the
-lengthscale bounds is ignored there); ``keep`` of them are then drawn by systematic resampling
+marginal likelihood; ``keep`` of them are then drawn by systematic resampling
 (Kitagawa 1996), and a draw picked ``c`` times gets weight ``c / keep``. The
 acquisition scores the weighted mixture of their posteriors
 (:class:`forebear.engine.acquisition.Scorer`).
@@ -46,7 +43,6 @@ from forebear.engine.surrogate.gp import (
 
 DRAWS = 512  # hyperparameter vectors drawn from the prior
 KEEP = 8  # resampled components of the mixture
-CENTRE_SD = 0.5  # sd of log l for the draws around the fitted lengthscales (our choice)
 _LS = (5e-3, 20.0)  # the plain GP's lengthscale bounds (gp._ExactGP)
 _OUTPUTSCALE = (0.05, 20.0)  # and its outputscale bounds
 _LOG_2PI = math.log(2 * math.pi)
@@ -83,12 +79,6 @@ def profiled(X: torch.Tensor, t: torch.Tensor, ls: torch.Tensor, ratio: torch.Te
     return torch.where(ok & torch.isfinite(ll), ll, torch.full_like(ll, -math.inf)), mean, s2
 
 
-def _normal(x: torch.Tensor, mu: float | torch.Tensor, sd: float) -> torch.Tensor:
-    """Log density of independent ``N(mu, sd^2)`` coordinates, summed over the last axis."""
-    z = (x - mu) / sd
-    return (-0.5 * z * z - math.log(sd) - 0.5 * _LOG_2PI).sum(-1)
-
-
 def resample(logw: np.ndarray, keep: int, rng: np.random.Generator) -> dict[int, float]:
     """Systematic resampling of ``keep`` indices by log weights ``logw``: index -> weight
     (its count over ``keep``); the weights sum to 1."""
@@ -107,12 +97,10 @@ def mixture(
     draws: int = DRAWS,
     keep: int = KEEP,
     seed: int = 0,
-    centre: torch.Tensor | np.ndarray | None = None,
     device: torch.device | str = "cpu",
 ) -> tuple[list[Posterior], list[float]]:
     """Posteriors of the plain GP at ``keep`` resampled hyperparameter draws and their weights
-    (summing to 1), for scores ``y`` (lower is better) at encoded points ``X``. With ``centre``
-    (the fitted lengthscales), half the draws come from around it (see the module docstring).
+    (summing to 1), for scores ``y`` (lower is better) at encoded points ``X``.
 
     Raises ``ValueError`` when no draw has a finite likelihood.
     """
@@ -122,25 +110,14 @@ def mixture(
     t = as_tensor((y - shift) / scale, device)
     d = Xt.shape[-1]
     gen = torch.Generator().manual_seed(int(seed))
-    mu, sd = lengthscale_mu(d), math.sqrt(LENGTHSCALE_SIGMA2)
-    log_ls = mu + sd * torch.randn(draws, d, generator=gen, dtype=DTYPE)
-    log_q = torch.zeros(draws, dtype=DTYPE)  # log proposal density over prior density
-    if centre is not None:
-        # Half the draws around the fitted lengthscales: the prior alone puts few draws near a
-        # posterior that more points have narrowed. Weights carry prior / proposal.
-        c = torch.log(torch.as_tensor(centre, dtype=DTYPE).reshape(1, d))
-        half = draws // 2
-        log_ls[half:] = c + CENTRE_SD * torch.randn(draws - half, d, generator=gen, dtype=DTYPE)
-        log_prior = _normal(log_ls, mu, sd)
-        log_near = _normal(log_ls, c, CENTRE_SD)
-        log_q = torch.logaddexp(log_prior, log_near) - math.log(2.0) - log_prior
-    ls = torch.exp(log_ls).clamp(*_LS).to(device)
+    z = torch.randn(draws, d, generator=gen, dtype=DTYPE)
+    ls = torch.exp(lengthscale_mu(d) + math.sqrt(LENGTHSCALE_SIGMA2) * z).clamp(*_LS).to(device)
     zn = torch.randn(draws, generator=gen, dtype=DTYPE)
     # The noise floor holds even at the smallest outputscale.
     ratio = torch.exp(NOISE_MU + math.sqrt(NOISE_SIGMA2) * zn).clamp_min(NOISE_FLOOR / _OUTPUTSCALE[0]).to(device)
     with torch.no_grad():
         ll, mean, s2 = profiled(Xt, t, ls, ratio)
-    logw = ll.cpu().numpy() - log_q.numpy()
+    logw = ll.cpu().numpy()
     if not np.isfinite(logw).any():
         raise ValueError("no hyperparameter draw has a finite marginal likelihood")
     picked = resample(logw, keep, np.random.default_rng([int(seed), len(y)]))
