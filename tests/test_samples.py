@@ -12,7 +12,7 @@ import torch
 from forebear.core.space import Space
 from forebear.engine.acquisition import Scorer, log_ei
 from forebear.engine.proposer import Observation, Proposer
-from forebear.engine.refits import INTEGRATE_UPTO
+from forebear.engine.refits import integrate_upto
 from forebear.engine.surrogate import samples
 from forebear.engine.surrogate.gp import _ExactGP, as_tensor, exact_mll
 
@@ -114,6 +114,6 @@ def test_proposer_mixes_only_on_few_points_and_records_gp() -> None:
     assert p.last_choice is not None and len(p.last_choice.models) > 1
     assert p.last_choice.name == "gp" and sum(p.last_choice.weights) == pytest.approx(1.0)
     rng = np.random.default_rng(1)
-    many = [Observation({"x": float(a), "y": float(b)}, float(a * a + b * b)) for a, b in rng.uniform(-1, 1, (INTEGRATE_UPTO + 1, 2))]
+    many = [Observation({"x": float(a), "y": float(b)}, float(a * a + b * b)) for a, b in rng.uniform(-1, 1, (integrate_upto(2) + 1, 2))]
     [prop] = p.propose(1, many)
     assert prop.model == "gp" and len(p.last_choice.models) == 1

@@ -11,7 +11,7 @@ on the current points) until the search has :data:`REFIT_GROWTH` more, since a
 few more points barely move them and the fit was a fifth of a round's time at
 200 points (docs/engine.md).
 
-Without a meta-trained model, a search with up to :data:`INTEGRATE_UPTO` scores hands
+Without a meta-trained model, a search with up to :func:`integrate_upto` scores hands
 the acquisition a mixture over the hyperparameter posterior instead
 (:mod:`forebear.engine.surrogate.samples`; docs/engine.md, "The bowl through
 `forebear run`").
@@ -29,9 +29,12 @@ from forebear.engine.surrogate.gp import Posterior, fit_gp
 
 FEW = 40  # observations up to which every refit also tries the default start
 REFIT_GROWTH = 0.1  # past FEW, hyperparameters are refitted once the observations grew by this fraction
-# Scores up to which the plain GP alone is integrated over its hyperparameters: on the bowl,
-# branin and hartmann3, 10 measured better than 2 (d + 1) (docs/engine.md); in 2-D and 3-D only.
-INTEGRATE_UPTO = 10
+
+
+def integrate_upto(dim: int) -> int:
+    """Scores up to which the plain GP alone is integrated over its hyperparameters, ``2 (dim + 1)``:
+    a constant 10 measured worse on the smoke benchmark's branin (docs/engine.md)."""
+    return 2 * (dim + 1)
 
 
 class Refits:
@@ -61,12 +64,12 @@ class Refits:
     def mixture(self, X: np.ndarray, y: np.ndarray) -> tuple[list[Posterior], list[float]]:
         """This round's plain GP as the acquisition takes it: posteriors and weights.
 
-        Up to :data:`INTEGRATE_UPTO` scores, the mixture of :func:`samples.mixture`;
+        Up to :func:`integrate_upto` scores, the mixture of :func:`samples.mixture`;
         past that, the fitted posterior alone. The fit runs either way, so that
         its warm start is there when the mixture stops.
         """
         post = self.posterior(X, y)
-        if len(y) > INTEGRATE_UPTO:
+        if len(y) > integrate_upto(X.shape[-1]):
             return [post], [1.0]
         try:
             return samples.mixture(X, y, seed=self.seed + len(y), device=self.device)
