@@ -372,8 +372,10 @@ class Proposer:
         meta = self.meta_model()
         if meta is not None:
             models["deep-kernel"] = meta.posterior(X, y, fine_tune=self.fine_tune, seed=self.seed)
-        guarded = meta is not None and self.model == "auto" and self.guard
-        if meta is None or (guarded and len(y) >= GUARD_FROM):
+        if meta is None:  # the plain GP alone, integrated over its hyperparameters on few points
+            return Choice(*self._gp.mixture(X, y), "gp")
+        guarded = self.model == "auto" and self.guard
+        if guarded and len(y) >= GUARD_FROM:
             models["gp"] = self._gp.posterior(X, y)
         if not guarded:
             return choose(models, None, prefer="deep-kernel")

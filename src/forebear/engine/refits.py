@@ -10,6 +10,11 @@ hyperparameters fitted on ``n`` points are kept (only the posterior is rebuilt
 on the current points) until the search has :data:`REFIT_GROWTH` more, since a
 few more points barely move them and the fit was a fifth of a round's time at
 200 points (docs/engine.md).
+
+Without a meta-trained model, a search with up to :func:`integrate_upto` scores hands
+the acquisition a mixture over the hyperparameter posterior instead
+(:mod:`forebear.engine.surrogate.samples`; docs/engine.md, "The bowl through
+`forebear run`").
 """
 
 from __future__ import annotations
@@ -19,10 +24,17 @@ import math
 import numpy as np
 import torch
 
+from forebear.engine.surrogate import samples
 from forebear.engine.surrogate.gp import Posterior, fit_gp
 
 FEW = 40  # observations up to which every refit also tries the default start
 REFIT_GROWTH = 0.1  # past FEW, hyperparameters are refitted once the observations grew by this fraction
+
+
+def integrate_upto(dim: int) -> int:
+    """Scores up to which the plain GP alone is integrated over its hyperparameters, ``2 (dim + 1)``:
+    a constant 10 measured worse on the smoke benchmark's branin (docs/engine.md)."""
+    return 2 * (dim + 1)
 
 
 class Refits:
@@ -48,3 +60,18 @@ class Refits:
         fit = fit_gp(X, y, restarts=restarts, init=self.state, seed=self.seed, device=self.device)
         self.state, self.n = fit.state, len(y)
         return fit.posterior
+
+    def mixture(self, X: np.ndarray, y: np.ndarray) -> tuple[list[Posterior], list[float]]:
+        """This round's plain GP as the acquisition takes it: posteriors and weights.
+
+        Up to :func:`integrate_upto` scores, the mixture of :func:`samples.mixture`;
+        past that, the fitted posterior alone. The fit runs either way, so that
+        its warm start is there when the mixture stops.
+        """
+        post = self.posterior(X, y)
+        if len(y) > integrate_upto(X.shape[-1]):
+            return [post], [1.0]
+        try:
+            return samples.mixture(X, y, seed=self.seed + len(y), device=self.device)
+        except ValueError:
+            return [post], [1.0]
