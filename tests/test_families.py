@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from scipy.stats import spearmanr
 
 from forebear.bench import functions
 from forebear.bench.families import (
@@ -144,7 +145,7 @@ def test_history_size_grows_the_family_but_keeps_the_held_out_tasks() -> None:
     assert [t.name for t in big.history_for(2).tasks] == [f"branin-{i}" for i in (0, 1, 3, 4)]
     big.history_tasks = 2
     assert [t.name for t in big.history_for(0).tasks] == ["branin-1", "branin-2"]
-    with pytest.raises(ValueError, match="history_kind must be one of sobol, searches"):
+    with pytest.raises(ValueError, match="history_kind must be one of sobol, searches, shuffled"):
         make_family("branin", history_kind="grid")
     with pytest.raises(ValueError, match="family hgb has 24 tasks: at most 23 history tasks, got 30"):
         make_family("hgb", history_tasks=30)
@@ -165,6 +166,16 @@ def test_searched_history_is_a_cached_gp_search_near_each_optimum(tmp_path) -> N
     fam.tasks[1].objective = None  # type: ignore[assignment]
     configs, y = searched(fam, 1)
     assert configs == hist.tasks[0].configs and np.array_equal(y, hist.tasks[0].y)
+
+
+def test_shuffled_history_keeps_the_design_and_the_scores_but_not_their_pairing() -> None:
+    fam = make_family("branin", n_tasks=3, n_points=64, history_kind="shuffled")
+    for t, j in zip(fam.history_for(0).tasks, (1, 2), strict=True):
+        task = fam.tasks[j]
+        assert t.configs == task.configs and sorted(t.y) == sorted(task.y)
+        assert abs(spearmanr(t.y, task.y)[0]) < 0.3  # the permutation destroys the pairing
+    again = make_family("branin", n_tasks=3, n_points=64, history_kind="shuffled").history_for(0)
+    assert np.array_equal(again.tasks[0].y, fam.history_for(0).tasks[0].y)  # fixed per task
 
 
 def test_unit_space_is_identity_encoded() -> None:

@@ -26,7 +26,10 @@ or ``"searches"``, what a user's earlier search of it would have left: 20-50
 trials (drawn per task) of forebear's plain-GP search (``Proposer`` with
 ``model="gp"``, run synchronously one trial at a time), so the points cluster
 near that task's optimum. Those searches are cached on disk (see
-``searched``). ``history_tasks`` sets how many other tasks a held-out task's
+``searched``). ``"shuffled"`` is the Sobol design with each task's scores
+permuted among its points (a fixed permutation per task): history with the
+right format and no information, for the unrelated-history check.
+``history_tasks`` sets how many other tasks a held-out task's
 history holds (the first ones of the family, in order, so a smaller history
 is part of a larger one); an analytic family grows to hold them, while the
 held-out tasks stay among the first ``n_tasks``.
@@ -55,7 +58,7 @@ from forebear.core.space import Space
 from forebear.records.history import History, Task
 
 DATA = Path(__file__).parent / "data" / "hgb_tasks.csv.gz"
-HISTORY_KINDS = ("sobol", "searches")
+HISTORY_KINDS = ("sobol", "searches", "shuffled")
 #: Trials of one searched history task, drawn per task from this range (inclusive).
 SEARCH_TRIALS = (20, 50)
 #: Bump when the way searched histories are made changes: older cache entries are then ignored.
@@ -118,7 +121,9 @@ class Family:
         out = []
         for j in others:
             t = self.tasks[j]
-            configs, y = (t.configs, t.y) if self.history_kind == "sobol" else searched(self, j)
+            configs, y = (t.configs, t.y) if self.history_kind != "searches" else searched(self, j)
+            if self.history_kind == "shuffled":
+                y = np.random.default_rng([7, j]).permutation(np.asarray(y, dtype=float))
             out.append(Task(t.name, [dict(c) for c in configs], self.space.encode_many(configs), np.asarray(y, dtype=float)))
         return History(out, [])
 
