@@ -106,6 +106,17 @@ def test_forebear_full_beats_random_search_on_branin() -> None:
     assert mr["forebear-full"] < mr["random"], mr
 
 
+@pytest.mark.slow
+def test_the_smoke_run_puts_forebear_full_ahead_of_random_search_and_the_plain_gp() -> None:
+    # Issue 11's goal for `forebear bench quality --smoke --json`, on the command's own protocol
+    # (about 1.5 minutes on 2 cores). Measured 2026-12-02: forebear full 0.00046, plain GP 0.0051,
+    # random 0.0222 (docs/benchmarks.md); the margin asked here is only the ordering.
+    out = quality.main(smoke=True)
+    mr = out["mean_regret"]
+    assert set(mr) == {"random", "gp", "forebear-cold", "forebear-full"} and out["runs"] == 6
+    assert mr["forebear-full"] < mr["gp"] and mr["forebear-full"] < mr["random"], mr
+
+
 def test_forebear_cold_reuses_the_gp_curve_only_when_it_is_the_same_search() -> None:
     # The run reuses `gp`'s curve for `forebear-cold` (no history: the plain-GP branch every
     # round). Check that claim against a real run of both, and that history-using methods
