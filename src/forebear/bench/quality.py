@@ -351,7 +351,7 @@ def summarise(results: Sequence[Mapping[str, Any]], proto: Protocol) -> dict[str
         regret = {m: {t: interval(c[m][:, t - 1]) for t in checkpoints} for m in proto.methods}
         seq = [m for m in proto.methods if METHODS[m].q == 1]
         ranks: dict[str, dict[int, float]] = {m: {} for m in seq}
-        for t in checkpoints:
+        for t in checkpoints if seq else ():  # ranks compare sequential methods; a run may hold none
             table = np.column_stack([c[m][:, t - 1] for m in seq])
             r = np.apply_along_axis(rankdata, 1, table).mean(axis=0)
             for m, v in zip(seq, r, strict=True):
