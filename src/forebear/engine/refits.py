@@ -31,10 +31,15 @@ FEW = 40  # observations up to which every refit also tries the default start
 REFIT_GROWTH = 0.1  # past FEW, hyperparameters are refitted once the observations grew by this fraction
 
 
+INTEGRATE_CAP = 20  # a cost bound: 512 draws of n x n matrices; unchanged for the measured d = 2, 3, 6
+
+
 def integrate_upto(dim: int) -> int:
-    """Scores up to which the plain GP alone is integrated over its hyperparameters, ``2 (dim + 1)``:
-    a constant 10 measured worse on the smoke benchmark's branin (docs/engine.md)."""
-    return 2 * (dim + 1)
+    """Scores up to which the plain GP alone is integrated over its hyperparameters, ``2 (dim + 1)``
+    (a constant 10 measured worse on the smoke benchmark's branin, docs/engine.md), at most
+    :data:`INTEGRATE_CAP`, so that a wide encoded space (one-hot categories) does not build
+    512 matrices of a hundred points or more."""
+    return min(2 * (dim + 1), INTEGRATE_CAP)
 
 
 class Refits:
