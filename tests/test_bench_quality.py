@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -75,13 +76,16 @@ def test_summary_ranks_and_tables() -> None:
     assert "trials-to-target" in md
 
 
-def test_summary_of_a_run_with_only_a_batch_method() -> None:
+def test_summary_of_a_run_with_only_a_batch_method(tmp_path: Path) -> None:
     # `--methods forebear-full-q8` alone: no sequential method to rank, and the summary
     # still gives the regret table (it used to fail at the very end of the run).
     curves = {"forebear-full-q8": [[0.5, 0.2, 0.1, 0.1, 0.05]] * 2}
     proto = Protocol(families=("branin",), tasks=2, seeds=1, trials=5, methods=("forebear-full-q8",))
     fam = summarise(_fake_results(curves), proto)["branin"]
     assert fam["rank"] == {} and fam["regret"]["forebear-full-q8"][5][0] == pytest.approx(0.05)
+    written = quality.write(_fake_results(curves), proto, tmp_path)  # tables and plots too
+    assert {Path(p).name for p in written["plots"]} == {"quality_branin.png", "quality_batch.png"}
+    assert "forebear-full-q8" in (tmp_path / "results.md").read_text()
 
 
 def test_protocol_rejects_bad_input() -> None:

@@ -455,7 +455,8 @@ def plots(results: Sequence[Mapping[str, Any]], proto: Protocol, out_dir: Path) 
 
     paths = []
     x = np.arange(1, proto.trials + 1)
-    seq = [m for m in proto.methods if METHODS[m].q == 1]
+    # The per-family plot compares the sequential methods; a run of batch methods only shows those.
+    seq = [m for m in proto.methods if METHODS[m].q == 1] or list(proto.methods)
     for fam in proto.families:
         fig, ax = plt.subplots(figsize=(6.4, 4.2))
         for m in seq:
