@@ -202,7 +202,7 @@ def _chol(K: torch.Tensor) -> torch.Tensor:
 GRID = tuple((lam, ns) for lam in LAMBDAS for ns in NOISE_SCALES)  # the refit's (lam, noise scale) pairs
 
 
-def _pick_lambda(ll_by_grid: torch.Tensor) -> torch.Tensor:
+def _pick_grid(ll_by_grid: torch.Tensor) -> torch.Tensor:
     """Index into :data:`GRID` with the best marginal likelihood plus the prior (last dim).
 
     The prior is log-normal on ``lam`` and flat over the noise scales.
@@ -330,7 +330,7 @@ class MetaModel:
         with torch.no_grad():
             blocks = _blocks(self.net, Xt)
         posts = [MetaPosterior(self.net, Xt, yt, shift, scale, lam, blocks=blocks, noise_scale=ns) for lam, ns in GRID]
-        best = int(_pick_lambda(torch.stack([p.lml for p in posts])))
+        best = int(_pick_grid(torch.stack([p.lml for p in posts])))
         return posts[best]
 
     # -- state --------------------------------------------------------------

@@ -132,7 +132,7 @@ def episode_ll(net: DeepKernel, episodes: Sequence[tuple[torch.Tensor, ...]]) ->
     from forebear.engine.surrogate.deep_kernel import (  # the module that imports this one
         GRID,
         _lml,
-        _pick_lambda,
+        _pick_grid,
         grid_noise,
     )
 
@@ -148,7 +148,7 @@ def episode_ll(net: DeepKernel, episodes: Sequence[tuple[torch.Tensor, ...]]) ->
     mean_s = net.a0 * ms
     with torch.no_grad():  # the refit's grid choice, as at proposal time
         lls = torch.stack([_lml(ts, mean_s, A_ss + lam * R_ss + grid_noise(net, ns) * eye)[0] for lam, ns in GRID], -1)
-        pick = _pick_lambda(lls)
+        pick = _pick_grid(lls)
         lam = torch.tensor([g[0] for g in GRID], dtype=Xs.dtype, device=Xs.device)[pick]
         scales = torch.tensor([g[1] for g in GRID], dtype=Xs.dtype, device=Xs.device)[pick]
     lam3 = lam.view(-1, 1, 1)
