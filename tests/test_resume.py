@@ -15,8 +15,9 @@ import yaml
 
 import forebear
 from forebear.core.spec import load
+from forebear.loop.book import Book
 from forebear.loop.controller import Controller
-from forebear.records.logbook import Logbook, fold
+from forebear.records.logbook import Logbook, fold, record
 
 from .conftest import LoopbackCluster, child_env, reap
 
@@ -74,3 +75,33 @@ def test_controller_killed_mid_search_then_resumed(tmp_path: Path, shared_loopba
         assert scored_meanwhile or (trial, attempt) in lost
     assert all(r["reason"] == "restart" for r in records if r["kind"] == "lost")
     assert forebear.load(logbook).best().trial == result.best.trial
+
+
+def test_a_result_written_over_a_torn_tail_after_the_read_is_not_settled_as_lost(tmp_path: Path) -> None:
+    # A controller stopped by a full disk can leave half a record at the logbook's end. On the resume,
+    # a worker still running an attempt writes its result: its append cuts the torn tail off, so the
+    # result starts before the file size the controller saw when it read the logbook. The controller
+    # must still see that result and not write `lost` for the attempt (which would score it twice).
+    from forebear.loop.resume import search_record
+
+    spec_path = tmp_path / "search.yaml"
+    spec_path.write_text(yaml.safe_dump({
+        "name": "torn", "objective": {"call": "objectives:sleep_from_x", "minimize": "loss"},
+        "space": {"x": {"float": [0.0, 1.0]}}, "budget": {"trials": 2}, "logbook": "runs/torn.jsonl",
+    }))
+    spec = load(spec_path)
+    book = Logbook(spec.logbook)
+    book.append(search_record(spec))
+    book.append(record("proposed", trial=0, round=0, config={"x": 0.5}, source="random", model=None, acquisition=None))
+    since = book.append(record("started", trial=0, attempt=1, worker="w"))
+    with open(spec.logbook, "ab") as fh:
+        fh.write(b'{"v": 1, "kind": "propo')  # torn: the disk filled up mid-write
+    controller = Controller(spec)
+    table, _ = controller._read()
+    assert table.by_state("running")
+    assert book.append_result(record("scored", trial=0, attempt=1, score=0.25), since)
+    controller.book = Book.from_table(table)
+    controller._reconcile(table)
+    records = book.records()
+    assert [r["kind"] for r in records if r.get("trial") == 0] == ["proposed", "started", "scored"], records
+    assert controller.book.state[0] == "scored" and not controller.retry_queue

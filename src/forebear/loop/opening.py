@@ -23,6 +23,7 @@ from forebear.records.logbook import (
     check_header,
     ensure_folder,
     fold,
+    parse,
     record,
 )
 
@@ -51,9 +52,13 @@ class Opening:
     def _read(self) -> tuple[TrialTable, dict[str, Any] | None]:
         """Fold the logbook and check it is this search's; returns the table and the ``search`` record to write (or None)."""
         spec = self.spec
-        self._read_at = self.logbook.size()  # results that arrive after this are seen by _reconcile
-        records, skipped = self.logbook.read()
-        if skipped and not records and b"\n" in spec.logbook.read_bytes():
+        data = self.logbook.read_bytes()
+        # Results that arrive after this offset are seen by _reconcile. It is the end of the last
+        # whole line, not the file's size: a torn tail (a writer that hit a full disk) is cut off by
+        # the next writer, whose record then starts before the size read here.
+        self._read_at = data.rfind(b"\n") + 1
+        records, skipped = parse(data)
+        if skipped and not records and b"\n" in data:
             # Whole lines and none of them ours: someone else's file. Writing would append to it and
             # cut its last line as a torn record. (A lone torn first record has no newline: resumable.)
             raise LogbookMismatch(
