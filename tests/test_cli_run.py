@@ -214,6 +214,17 @@ def test_bench_stopping_cli_analytic_family(tmp_path: Path) -> None:
                          capture_output=True, text=True, timeout=120, env=child_env())
     assert res.returncode == 2 and res.stdout == ""
     assert res.stderr.strip().splitlines() == ["forebear: ValueError: unknown family 'nope'; families: mlp, pow3"]
+    # --min-step and --eta reach both rules; a first rung at or past the family's last step is refused.
+    fig = _bench("stopping", "--families", "pow3", "--runs", "1", "--trials", "8", "--min-step", "9", "--eta", "2", timeout=240)
+    assert fig["stopping"] == {"min_step": 9, "eta": 2.0, "threshold": 0.05}
+    lib = stopping.main(families="pow3", runs=1, trials=8, min_step=9, eta=2.0)
+    for d in (lib["pow3"], fig["pow3"]):
+        d.pop("seconds")
+    assert lib == fig
+    res = subprocess.run([sys.executable, "-m", "forebear", "bench", "stopping", "--families", "pow3", "--min-step", "27"],
+                         capture_output=True, text=True, timeout=120, env=child_env())
+    assert res.returncode == 2 and res.stdout == ""
+    assert res.stderr.strip().splitlines() == ["forebear: ValueError: min_step must be below the pow3 family's 27 steps, got 27"]
 
 
 @pytest.mark.slow

@@ -317,6 +317,13 @@ def main(
     if unknown:
         msg = f"unknown family {unknown[0]!r}; families: {', '.join(FAMILIES)}"
         raise ValueError(msg)
+    for name in families:
+        if name not in _MADE:
+            _MADE[name] = (FAMILIES[name](), {})
+        steps = _MADE[name][0].steps
+        if min_step >= steps:
+            msg = f"min_step must be below the {name} family's {steps} steps, got {min_step}"
+            raise ValueError(msg)
     stopping = {"min_step": min_step, "eta": eta, "threshold": threshold}
     result: dict[str, Any] = {"stopping": stopping}
     from threadpoolctl import threadpool_limits
@@ -586,6 +593,8 @@ if __name__ == "__main__":
     parser.add_argument("--families", default="mlp,pow3")
     parser.add_argument("--runs", type=int, default=10)
     parser.add_argument("--first-run", type=int, default=0, help="the first run (held-out task and stream seed)")
+    parser.add_argument("--min-step", type=int, default=3)
+    parser.add_argument("--eta", type=float, default=3.0)
     parser.add_argument("--threshold", type=float, default=0.05)
     parser.add_argument("--out", default=None)
     parser.add_argument("--treatments", action="store_true", help="also: halted trials left out of / shown to the proposer")
@@ -595,4 +604,4 @@ if __name__ == "__main__":
     if a.latency:
         print(json.dumps(halt_latency(note_every=a.note_every), indent=2))
         raise SystemExit(0)
-    print(json.dumps(main(a.families, a.runs, threshold=a.threshold, out=a.out, first_run=a.first_run, treatments=a.treatments), indent=2))
+    print(json.dumps(main(a.families, a.runs, min_step=a.min_step, eta=a.eta, threshold=a.threshold, out=a.out, first_run=a.first_run, treatments=a.treatments), indent=2))
