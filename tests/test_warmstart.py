@@ -9,7 +9,7 @@ import numpy as np
 import pytest
 
 from forebear.core.space import Space
-from forebear.engine.warmstart import evolve, gp_imputer, initial_design, set_score
+from forebear.engine.warmstart import covered_size, evolve, gp_imputer, initial_design, set_score
 from forebear.records.history import Task
 
 SPACE = Space.from_dict({"a": {"float": [0.0, 1.0]}, "b": {"int": [1, 9]}, "c": {"categories": ["x", "y"]}})
@@ -116,3 +116,39 @@ def test_share_and_fill_from_a_latin_hypercube() -> None:
     assert half[0] == {"a": 0.5, "b": 5, "c": "y"} and len(half) == 6
     with pytest.raises(ValueError, match="share must be in"):
         initial_design(SPACE, 2, tasks=tasks, share=1.5)
+
+
+def test_the_design_is_cut_to_the_size_that_covers_every_history_task() -> None:
+    # One configuration best on every task (score 0 there): the smallest allowed size covers
+    # them all.
+    shared = tasks_with_a_shared_good_config()
+    assert covered_size(shared, 9, 3) == 3
+    assert covered_size(shared, 9, 1) == 1
+    # Six tasks, each with its own optimum among configurations no other task has seen (an
+    # unseen configuration counts as the task's worst, 1, without an imputer): a set covers a
+    # task only by holding its optimum, so k members leave a mean best score of (6 - k) / 6.
+    rng = np.random.default_rng(5)
+    own = []
+    for t in range(6):
+        configs = SPACE.sample(12, rng)
+        y = rng.random(12) * 0.8 + 0.2
+        y[t] = 0.0
+        own.append(Task(f"t{t}", configs, SPACE.encode_many(configs), y))
+    assert covered_size(own, 9, 3) == 6  # 0 at six members, 1/6 at five
+    assert covered_size(own, 6, 3) == 6 and covered_size(own, 5, 3) == 5  # never above k_max
+    assert covered_size(own, 9, 3, tol=0.17) == 5  # 1/6 = 0.1667 passes a bar of 0.17
+    assert covered_size(own, 9, 3, tol=0.16) == 6
+    assert covered_size([], 7, 3) == 7 and covered_size(own, 3, 3) == 3
+
+
+def test_the_proposer_runs_the_cut_design_and_says_its_size() -> None:
+    from forebear.engine.proposer import Proposer
+    from forebear.records.history import History
+
+    p = Proposer(SPACE, History(tasks_with_a_shared_good_config()), seed=0, model="gp", cache_dir=False)
+    assert p.initial_size(1) == 3 and p.initial_size(4) == 4  # dim 4: min(dim + 1, 10) = 5 without the cut
+    first = p.propose(3, [])
+    assert [q.source for q in first] == ["initial"] * 3
+    assert {"a": 0.5, "b": 5, "c": "y"} in [q.config for q in first]
+    assert Proposer(SPACE, History(tasks_with_a_shared_good_config()), n_initial=5, cache_dir=False).initial_size(1) == 5
+    assert Proposer(SPACE, cache_dir=False).initial_size(1) == 5

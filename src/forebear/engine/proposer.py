@@ -45,7 +45,7 @@ from forebear.engine.runtime import threads as _threads
 from forebear.engine.surrogate.deep_kernel import MetaModel, Settings, cache_key
 from forebear.engine.surrogate.gp import Posterior, as_tensor, feasibility
 from forebear.engine.surrogate.select import Choice, Prequential, choose
-from forebear.engine.warmstart import extend_design, gp_imputer, initial_design
+from forebear.engine.warmstart import covered_size, extend_design, gp_imputer, initial_design
 
 MODELS = ("auto", "gp", "deep-kernel")
 FAILED = ("impute", "classifier")
@@ -192,6 +192,7 @@ class Proposer:
         self._rng = np.random.default_rng(seed)
         self._initial: list[dict[str, Any]] | None = None
         self._k: int | None = None
+        self._covered: int | None = None  # initial_size's design size with history
         self._meta: MetaModel | None = None
         self._gp = Refits(seed, device)  # the plain GP across rounds (engine/refits.py)
         # Encodings of configurations seen so far (None: outside the space). A search hands the
@@ -309,11 +310,13 @@ class Proposer:
         return np.vstack(rows) if rows else np.zeros((0, self.space.dim))
 
     def initial_size(self, batch: int) -> int:
-        """Size of the initial design for a first round of ``batch``: ``n_initial`` when given,
-        else ``max(batch, min(dim + 1, 10))``, with or without history (docs/engine.md)."""
-        if self.n_initial is not None:
-            return self.n_initial
-        return max(batch, min(self.space.dim + 1, 10))
+        """Size of the initial design for a first round of ``batch``: ``n_initial`` when given, else
+        ``max(batch, k)``, ``k = min(dim + 1, 10)`` cut by ``warmstart.covered_size`` with history."""
+        k = min(self.space.dim + 1, 10)
+        if self.n_initial is None and self.tasks and self.warm_start and self._covered is None:
+            with _threads(self.threads):
+                self._covered = covered_size(self.tasks, k, min(3, k), seed=self.seed)  # observed scores only: about 1 s
+        return self.n_initial if self.n_initial is not None else max(batch, self._covered or k)
 
     def _design(self, k: int) -> list[dict[str, Any]]:
         if not (self.tasks and self.warm_start):

@@ -106,6 +106,41 @@ def initial_design(
     return out
 
 
+COVERED = 0.015  # mean normalised best score over history tasks at which a smaller design is enough
+
+
+def covered_size(
+    tasks: Sequence[Any],
+    k_max: int,
+    k_min: int = 3,
+    *,
+    impute: Imputer | None = None,
+    seed: int = 0,
+    tol: float = COVERED,
+) -> int:
+    """The smallest design size in ``[k_min, k_max]`` whose best history set already covers
+    every history task: the mean over tasks of the set's best task-normalised score is at
+    most ``tol``. ``k_max`` when no smaller set does (or without history).
+
+    Where one or two configurations do well on every earlier task (a homogeneous history),
+    the rest of the default design repeats them and the model can propose sooner; where the
+    tasks' optima differ, every member of the default design is needed (docs/engine.md,
+    "The warm start", has the measurements that set ``tol``). The proposer passes no
+    ``impute``: a configuration a task did not observe counts as its worst, which can only
+    keep the design larger, and the per-task GP fits cost seconds per task.
+    """
+    tasks = [t for t in tasks if len(t.y)]
+    if not tasks or k_min >= k_max:
+        return k_max
+    pool_X, _ = _pool(tasks, max(2 * k_max, 8))
+    S = _score_matrix(tasks, pool_X, impute)
+    rng = np.random.default_rng(seed)
+    for k in range(max(1, k_min), k_max):
+        if set_score(S, np.asarray(evolve(S, k, rng))) / S.shape[1] <= tol:
+            return k
+    return k_max
+
+
 def _pool(tasks: Sequence[Any], per_task: int) -> tuple[np.ndarray, list[dict[str, Any]]]:
     seen: dict[bytes, int] = {}
     rows, cfgs = [], []
