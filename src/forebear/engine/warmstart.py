@@ -120,7 +120,8 @@ def covered_size(
 ) -> int:
     """The smallest design size in ``[k_min, k_max]`` whose best history set already covers
     every history task: the mean over tasks of the set's best task-normalised score is at
-    most ``tol``. ``k_max`` when no smaller set does (or without history).
+    most ``tol``, with fewer members than there are tasks. ``k_max`` when no such set does
+    (or without history, or with fewer tasks than ``k_min + 1``).
 
     Where one or two configurations do well on every earlier task (a homogeneous history),
     the rest of the default design repeats them and the model can propose sooner; where the
@@ -135,7 +136,8 @@ def covered_size(
     pool_X, _ = _pool(tasks, max(2 * k_max, 8))
     S = _score_matrix(tasks, pool_X, impute)
     rng = np.random.default_rng(seed)
-    for k in range(max(1, k_min), k_max):
+    # Only sets smaller than the number of tasks: k members always cover k tasks (each one's best).
+    for k in range(max(1, k_min), min(k_max, S.shape[1])):
         if set_score(S, np.asarray(evolve(S, k, rng))) / S.shape[1] <= tol:
             return k
     return k_max
