@@ -205,26 +205,29 @@ def test_bench_stopping_cli_analytic_family(tmp_path: Path) -> None:
         assert 0 < r["time_ratio_mean"] < 1 and r["time_ratio_mean"] <= r["time_ratio_max"] <= 1, r
         assert r["halted_mean"] > 0 and r["best_stopped_share"] == r["best_stopped_runs"] / 2, r
     # The same arguments in-process give the same figures, apart from the wall-clock seconds.
-    lib = stopping.main(families="pow3", runs=2, trials=8)
-    for d in (lib["pow3"], pow3):
-        d.pop("seconds")
-    assert lib == fig
+    assert _without_seconds(stopping.main(families="pow3", runs=2, trials=8)) == _without_seconds(fig)
     # A family that does not exist: exit 2 and one line naming it.
-    res = subprocess.run([sys.executable, "-m", "forebear", "bench", "stopping", "--families", "nope", "--runs", "1"],
-                         capture_output=True, text=True, timeout=120, env=child_env())
-    assert res.returncode == 2 and res.stdout == ""
-    assert res.stderr.strip().splitlines() == ["forebear: ValueError: unknown family 'nope'; families: mlp, pow3"]
+    _stopping_refused(["--families", "nope", "--runs", "1"], "forebear: ValueError: unknown family 'nope'; families: mlp, pow3")
     # --min-step and --eta reach both rules; a first rung at or past the family's last step is refused.
     fig = _bench("stopping", "--families", "pow3", "--runs", "1", "--trials", "8", "--min-step", "9", "--eta", "2", timeout=240)
     assert fig["stopping"] == {"min_step": 9, "eta": 2.0, "threshold": 0.05}
-    lib = stopping.main(families="pow3", runs=1, trials=8, min_step=9, eta=2.0)
-    for d in (lib["pow3"], fig["pow3"]):
-        d.pop("seconds")
-    assert lib == fig
-    res = subprocess.run([sys.executable, "-m", "forebear", "bench", "stopping", "--families", "pow3", "--min-step", "27"],
+    assert _without_seconds(stopping.main(families="pow3", runs=1, trials=8, min_step=9, eta=2.0)) == _without_seconds(fig)
+    _stopping_refused(["--families", "pow3", "--min-step", "27"],
+                      "forebear: ValueError: min_step must be below the pow3 family's 27 steps, got 27")
+
+
+def _without_seconds(fig: dict[str, Any]) -> dict[str, Any]:
+    """A bench stopping result without its families' wall-clock seconds (the rest is deterministic)."""
+    return {k: {kk: vv for kk, vv in v.items() if kk != "seconds"} if isinstance(v, dict) and "seconds" in v else v
+            for k, v in fig.items()}
+
+
+def _stopping_refused(args: list[str], line: str) -> None:
+    """``forebear bench stopping ARGS`` exits 2 with nothing on stdout and ``line`` alone on stderr."""
+    res = subprocess.run([sys.executable, "-m", "forebear", "bench", "stopping", *args],
                          capture_output=True, text=True, timeout=120, env=child_env())
     assert res.returncode == 2 and res.stdout == ""
-    assert res.stderr.strip().splitlines() == ["forebear: ValueError: min_step must be below the pow3 family's 27 steps, got 27"]
+    assert res.stderr.strip().splitlines() == [line]
 
 
 @pytest.mark.slow

@@ -114,7 +114,6 @@ def covered_size(
     k_max: int,
     k_min: int = 3,
     *,
-    impute: Imputer | None = None,
     seed: int = 0,
     tol: float = COVERED,
 ) -> int:
@@ -126,15 +125,15 @@ def covered_size(
     Where one or two configurations do well on every earlier task (a homogeneous history),
     the rest of the default design repeats them and the model can propose sooner; where the
     tasks' optima differ, every member of the default design is needed (docs/engine.md,
-    "The warm start", has the measurements that set ``tol``). The proposer passes no
-    ``impute``: a configuration a task did not observe counts as its worst, which can only
-    keep the design larger, and the per-task GP fits cost seconds per task.
+    "The warm start", has the measurements that set ``tol``). Observed scores only: a
+    configuration a task did not observe counts as its worst, which can only keep the design
+    larger (the warm start's per-task GP imputer costs seconds per task).
     """
     tasks = [t for t in tasks if len(t.y)]
     if not tasks or k_min >= k_max:
         return k_max
     pool_X, _ = _pool(tasks, max(2 * k_max, 8))
-    S = _score_matrix(tasks, pool_X, impute)
+    S = _score_matrix(tasks, pool_X, None)
     rng = np.random.default_rng(seed)
     # Only sets smaller than the number of tasks: k members always cover k tasks (each one's best).
     for k in range(max(1, k_min), min(k_max, S.shape[1])):
