@@ -11,6 +11,7 @@ import pytest
 from forebear.bench import quality
 from forebear.bench.families import analytic_family
 from forebear.bench.quality import METHODS, Protocol, _goals, interval, search, summarise
+from forebear.bench.simulated import Clock
 
 
 def _fake_results(curves: dict[str, list[list[float]]]) -> list[dict]:
@@ -165,6 +166,12 @@ def test_peers_are_registered_and_history_options_reach_the_run(capsys: pytest.C
         assert r.shape == (5,) and np.all(np.diff(r) <= 0) and sum(out["sources"].values()) == 5
         assert not quality._same_as_gp(METHODS[name], None)
     assert METHODS["rgpe"].history and not METHODS["tpe"].history
+    # At 4 workers each peer proposes beside running trials, as the engine's methods do.
+    clock = Clock(trial_seconds=1.0, sigma=0.5, refit_seconds=0.25)
+    for name in ("warmstart-gp-q4", "rgpe-q4", "tpe-q4"):
+        out = search(fam, 0, METHODS[name], seed=1, trials=9, clock=clock)
+        assert METHODS[name].q == 4 and len(out["regret"]) == 9, name
+        assert out["pending_mean"] >= 2.0 and out["busy"] > 0.4, (name, out["pending_mean"], out["busy"])
     with pytest.raises(ValueError, match="history_kind must be one of sobol, searches"):
         Protocol(history_kind="grid")
     with pytest.raises(ValueError, match="history_tasks must be >= 1"):

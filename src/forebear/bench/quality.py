@@ -70,6 +70,11 @@ METHODS: dict[str, Method] = {m.name: m for m in (
     Method("warmstart-gp", "peer", history=True),
     Method("rgpe", "peer", history=True),
     Method("tpe", "peer"),
+    # The same peers with 4 workers (running trials reach them as ``pending``: kriging believer
+    # in the GP peers, the "bad" group in TPE), for the ranking at concurrency 4.
+    Method("warmstart-gp-q4", "peer", q=4, history=True),
+    Method("rgpe-q4", "peer", q=4, history=True),
+    Method("tpe-q4", "peer", q=4),
 )}
 SMOKE_METHODS = ("random", "gp", "forebear-cold", "forebear-full")
 #: Size of the Latin hypercube before random search in ``lhs-random``.
@@ -196,7 +201,7 @@ def search(
         if method.kind == "peer":
             from forebear.bench import peers
 
-            proposer = peers.make(method.name, space, history, seed=seed)
+            proposer = peers.make(method.name.removesuffix(f"-q{method.q}"), space, history, seed=seed)
         else:
             proposer = Proposer(space, history, seed=seed, cache_dir=cache_dir, **kwargs)
         observed: list[Any] = []
