@@ -75,6 +75,18 @@ def test_summary_ranks_and_tables() -> None:
     md = quality.markdown({"branin": s}, proto)
     assert "| forebear-full | 0.1 [0.1, 0.1]" in md
     assert "trials-to-target" in md
+    # Methods with 4 workers are ranked among themselves, with random search (which has no schedule).
+    results = _fake_results({
+        "random": [[0.9] * 10, [0.8] * 10],
+        "gp": [[0.5] * 10, [0.9] * 10],
+        "gp-q4": [[0.2] * 10, [0.3] * 10],
+        "rgpe-q4": [[0.95] * 10, [0.1] * 10],
+    })
+    proto = Protocol(families=("branin",), tasks=2, seeds=1, trials=10, methods=("random", "gp", "gp-q4", "rgpe-q4"))
+    s = summarise(results, proto)["branin"]
+    assert set(s["rank"]) == {"random", "gp"} and set(s["rank_q4"]) == {"random", "gp-q4", "rgpe-q4"}
+    assert s["rank_q4"]["gp-q4"][10] == 1.5 and s["rank_q4"]["rgpe-q4"][10] == 2.0 and s["rank_q4"]["random"][10] == 2.5
+    assert "| method (q = 4) | rank @5 | rank @10 |" in quality.markdown({"branin": s}, proto)
 
 
 def test_summary_of_a_run_with_only_a_batch_method(tmp_path: Path) -> None:

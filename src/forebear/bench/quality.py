@@ -345,8 +345,6 @@ def interval(values: np.ndarray, seed: int = 0) -> tuple[float, float, float]:
 
 def summarise(results: Sequence[Mapping[str, Any]], proto: Protocol) -> dict[str, Any]:
     """The figures of a run: regret with intervals, ranks, trials-to-target, goals."""
-    from scipy.stats import rankdata
-
     checkpoints = [t for t in CHECKPOINTS if t <= proto.trials] or [proto.trials]
     if checkpoints[-1] != proto.trials and proto.trials not in checkpoints:
         checkpoints.append(proto.trials)
@@ -354,19 +352,35 @@ def summarise(results: Sequence[Mapping[str, Any]], proto: Protocol) -> dict[str
     for fam in proto.families:
         c = {m: curves(results, fam, m) for m in proto.methods}
         regret = {m: {t: interval(c[m][:, t - 1]) for t in checkpoints} for m in proto.methods}
-        seq = [m for m in proto.methods if METHODS[m].q == 1]
-        ranks: dict[str, dict[int, float]] = {m: {} for m in seq}
-        for t in checkpoints if seq else ():  # ranks compare sequential methods; a run may hold none
-            table = np.column_stack([c[m][:, t - 1] for m in seq])
-            r = np.apply_along_axis(rankdata, 1, table).mean(axis=0)
-            for m, v in zip(seq, r, strict=True):
-                ranks[m][t] = float(v)
-        fam_out: dict[str, Any] = {"regret": regret, "rank": ranks, "runs": int(len(c[proto.methods[0]]))}
+        fam_out: dict[str, Any] = {"regret": regret, "runs": int(len(c[proto.methods[0]]))}
+        # Ranks compare methods of one concurrency: "rank" the sequential ones, "rank_q4" and
+        # "rank_q8" those with 4 or 8 workers; random search, which has no schedule, joins every group.
+        free = [m for m in proto.methods if METHODS[m].kind in ("random", "lhs-random")]
+        for q in sorted({1} | {METHODS[m].q for m in proto.methods}):
+            group = [m for m in proto.methods if METHODS[m].q == q and m not in free]
+            if q != 1 and not group:
+                continue
+            group = [m for m in proto.methods if m in free or m in group]
+            key = "rank" if q == 1 else f"rank_q{q}"
+            fam_out[key] = _ranks(c, group, checkpoints)
         fam_out["models"] = {m: _merge([r["runs"][m]["models"] for r in results if r["family"] == fam]) for m in proto.methods}
         fam_out["seconds"] = {m: float(np.mean([r["runs"][m]["seconds"] for r in results if r["family"] == fam])) for m in proto.methods}
         fam_out["goals"] = _goals(c, proto.trials)
         out[fam] = fam_out
     return out
+
+
+def _ranks(c: Mapping[str, np.ndarray], methods: Sequence[str], checkpoints: Sequence[int]) -> dict[str, dict[int, float]]:
+    """Average rank of each method over the runs at each checkpoint (1 = best; ties share the mean rank)."""
+    from scipy.stats import rankdata
+
+    ranks: dict[str, dict[int, float]] = {m: {} for m in methods}
+    for t in checkpoints if methods else ():
+        table = np.column_stack([c[m][:, t - 1] for m in methods])
+        r = np.apply_along_axis(rankdata, 1, table).mean(axis=0)
+        for m, v in zip(methods, r, strict=True):
+            ranks[m][t] = float(v)
+    return ranks
 
 
 def _merge(counts: Sequence[Mapping[str, int]]) -> dict[str, int]:
@@ -424,9 +438,11 @@ def markdown(summary: Mapping[str, Any], proto: Protocol) -> str:
         for m, row in s["regret"].items():
             cells = [f"{mu:.3g} [{lo:.3g}, {hi:.3g}]" for mu, lo, hi in (row[t] for t in cps)]
             lines.append(f"| {m} | " + " | ".join(cells) + " |")
-        lines += ["", "| method (q = 1) | " + " | ".join(f"rank @{t}" for t in cps) + " |", "|---|" + "---|" * len(cps)]
-        for m, row in s["rank"].items():
-            lines.append(f"| {m} | " + " | ".join(f"{row[t]:.2f}" for t in cps) + " |")
+        for key in [k for k in s if k == "rank" or k.startswith("rank_q")]:
+            q = 1 if key == "rank" else int(key.removeprefix("rank_q"))
+            lines += ["", f"| method (q = {q}) | " + " | ".join(f"rank @{t}" for t in cps) + " |", "|---|" + "---|" * len(cps)]
+            for m, row in s[key].items():
+                lines.append(f"| {m} | " + " | ".join(f"{row[t]:.2f}" for t in cps) + " |")
         g = s["goals"]
         lines.append("")
         if "trials_to_target" in g:
