@@ -360,7 +360,8 @@ def summarise(results: Sequence[Mapping[str, Any]], proto: Protocol) -> dict[str
             group = [m for m in proto.methods if METHODS[m].q == q and m not in free]
             if q != 1 and not group:
                 continue
-            group = [m for m in proto.methods if m in free or m in group]
+            # Random search alone is no ranking: "rank" stays empty in a run of batch methods only.
+            group = [m for m in proto.methods if m in free or m in group] if group else []
             key = "rank" if q == 1 else f"rank_q{q}"
             fam_out[key] = _ranks(c, group, checkpoints)
         fam_out["models"] = {m: _merge([r["runs"][m]["models"] for r in results if r["family"] == fam]) for m in proto.methods}
@@ -440,6 +441,8 @@ def markdown(summary: Mapping[str, Any], proto: Protocol) -> str:
             lines.append(f"| {m} | " + " | ".join(cells) + " |")
         for key in [k for k in s if k == "rank" or k.startswith("rank_q")]:
             q = 1 if key == "rank" else int(key.removeprefix("rank_q"))
+            if not s[key]:
+                continue
             lines += ["", f"| method (q = {q}) | " + " | ".join(f"rank @{t}" for t in cps) + " |", "|---|" + "---|" * len(cps)]
             for m, row in s[key].items():
                 lines.append(f"| {m} | " + " | ".join(f"{row[t]:.2f}" for t in cps) + " |")
