@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import warnings
 from pathlib import Path
 from typing import Any
 
@@ -10,10 +11,12 @@ import pytest
 
 from forebear.cluster.dispatch import (
     Dispatch,
+    FailFast,
     UnsatisfiableResources,
     connect,
     declared_resources,
     insecure_warning,
+    install_fail_fast,
     jobqueue_cluster,
 )
 from forebear.core.spec import load
@@ -69,6 +72,20 @@ def test_local_cluster_listens_on_loopback_only(tmp_path: Path) -> None:
         with pytest.raises(UnsatisfiableResources, match=r"GPU: 1"):
             d.check_resources({"GPU": 1})
         d.check_resources({})
+
+
+def test_a_second_search_on_one_scheduler_installs_the_plugin_without_a_warning(tmp_path: Path) -> None:
+    # The demo runs five searches on one embedded cluster; each used to print distributed's
+    # "Scheduler already contains a plugin ... overwriting" warning.
+    said: list[str] = []
+    with connect(base(tmp_path, {"local": {"workers": 1, "dashboard": False}}), said.append) as d:
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            assert install_fail_fast(d.client, said.append)
+            assert install_fail_fast(d.client, said.append)
+        assert not [w for w in caught if "already contains a plugin" in str(w.message)], [str(w.message) for w in caught]
+        assert d.client.run_on_scheduler(lambda dask_scheduler: FailFast.name in dask_scheduler.plugins)
+    assert not [m for m in said if "could not install" in m]
 
 
 def test_local_cluster_without_dashboard_still_binds_loopback(tmp_path: Path) -> None:

@@ -112,6 +112,9 @@ class FailFast(SchedulerPlugin):
     """
 
     name = "forebear-fail-fast"
+    # One search after another on the same scheduler (the demo, a notebook's client) installs it
+    # again; the scheduler then keeps the one it has instead of warning that it overwrites it.
+    idempotent = True
 
     def __init__(self) -> None:
         self.scheduler: Any = None
