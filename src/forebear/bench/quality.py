@@ -348,21 +348,21 @@ def summarise(results: Sequence[Mapping[str, Any]], proto: Protocol) -> dict[str
     checkpoints = [t for t in CHECKPOINTS if t <= proto.trials] or [proto.trials]
     if checkpoints[-1] != proto.trials and proto.trials not in checkpoints:
         checkpoints.append(proto.trials)
+    # Ranks compare methods of one concurrency: "rank" the sequential ones, "rank_q4" and "rank_q8"
+    # those with 4 or 8 workers; random search, which has no schedule, joins every group, but alone
+    # it is no ranking ("rank" stays empty in a run of batch methods only).
+    free = [m for m in proto.methods if METHODS[m].kind in ("random", "lhs-random")]
+    groups: dict[str, list[str]] = {}
+    for q in sorted({1} | {METHODS[m].q for m in proto.methods}):
+        own = [m for m in proto.methods if METHODS[m].q == q and m not in free]
+        if own or q == 1:
+            groups["rank" if q == 1 else f"rank_q{q}"] = [m for m in proto.methods if m in free or m in own] if own else []
     out: dict[str, Any] = {}
     for fam in proto.families:
         c = {m: curves(results, fam, m) for m in proto.methods}
         regret = {m: {t: interval(c[m][:, t - 1]) for t in checkpoints} for m in proto.methods}
         fam_out: dict[str, Any] = {"regret": regret, "runs": int(len(c[proto.methods[0]]))}
-        # Ranks compare methods of one concurrency: "rank" the sequential ones, "rank_q4" and
-        # "rank_q8" those with 4 or 8 workers; random search, which has no schedule, joins every group.
-        free = [m for m in proto.methods if METHODS[m].kind in ("random", "lhs-random")]
-        for q in sorted({1} | {METHODS[m].q for m in proto.methods}):
-            group = [m for m in proto.methods if METHODS[m].q == q and m not in free]
-            if q != 1 and not group:
-                continue
-            # Random search alone is no ranking: "rank" stays empty in a run of batch methods only.
-            group = [m for m in proto.methods if m in free or m in group] if group else []
-            key = "rank" if q == 1 else f"rank_q{q}"
+        for key, group in groups.items():
             fam_out[key] = _ranks(c, group, checkpoints)
         fam_out["models"] = {m: _merge([r["runs"][m]["models"] for r in results if r["family"] == fam]) for m in proto.methods}
         fam_out["seconds"] = {m: float(np.mean([r["runs"][m]["seconds"] for r in results if r["family"] == fam])) for m in proto.methods}

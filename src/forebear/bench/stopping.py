@@ -5,9 +5,10 @@ Two learning-curve families, each a set of tasks of our own:
 * ``mlp`` (real training): scikit-learn's ``MLPClassifier`` (one hidden
   layer) on the bundled digits, one ``partial_fit`` pass (an epoch of
   minibatches) over the training rows per step, scored by the validation
-  error after each step (log-loss was measured too, docs/benchmarks.md). A task is a data slice and a preprocessing of
-  our own: its own 900/500 train/validation rows, a subset of 48 of the 64
-  pixels and Gaussian noise of its own level on the training features.
+  error after each step (log-loss was measured too, docs/benchmarks.md). A
+  task is a data slice and a preprocessing of our own: its own 900/500
+  train/validation rows, a subset of 48 of the 64 pixels and Gaussian noise
+  of its own level on the training features.
   Space: ``learning_rate_init`` (log), ``alpha`` (log), ``hidden`` units.
 * ``pow3`` (analytic): curves ``y(t) = c + a * t**(-alpha)`` (the pow3 form of
   Domhan, Springenberg and Hutter, IJCAI 2015) whose asymptote ``c`` is a
