@@ -2,15 +2,17 @@
 
 For each held-out task of a family, the history is the other tasks of the
 family (see ``families.py``); every method searches the held-out task from
-scratch for the same number of trials, driven in process (no Dask). By
-default (``mode="async"``) a proposer method runs as ``forebear run`` runs it:
-scheduled by the loop's own module under a simulated clock
-(``simulated.py``), with ``q`` workers and a batch of ``q``, log-normal trial
-durations and pending points; ``mode="sync"`` (``--sync``) scores every round
-before the next one. Curves are best-so-far in completion order. The
-figures are the mean normalised best-so-far regret with 95% bootstrap
-intervals, the average rank of the sequential methods, trials-to-target and
-the batch efficiency of q = 4 and 8 against q = 1.
+scratch for the same number of trials. By default (``mode="async"``) a
+proposer method runs in process as ``forebear run`` runs it: scheduled by the
+loop's own module under a simulated clock (``simulated.py``), with ``q``
+workers and a batch of ``q``, log-normal trial durations and pending points;
+``mode="sync"`` (``--sync``) scores every round before the next one;
+``mode="live"`` (``--live``) runs each search through ``forebear.run`` itself,
+on an embedded Dask cluster in real time (``live.py``). Curves are
+best-so-far in completion order. The figures are the mean normalised
+best-so-far regret with 95% bootstrap intervals, the average rank of the
+sequential methods, trials-to-target and the batch efficiency of q = 4 and 8
+against q = 1.
 
 ``forebear bench quality --smoke`` runs one family, 3 held-out tasks, 2 seeds
 and 15 trials. The full protocol is ``python -m forebear.bench.quality``
@@ -134,8 +136,8 @@ class Protocol:
         if self.history_tasks is not None and self.history_tasks < 1:
             msg = f"history_tasks must be >= 1, got {self.history_tasks}"
             raise ValueError(msg)
-        if self.mode not in ("async", "sync"):
-            msg = f"mode must be 'async' or 'sync', got {self.mode!r}"
+        if self.mode not in ("async", "sync", "live"):
+            msg = f"mode must be 'async', 'sync' or 'live', got {self.mode!r}"
             raise ValueError(msg)
         self.clock  # noqa: B018 - validates the clock's fields
         if self.family_size < 2:
@@ -153,11 +155,12 @@ SMOKE = Protocol(families=("branin",), tasks=3, seeds=2, trials=15, methods=SMOK
 _FAMILIES: dict[tuple[Any, ...], Family] = {}
 
 
-def _family(name: str, size: int, points: int, kind: str = "sobol", history: int | None = None) -> Family:
-    # Built once per process: the tasks are deterministic in these arguments.
-    key = (name, size, points, kind, history)
+def family_of(proto: Protocol, name: str) -> Family:
+    """The family ``name`` as ``proto`` builds it; built once per process (the tasks are deterministic)."""
+    key = (name, proto.family_size, proto.history_points, proto.history_kind, proto.history_tasks)
     if key not in _FAMILIES:
-        _FAMILIES[key] = make_family(name, n_tasks=size, n_points=points, history_kind=kind, history_tasks=history)
+        _FAMILIES[key] = make_family(name, n_tasks=proto.family_size, n_points=proto.history_points,
+                                     history_kind=proto.history_kind, history_tasks=proto.history_tasks)
     return _FAMILIES[key]
 
 
@@ -259,7 +262,7 @@ def _job(args: tuple[str, int, int, int, Protocol, str | None]) -> dict[str, Any
         torch.set_num_threads(1)
     except ImportError:  # pragma: no cover - torch is a hard dependency
         pass
-    family = _family(fam_name, proto.family_size, proto.history_points, proto.history_kind, proto.history_tasks)
+    family = family_of(proto, fam_name)
     # Meta-training depends on the history and the deep-kernel settings only (its seed is
     # fixed), so jobs of one run may share a cache folder; entries are written atomically.
     cache = shared_cache or tempfile.mkdtemp(prefix="forebear-bench-")
@@ -286,8 +289,11 @@ def run(proto: Protocol, progress: bool = False, partial: Path | None = None) ->
     each finished job is also appended to that JSON-lines file, so a run cut short
     still leaves its finished jobs behind.
     """
-    families = {f: _family(f, proto.family_size, proto.history_points, proto.history_kind, proto.history_tasks)
-                for f in proto.families}
+    if proto.mode == "live":
+        from forebear.bench import live
+
+        return live.run(proto, progress=progress, partial=partial)
+    families = {f: family_of(proto, f) for f in proto.families}
     cache = tempfile.mkdtemp(prefix="forebear-bench-")
     jobs = [(f, i, s, proto.trials, proto, cache)
             for s in range(proto.first_seed, proto.first_seed + proto.seeds)
@@ -297,20 +303,20 @@ def run(proto: Protocol, progress: bool = False, partial: Path | None = None) ->
         if proto.workers == 1:
             for j in jobs:
                 results.append(_job(j))
-                _finished(results[-1], len(results), len(jobs), progress, partial)
+                finished(results[-1], len(results), len(jobs), progress, partial)
             return results
         import multiprocessing
 
         with ProcessPoolExecutor(max_workers=proto.workers, mp_context=multiprocessing.get_context("spawn")) as pool:
             for r in pool.map(_job, jobs):
                 results.append(r)
-                _finished(r, len(results), len(jobs), progress, partial)
+                finished(r, len(results), len(jobs), progress, partial)
         return results
     finally:
         shutil.rmtree(cache, ignore_errors=True)
 
 
-def _finished(r: dict[str, Any], done: int, total: int, progress: bool, partial: Path | None) -> None:
+def finished(r: dict[str, Any], done: int, total: int, progress: bool, partial: Path | None) -> None:
     import sys
 
     if partial is not None:
@@ -674,6 +680,9 @@ def _cli(argv: Sequence[str] | None = None) -> None:
     mode.add_argument("--async", dest="mode", action="store_const", const="async", default=d.mode,
                       help="Each proposer method with q workers under the loop's schedule and a simulated clock (default).")
     mode.add_argument("--sync", dest="mode", action="store_const", const="sync", help="Every round scored before the next.")
+    mode.add_argument("--live", dest="mode", action="store_const", const="live",
+                      help="Each search through forebear.run on an embedded Dask cluster, trials sleeping their "
+                           "drawn durations in real time (bench/live.py); forebear and random search only.")
     ap.add_argument("--trial-seconds", type=float, default=d.trial_seconds, help="Median simulated trial duration.")
     ap.add_argument("--sigma", type=float, default=d.sigma, help="Log-normal spread of the trial durations.")
     ap.add_argument("--refit-seconds", type=float, default=d.refit_seconds,

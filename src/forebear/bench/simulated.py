@@ -169,11 +169,11 @@ def compare(families: Sequence[str], tasks: int, seeds: int, trials: int, concur
     per round, for each variant at each concurrency (plain GP, no history)."""
     from dataclasses import replace
 
-    from forebear.bench.quality import METHODS, _family, search
+    from forebear.bench.quality import METHODS, Protocol, family_of, search
 
     out: dict[str, Any] = {}
     for fam_name in families:
-        fam = _family(fam_name, 10, 300)
+        fam = family_of(Protocol(families=(fam_name,)), fam_name)
         for c in concurrency:
             method = replace(METHODS["gp"], q=c, name=f"gp-c{c}")
             for v in variants:
