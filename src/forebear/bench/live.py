@@ -4,8 +4,9 @@ The asynchronous mode (``simulated.py``) drives the proposer with the loop's
 schedule under a simulated clock. This mode runs the same held-out tasks the way
 a user runs a search: a spec with the family's space, the other tasks of the
 family as a CSV history table, a callable objective that sleeps a log-normal
-trial duration (median ``trial_seconds``) before it scores, an embedded Dask
-cluster of ``q`` single-threaded worker processes on 127.0.0.1, and the regret
+trial duration (median ``trial_seconds``) before it scores, the spec's embedded
+Dask cluster of ``q`` workers (``cluster: {local: {workers: q}}``, started per
+search as ``forebear run`` starts it, on 127.0.0.1), and the regret
 curve read back from the logbook in the order the scores arrived. Time is real
 here, so proposals depend on the machine's load as they do for a user; the
 meta-trained model is trained (into the run's own cache folder) before a search
@@ -27,7 +28,7 @@ import os
 import tempfile
 import time
 from collections.abc import Callable, Iterator, Mapping
-from contextlib import ExitStack, contextmanager
+from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -83,6 +84,7 @@ def spec_for(family: Any, method: Any, seed: int, trials: int, folder: Path, his
         "objective": {"minimize": METRIC},
         "space": family.space.to_dict(),
         "budget": {"trials": trials, "batch": method.q, "concurrency": method.q, "trial_timeout": "10m"},
+        "cluster": {"local": {"workers": method.q, "dashboard": False}},
         "logbook": str(folder / "search.jsonl"),
         "seed": seed,
     }
@@ -112,7 +114,7 @@ def curve_of(logbook: Path, trials: int) -> tuple[list[float], dict[str, int], d
     return [float(t.score) for t in scored], dict(models), dict(sources), float(np.mean(pending)) if pending else 0.0
 
 
-def search(family: Any, index: int, method: Any, seed: int, trials: int, client: Any, folder: Path,
+def search(family: Any, index: int, method: Any, seed: int, trials: int, folder: Path,
            trial_seconds: float, sigma: float) -> dict[str, Any]:
     """One search of held-out task ``index`` through ``forebear.run``; the same keys as ``quality.search``."""
     from forebear.engine.proposer import Proposer
@@ -134,7 +136,7 @@ def search(family: Any, index: int, method: Any, seed: int, trials: int, client:
         Proposer(spec.space, history=load_history(spec, lambda _msg: None), seed=spec.seed).meta_model()
         meta = time.perf_counter() - t0
     t0 = time.perf_counter()
-    run(spec, client=client, objective=objective)
+    run(spec, objective=objective)
     seconds = time.perf_counter() - t0
     scores, models, sources, pending = curve_of(folder / "search.jsonl", trials)
     best = np.minimum.accumulate(np.asarray(scores, dtype=float))
@@ -146,12 +148,9 @@ def search(family: Any, index: int, method: Any, seed: int, trials: int, client:
 def run(proto: Any, progress: bool = False, partial: Path | None = None) -> list[dict[str, Any]]:
     """Every (family, held-out task, seed) job of ``proto`` through ``forebear.run``, in ``quality.run``'s format.
 
-    One embedded cluster per concurrency stays up for the whole run; jobs run one at a
-    time (``proto.workers`` is not used: parallel searches would share the cores the
-    trials and the proposer need).
+    Jobs run one at a time (``proto.workers`` is not used: parallel searches would
+    share the cores the trials and the proposer need).
     """
-    from distributed import Client, LocalCluster
-
     from forebear.bench import quality
     from forebear.bench.families import held_out
 
@@ -163,16 +162,10 @@ def run(proto: Any, progress: bool = False, partial: Path | None = None) -> list
     families = {f: quality.family_of(proto, f) for f in proto.families}
     jobs = [(f, i, s) for s in range(proto.first_seed, proto.first_seed + proto.seeds)
             for f in proto.families for i in held_out(families[f], proto.tasks)]
-    concurrencies = sorted({quality.METHODS[m].q for m in proto.methods if quality.METHODS[m].kind == "proposer"})
     results: list[dict[str, Any]] = []
-    with ExitStack() as stack:
-        root = Path(stack.enter_context(tempfile.TemporaryDirectory(prefix="forebear-live-")))
-        stack.enter_context(_environment({"FOREBEAR_CACHE": str(root / "cache"), "OMP_NUM_THREADS": "1"}))
-        clients = {}
-        for q in concurrencies:
-            cluster = stack.enter_context(LocalCluster(n_workers=q, threads_per_worker=1, processes=True,
-                                                       host="127.0.0.1", dashboard_address=None))
-            clients[q] = stack.enter_context(Client(cluster))
+    with tempfile.TemporaryDirectory(prefix="forebear-live-") as tmp, \
+            _environment({"FOREBEAR_CACHE": str(Path(tmp) / "cache"), "OMP_NUM_THREADS": "1"}):
+        root = Path(tmp)
         for n, (fam, index, seed) in enumerate(jobs):
             family = families[fam]
             out: dict[str, Any] = {"family": fam, "task": family.tasks[index].name, "seed": seed, "runs": {}}
@@ -182,8 +175,7 @@ def run(proto: Any, progress: bool = False, partial: Path | None = None) -> list
                     out["runs"][name] = quality.search(family, index, method, seed, proto.trials)
                     continue
                 folder = root / f"{fam}-{index}-{seed}-{name}"
-                out["runs"][name] = search(family, index, method, seed, proto.trials, clients[method.q], folder,
-                                           proto.trial_seconds, proto.sigma)
+                out["runs"][name] = search(family, index, method, seed, proto.trials, folder, proto.trial_seconds, proto.sigma)
             results.append(out)
             quality.finished(out, n + 1, len(jobs), progress, partial)
     return results
