@@ -78,3 +78,12 @@ def test_a_live_run_goes_through_forebear_run_and_its_logbook() -> None:
     assert len(run["regret"]) == 5 and all(b <= a for a, b in zip(run["regret"], run["regret"][1:], strict=False))
     assert "random" not in run["sources"] and run["sources"]["initial"] >= 4  # the first round is the whole design
     assert run["meta_seconds"] > 0 and run["pending_mean"] > 0.5
+
+
+def test_cli_takes_one_mode_only() -> None:
+    from click.testing import CliRunner
+
+    from forebear.face.cli import main
+
+    res = CliRunner().invoke(main, ["bench", "quality", "--sync", "--live"])
+    assert res.exit_code == 2 and "choose one of sync and live" in res.stderr

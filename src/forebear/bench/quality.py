@@ -533,7 +533,7 @@ def plots(results: Sequence[Mapping[str, Any]], proto: Protocol, out_dir: Path) 
 
 
 def main(smoke: bool = False, out_dir: str | None = None, proto: Protocol | None = None, progress: bool = False,
-         sync: bool = False) -> dict[str, Any]:
+         sync: bool = False, live: bool = False) -> dict[str, Any]:
     """Run the benchmark; returns its figures (``mean_regret`` at the last trial per method).
 
     Parameters
@@ -546,8 +546,19 @@ def main(smoke: bool = False, out_dir: str | None = None, proto: Protocol | None
         An explicit protocol (overrides ``smoke`` and ``sync``).
     sync
         Synchronous rounds instead of the asynchronous mode.
+    live
+        Each search through ``forebear.run`` (``live.py``), with the protocol's methods
+        that a spec can ask for (forebear with and without history, random search).
     """
-    proto = proto or replace(SMOKE if smoke else Protocol(), mode="sync" if sync else "async")
+    if sync and live:
+        msg = "choose one of sync and live"
+        raise ValueError(msg)
+    if proto is None:
+        proto = replace(SMOKE if smoke else Protocol(), mode="sync" if sync else "live" if live else "async")
+        if live:
+            from forebear.bench.live import supported
+
+            proto = replace(proto, methods=tuple(m for m in proto.methods if supported(METHODS[m])))
     t0 = time.perf_counter()
     partial = None
     if out_dir is not None:

@@ -276,6 +276,8 @@ _bench_command("overhead", "Worker utilisation and per-trial overhead on a local
 _bench_command("quality", "Regret on transfer task families (leave one task out).", [
     click.option("--smoke", is_flag=True, help="One family, 3 held-out tasks, 2 seeds, 15 trials."),
     click.option("--sync", is_flag=True, help="Synchronous rounds instead of the asynchronous mode (the default)."),
+    click.option("--live", is_flag=True, help="Each search through forebear run on an embedded cluster, in real time "
+                 "(forebear with and without history, random search)."),
     click.option("--out", "out_dir", default=None, type=click.Path(file_okay=False), help="Folder for plots and tables."),
 ])
 _bench_command("stopping", "Worker time the stopping rules save on learning-curve families.", [
