@@ -46,5 +46,5 @@ def test_workers_run_concurrently_with_pending_points_and_no_random_fill() -> No
 
 def test_protocol_mode_is_checked() -> None:
     assert Protocol().mode == "async"
-    with pytest.raises(ValueError, match="mode must be 'async' or 'sync'"):
+    with pytest.raises(ValueError, match="mode must be 'async', 'sync' or 'live'"):
         Protocol(mode="later")
