@@ -93,6 +93,39 @@ def test_history_rule_halts_a_hopeless_curve_and_keeps_a_promising_one() -> None
     assert reason is not None and reason.startswith("history:")
 
 
+def test_history_rule_overrules_halving_on_a_near_tie_before_any_trial_finished() -> None:
+    # Halving alone, with eta 3, keeps only the leader of a rung of 3: a trial 0.01 behind it is
+    # halted. The curve model says the two are likely to end alike (the history curves' noise at a
+    # rung is 0.05), so it goes on; a trial far behind is halted as halving says.
+    rng = np.random.default_rng(0)
+    stopping = Stopping("history", steps=27, min_step=1, eta=3, threshold=0.05)
+    rule = make_rule(stopping, [_curves(rng, 40, 27, 0.0), _curves(rng, 40, 27, 3.0)])
+    assert isinstance(rule, HistoryRule)
+    halving = HalvingRule(stopping.rungs(), stopping.eta)
+    assert MIN_SCALE_TRIALS <= 3  # the third trial at the first rung sets the search's scale
+    for trial, value in [(0, 1.0), (1, 2.5)]:
+        assert (rule.observe(trial, 1, value) is None) == (halving.observe(trial, 1, value) is None)
+    near_tie = halving.observe(2, 1, 1.01)
+    assert near_tie is not None and near_tie.startswith("halving:")  # second of three: halving halts it
+    assert rule.observe(2, 1, 1.01) is None  # the history rule lets it go on
+    reason = rule.observe(9, 1, 4.0)
+    assert reason is not None and reason.startswith("halving:")
+
+
+def test_history_rule_lets_a_likely_winner_through_a_full_rung() -> None:
+    # After a trial finished, a trial that halving ranks out but that is more likely than not to
+    # end below the best final score goes on.
+    rng = np.random.default_rng(1)
+    stopping = Stopping("history", steps=27, min_step=1, eta=3, threshold=0.05)
+    rule = make_rule(stopping, [_curves(rng, 40, 27, 0.0), _curves(rng, 40, 27, 3.0)])
+    assert isinstance(rule, HistoryRule)
+    for trial, value in enumerate([-1.0, -0.9, 0.5, 1.0, 1.5, 2.0]):
+        rule.observe(trial, 1, value)
+    rule.finished(2, 0.0)  # the best final so far; trials 0 and 1 head for about -2
+    assert rule.observe(50, 1, -0.8) is None  # third of seven (top 2 go on) yet likely below 0.0
+    assert HalvingRule.verdict(rule, 50, 0) is not None
+
+
 def test_history_rule_without_curves_is_halving() -> None:
     stopping = Stopping("history", steps=27, min_step=1, eta=3)
     assert type(make_rule(stopping, [])) is HalvingRule

@@ -14,16 +14,23 @@ far. Trials arriving at an empty rung go on, as in the paper's asynchronous
 version, which promotes without waiting for a full rung.
 
 :class:`HistoryRule` learns from earlier searches how a partial curve
-continues. Per history search, scores are put on a common scale by the
-median and spread of that search's scores at the first rung (every trial
-reaches it). For each rung it keeps the pairs (scaled score at the rung,
-scaled final score) of the history trials that ran to the end, and predicts
-a running trial's final score as a least-squares line through them plus the
-empirical distribution of the line's residuals. A trial halts when the
-predicted chance of ending below the current best final score is under
-``threshold``. Without enough history pairs at a rung, before the current
-search has a finished trial, or before enough trials reached its first rung
-to set the scale, it decides as :class:`HalvingRule`.
+continues, and uses that as a second opinion on halving's decisions. Per
+history search, scores are put on a common scale by the median and spread of
+that search's scores at the first rung (every trial reaches it). For each
+rung it keeps the pairs (scaled score at the rung, scaled final score) of the
+history trials that ran to the end, and predicts a running trial's final
+score as a least-squares line through them plus the empirical distribution of
+the line's residuals. With ``p`` the predicted chance of ending below the
+best final score so far, a trial halts when ``p`` is under ``threshold``;
+a trial halving would halt goes on when ``p`` is at least ``RESCUE``. Before
+any trial of the search has finished there is no best final score: then a
+trial halving would halt goes on when its chance of ending below the
+predicted final of the rung's leader (the line's median at the leader's
+score) is at least ``RESCUE_EARLY``; asynchronous halving's first rungs hold
+only a few trials, and most of its halts of the eventual best configuration
+happen there (docs/benchmarks.md). Without enough history pairs at a rung, or
+before enough trials reached the first rung to set the scale, it decides as
+:class:`HalvingRule`.
 """
 
 from __future__ import annotations
@@ -36,7 +43,9 @@ from forebear.core.halting import Stopping
 from forebear.records.curves import CurveSet, value_at
 
 MIN_PAIRS = 20  # history pairs per rung below which the line and its residuals are too rough to trust
-MIN_SCALE_TRIALS = 5  # trials at the first rung before the current search's scale is set
+MIN_SCALE_TRIALS = 3  # trials at the first rung before the current search's scale is set (3 and 5 measured)
+RESCUE = 0.5  # chance of beating the best final at which a trial halving would halt goes on (measured)
+RESCUE_EARLY = 0.4  # the same before any trial finished, against the rung leader's predicted final
 SPREAD_FLOOR = 1e-9  # a search whose first-rung scores are all equal has no usable scale
 
 
@@ -138,6 +147,14 @@ class CurveModel:
     def usable(self) -> bool:
         return any(line is not None for line in self.lines)
 
+    def median_final(self, k: int, x: float) -> float | None:
+        """The median predicted final scaled score for scaled score ``x`` at fraction ``k``."""
+        line = self.lines[k] if k < len(self.lines) else None
+        if line is None:
+            return None
+        slope, intercept, residuals = line
+        return slope * x + intercept + float(np.median(residuals))
+
     def chance_below(self, k: int, x: float, target: float) -> float | None:
         """P(final < target) for scaled score ``x`` at fraction ``k``; None without a line there."""
         line = self.lines[k] if k < len(self.lines) else None
@@ -151,7 +168,7 @@ class CurveModel:
 
 
 class HistoryRule(HalvingRule):
-    """The history-informed rule (see the module docstring); halving where it cannot decide.
+    """The history-informed rule (see the module docstring): halving, overruled by the curve model.
 
     It decides at rungs only: checking at every step was measured too (docs/benchmarks.md) and
     halted the best configuration more often, each extra look being one more chance of a false stop.
@@ -170,16 +187,27 @@ class HistoryRule(HalvingRule):
         self.best = value if self.best is None else min(self.best, value)
 
     def verdict(self, trial: int, k: int) -> str | None:
+        halving = super().verdict(trial, k)
         scale = _scale(list(self.values[0].values())) if len(self.values[0]) >= MIN_SCALE_TRIALS else None
-        chance = None
-        if scale is not None and self.best is not None:
-            loc, spread = scale
-            chance = self.model.chance_below(k, (self.values[k][trial] - loc) / spread, (self.best - loc) / spread)
-        if chance is None:
-            return super().verdict(trial, k)
-        if chance >= self.threshold:
+        if scale is None:
+            return halving
+        loc, spread = scale
+        x = (self.values[k][trial] - loc) / spread
+        if self.best is not None:
+            chance = self.model.chance_below(k, x, (self.best - loc) / spread)
+            if chance is None:
+                return halving
+            if chance < self.threshold:
+                return f"history: at step {self.rungs[k]} its chance of beating the best ({chance:.3f}) is below {self.threshold:g}"
+            return None if halving is None or chance >= RESCUE else f"{halving}; its chance of beating the best is {chance:.3f}"
+        if halving is None:
             return None
-        return f"history: at step {self.rungs[k]} its chance of beating the best ({chance:.3f}) is below {self.threshold:g}"
+        rivals = [v for t, v in self.values[k].items() if t != trial]
+        leader = self.model.median_final(k, (min(rivals) - loc) / spread) if rivals else None
+        chance = self.model.chance_below(k, x, leader) if leader is not None else None
+        if chance is None or chance < RESCUE_EARLY:
+            return halving
+        return None
 
 
 def make_rule(stopping: Stopping, sets: Sequence[CurveSet] = ()) -> HalvingRule | None:
