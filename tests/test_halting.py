@@ -78,11 +78,17 @@ def _curves(rng: np.random.Generator, n: int, final: int, shift: float) -> Curve
     return cs
 
 
-def test_history_rule_halts_a_hopeless_curve_and_keeps_a_promising_one() -> None:
-    rng = np.random.default_rng(0)
+def _history_rule(seed: int) -> tuple[HistoryRule, Stopping]:
+    """A history rule (rungs at 1, 3, 9 of 27) learnt from two history searches of 40 curves each."""
+    rng = np.random.default_rng(seed)
     stopping = Stopping("history", steps=27, min_step=1, eta=3, threshold=0.05)
     rule = make_rule(stopping, [_curves(rng, 40, 27, 0.0), _curves(rng, 40, 27, 3.0)])
     assert isinstance(rule, HistoryRule)
+    return rule, stopping
+
+
+def test_history_rule_halts_a_hopeless_curve_and_keeps_a_promising_one() -> None:
+    rule, stopping = _history_rule(0)
     # This search's first-rung scores sit like a history search's (asymptote + about 1.1); they
     # set its scale. The best finished trial ended at -0.89 (asymptote -1).
     for trial, value in enumerate(np.linspace(0.1, 2.1, MIN_SCALE_TRIALS)):
@@ -97,10 +103,7 @@ def test_history_rule_overrules_halving_on_a_near_tie_before_any_trial_finished(
     # Halving alone, with eta 3, keeps only the leader of a rung of 3: a trial 0.01 behind it is
     # halted. The curve model says the two are likely to end alike (the history curves' noise at a
     # rung is 0.05), so it goes on; a trial far behind is halted as halving says.
-    rng = np.random.default_rng(0)
-    stopping = Stopping("history", steps=27, min_step=1, eta=3, threshold=0.05)
-    rule = make_rule(stopping, [_curves(rng, 40, 27, 0.0), _curves(rng, 40, 27, 3.0)])
-    assert isinstance(rule, HistoryRule)
+    rule, stopping = _history_rule(0)
     halving = HalvingRule(stopping.rungs(), stopping.eta)
     assert MIN_SCALE_TRIALS <= 3  # the third trial at the first rung sets the search's scale
     for trial, value in [(0, 1.0), (1, 2.5)]:
@@ -115,10 +118,7 @@ def test_history_rule_overrules_halving_on_a_near_tie_before_any_trial_finished(
 def test_history_rule_lets_a_likely_winner_through_a_full_rung() -> None:
     # After a trial finished, a trial that halving ranks out but that is more likely than not to
     # end below the best final score goes on.
-    rng = np.random.default_rng(1)
-    stopping = Stopping("history", steps=27, min_step=1, eta=3, threshold=0.05)
-    rule = make_rule(stopping, [_curves(rng, 40, 27, 0.0), _curves(rng, 40, 27, 3.0)])
-    assert isinstance(rule, HistoryRule)
+    rule, stopping = _history_rule(1)
     for trial, value in enumerate([-1.0, -0.9, 0.5, 1.0, 1.5, 2.0]):
         rule.observe(trial, 1, value)
     rule.finished(2, 0.0)  # the best final so far; trials 0 and 1 head for about -2
