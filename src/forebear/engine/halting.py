@@ -147,9 +147,12 @@ class CurveModel:
     def usable(self) -> bool:
         return any(line is not None for line in self.lines)
 
+    def _line(self, k: int) -> tuple[float, float, np.ndarray] | None:
+        return self.lines[k] if k < len(self.lines) else None
+
     def median_final(self, k: int, x: float) -> float | None:
         """The median predicted final scaled score for scaled score ``x`` at fraction ``k``."""
-        line = self.lines[k] if k < len(self.lines) else None
+        line = self._line(k)
         if line is None:
             return None
         slope, intercept, residuals = line
@@ -157,7 +160,7 @@ class CurveModel:
 
     def chance_below(self, k: int, x: float, target: float) -> float | None:
         """P(final < target) for scaled score ``x`` at fraction ``k``; None without a line there."""
-        line = self.lines[k] if k < len(self.lines) else None
+        line = self._line(k)
         if line is None:
             return None
         slope, intercept, residuals = line
