@@ -42,6 +42,7 @@ from forebear.engine.cache import default_cache_dir, load_or_train
 from forebear.engine.refits import Refits
 from forebear.engine.runtime import finite as _finite
 from forebear.engine.runtime import threads as _threads
+from forebear.engine.spread import REFERENCE, Spread
 from forebear.engine.surrogate.deep_kernel import MetaModel, Settings, cache_key
 from forebear.engine.surrogate.gp import Posterior, as_tensor, feasibility
 from forebear.engine.surrogate.select import Choice, Prequential, choose
@@ -124,6 +125,10 @@ class Proposer:
         With history and ``warm_start``, the fraction of the initial design
         taken from history; a Latin hypercube fills the rest, a hedge against
         history that misleads.
+    spread
+        Standardise the deep kernel's scores on their spread times the factor
+        :class:`forebear.engine.spread.Spread` measures on history (``False``:
+        on their own spread, as before).
     """
 
     def __init__(
@@ -147,6 +152,7 @@ class Proposer:
         deep_kernel: Settings | Mapping[str, Any] | None = None,
         n_candidates: int = 2048,
         history_share: float = HISTORY_SHARE,
+        spread: bool = True,
         **more: Any,
     ) -> None:
         if more:
@@ -178,6 +184,9 @@ class Proposer:
             msg = f"history_share must be in [0, 1], got {history_share}"
             raise ValueError(msg)
         self.history_share = history_share
+        self.spread = spread
+        self._impute: Any = None  # the per-task GP imputer, shared by the warm start and the spread
+        self._spread: Spread | None = None
         dk = deep_kernel if isinstance(deep_kernel, Settings) else Settings(**dict(deep_kernel or {}))
         # Meta-training uses the deep-kernel settings' own seed (0 unless given), not the search's:
         # searches that share a history then share one cache entry.
@@ -321,8 +330,22 @@ class Proposer:
     def _design(self, k: int) -> list[dict[str, Any]]:
         if not (self.tasks and self.warm_start):
             return self.space.latin_hypercube(k, seed=self.seed)
-        impute = gp_imputer(self.tasks, seed=self.seed) if self.meta_model() is not None else None
+        impute = self._imputer() if self.meta_model() is not None else None
         return initial_design(self.space, k, tasks=self.tasks, impute=impute, seed=self.seed, share=self.history_share)
+
+    def _imputer(self) -> Any:
+        if self._impute is None:
+            self._impute = gp_imputer(self.tasks, seed=self.seed)
+        return self._impute
+
+    def _scale_factor(self, X: np.ndarray) -> float:
+        """The deep kernel's scale factor for the observed configurations (engine/spread.py)."""
+        if not self.spread:
+            return 1.0
+        if self._spread is None:
+            ref = np.vstack([self.space.encode(c) for c in self.space.sample(REFERENCE, np.random.default_rng([self.seed, 1]))])
+            self._spread = Spread(self.tasks, self._imputer(), ref, seed=self.seed)
+        return self._spread.factor(X)
 
     def _model_batch(
         self,
@@ -374,7 +397,7 @@ class Proposer:
         models: dict[str, Any] = {}
         meta = self.meta_model()
         if meta is not None:
-            models["deep-kernel"] = meta.posterior(X, y, fine_tune=self.fine_tune, seed=self.seed)
+            models["deep-kernel"] = meta.posterior(X, y, fine_tune=self.fine_tune, seed=self.seed, spread=self._scale_factor(X))
         if meta is None:  # the plain GP alone, integrated over its hyperparameters on few points
             return Choice(*self._gp.mixture(X, y), "gp")
         guarded = self.model == "auto" and self.guard

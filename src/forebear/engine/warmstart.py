@@ -27,29 +27,36 @@ Imputer = Callable[[int, np.ndarray], np.ndarray]
 IMPUTE_FIT_POINTS = 300  # a history task's GP fits its hyperparameters on at most this many points
 
 
-def gp_imputer(tasks: Sequence[Any], seed: int = 0) -> Imputer:
+class GPImputer:
     """Impute each history task's scores by a plain GP fitted to that task alone.
 
     Hyperparameters are fitted on at most :data:`IMPUTE_FIT_POINTS` of the task's
     points (its best half and a random draw from the rest, ``gp.subset``), the
     posterior conditions on all of them; each task is fitted once, when first asked.
     A per-task GP measured better than the meta-trained model's imputation on the
-    hartmann families (docs/engine.md, "The warm start").
+    hartmann families (docs/engine.md, "The warm start"). A class, not a closure, so
+    that a proposer holding one still pickles.
     """
-    posts: dict[int, Any] = {}
 
-    def impute(j: int, X_query: np.ndarray) -> np.ndarray:
-        t = tasks[j]
+    def __init__(self, tasks: Sequence[Any], seed: int = 0) -> None:
+        self.tasks, self.seed = tasks, seed
+        self._posts: dict[int, Any] = {}
+
+    def __call__(self, j: int, X_query: np.ndarray) -> np.ndarray:
+        t = self.tasks[j]
         y = np.asarray(t.y, float)
-        if j not in posts:
-            idx = subset(y, IMPUTE_FIT_POINTS, np.random.default_rng([seed, j]))
-            fit = fit_gp(t.X[idx], y[idx], restarts=1, seed=seed)
-            posts[j] = fit_gp(t.X, y, init=fit.state, max_iter=0, seed=seed).posterior if len(idx) < len(y) else fit.posterior
+        if j not in self._posts:
+            idx = subset(y, IMPUTE_FIT_POINTS, np.random.default_rng([self.seed, j]))
+            fit = fit_gp(t.X[idx], y[idx], restarts=1, seed=self.seed)
+            self._posts[j] = fit_gp(t.X, y, init=fit.state, max_iter=0, seed=self.seed).posterior if len(idx) < len(y) else fit.posterior
         lo, hi = float(y.min()), float(y.max())
-        mean = np.asarray(posts[j].predict(np.asarray(X_query, float))[0], float)
+        mean = np.asarray(self._posts[j].predict(np.asarray(X_query, float))[0], float)
         return (mean - lo) / (hi - lo if hi - lo > 1e-12 else 1.0)
 
-    return impute
+
+def gp_imputer(tasks: Sequence[Any], seed: int = 0) -> Imputer:
+    """A :class:`GPImputer` of ``tasks``."""
+    return GPImputer(tasks, seed)
 
 
 def initial_design(

@@ -314,10 +314,13 @@ class MetaModel:
 
     # -- the current search -------------------------------------------------
 
-    def posterior(self, X: np.ndarray, y: np.ndarray, *, fine_tune: bool = True, max_exact: int = MAX_EXACT, seed: int = 0) -> MetaPosterior:
+    def posterior(
+        self, X: np.ndarray, y: np.ndarray, *, fine_tune: bool = True, max_exact: int = MAX_EXACT, seed: int = 0, spread: float = 1.0,
+    ) -> MetaPosterior:
         """Posterior on the current search's observations.
 
-        Scores are standardised on their own mean and spread; offset and amplitude are
+        Scores are standardised on their own mean and on ``spread`` times their own spread
+        (``engine/spread.py`` measures the factor on history); offset and amplitude are
         integrated out; with ``fine_tune`` the residual amplitude is chosen on the grid
         ``LAMBDAS`` and the noise on ``NOISE_SCALES`` (otherwise both stay at the meta-trained values).
         """
@@ -325,6 +328,7 @@ class MetaModel:
         idx = subset(y, max_exact, np.random.default_rng(seed))
         Xt, yt = as_tensor(np.asarray(X)[idx], self.device), as_tensor(y[idx], self.device)
         shift, scale = standardise(y[idx])
+        scale *= float(spread)
         if not fine_tune or len(idx) < 2:
             return MetaPosterior(self.net, Xt, yt, shift, scale, 1.0)
         with torch.no_grad():
