@@ -5,9 +5,12 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
+from forebear.core.space import Space
 from forebear.engine.spread import CAP, Spread
 from forebear.engine.warmstart import gp_imputer
 from forebear.records.history import Task
+
+SPACE = Space.from_dict({"a": {"float": [0.0, 1.0]}, "b": {"float": [0.0, 1.0]}})
 
 
 def _bowls(n_tasks: int = 6, n: int = 120, seed: int = 0) -> list[Task]:
@@ -28,7 +31,7 @@ def _uniform(n: int, seed: int = 9) -> np.ndarray:
 @pytest.fixture(scope="module")
 def spread() -> Spread:
     tasks = _bowls()
-    return Spread(tasks, gp_imputer(tasks, seed=0), _uniform(256), seed=0)
+    return Spread(SPACE, tasks, gp_imputer(tasks, seed=0), seed=0, reference=_uniform(256))
 
 
 def test_random_configurations_get_about_one(spread: Spread) -> None:
@@ -61,16 +64,16 @@ def test_a_history_without_information_does_not_widen() -> None:
     # measured 1-2.3 here, against 10 for each on the unshuffled bowls.
     rng = np.random.default_rng(1)
     tasks = [Task(t.name, t.configs, t.X, rng.permutation(t.y)) for t in _bowls()]
-    s = Spread(tasks, gp_imputer(tasks, seed=0), _uniform(256), seed=0)
+    s = Spread(SPACE, tasks, gp_imputer(tasks, seed=0), seed=0, reference=_uniform(256))
     clusters = np.random.default_rng(3).uniform(-0.05, 0.05, (10, 4, 2)) + 0.5
     assert np.median([s.factor(c) for c in clusters]) < 1.5
 
 
 def test_no_history_or_one_point_is_one() -> None:
     tasks = _bowls(2)
-    s = Spread(tasks, gp_imputer(tasks), _uniform(64), seed=0)
+    s = Spread(SPACE, tasks, gp_imputer(tasks), seed=0, reference=_uniform(64))
     assert s.factor(np.array([[0.5, 0.5]])) == 1.0
-    assert Spread([], gp_imputer([]), _uniform(64)).factor(np.random.default_rng(0).random((5, 2))) == 1.0
+    assert Spread(SPACE, [], gp_imputer([]), reference=_uniform(64)).factor(np.random.default_rng(0).random((5, 2))) == 1.0
 
 
 def test_the_factor_widens_the_deep_kernels_predictions() -> None:

@@ -42,11 +42,11 @@ from forebear.engine.cache import default_cache_dir, load_or_train
 from forebear.engine.refits import Refits
 from forebear.engine.runtime import finite as _finite
 from forebear.engine.runtime import threads as _threads
-from forebear.engine.spread import REFERENCE, Spread
+from forebear.engine.spread import Spread
 from forebear.engine.surrogate.deep_kernel import MetaModel, Settings, cache_key
 from forebear.engine.surrogate.gp import Posterior, as_tensor, feasibility
 from forebear.engine.surrogate.select import Choice, Prequential, choose
-from forebear.engine.warmstart import covered_size, extend_design, gp_imputer, initial_design
+from forebear.engine.warmstart import GPImputer, covered_size, extend_design, initial_design
 
 MODELS = ("auto", "gp", "deep-kernel")
 FAILED = ("impute", "classifier")
@@ -126,9 +126,7 @@ class Proposer:
         taken from history; a Latin hypercube fills the rest, a hedge against
         history that misleads.
     spread
-        Standardise the deep kernel's scores on their spread times the factor
-        :class:`forebear.engine.spread.Spread` measures on history (``False``:
-        on their own spread, as before).
+        Scale the deep kernel by the factor :class:`forebear.engine.spread.Spread` measures on history.
     """
 
     def __init__(
@@ -184,9 +182,8 @@ class Proposer:
             msg = f"history_share must be in [0, 1], got {history_share}"
             raise ValueError(msg)
         self.history_share = history_share
-        self.spread = spread
-        self._impute: Any = None  # the per-task GP imputer, shared by the warm start and the spread
-        self._spread: Spread | None = None
+        self._impute = GPImputer(tasks, seed)  # fits a task's GP when first asked; warm start and spread share it
+        self._spread = Spread(space, tasks, self._impute, seed=seed) if spread and tasks else None
         dk = deep_kernel if isinstance(deep_kernel, Settings) else Settings(**dict(deep_kernel or {}))
         # Meta-training uses the deep-kernel settings' own seed (0 unless given), not the search's:
         # searches that share a history then share one cache entry.
@@ -290,9 +287,7 @@ class Proposer:
         carries the rest); without, the design's ``min(dim + 1, 10)`` (at least 2, at most ``k``),
         so that design points still running are replaced by more of the design, not by a GP
         fitted on two or three scores (docs/engine.md, "The asynchronous path")."""
-        if self.use_meta:
-            return 1
-        return max(2, min(k, self.space.dim + 1, 10))
+        return 1 if self.use_meta else max(2, min(k, self.space.dim + 1, 10))
 
     def _fresh(self, configs: Any, seen: set[bytes], limit: int, source: str) -> list[Proposal]:
         """Up to ``limit`` of ``configs`` not in ``seen`` (which they join), as proposals of ``source``."""
@@ -330,22 +325,8 @@ class Proposer:
     def _design(self, k: int) -> list[dict[str, Any]]:
         if not (self.tasks and self.warm_start):
             return self.space.latin_hypercube(k, seed=self.seed)
-        impute = self._imputer() if self.meta_model() is not None else None
+        impute = self._impute if self.meta_model() is not None else None
         return initial_design(self.space, k, tasks=self.tasks, impute=impute, seed=self.seed, share=self.history_share)
-
-    def _imputer(self) -> Any:
-        if self._impute is None:
-            self._impute = gp_imputer(self.tasks, seed=self.seed)
-        return self._impute
-
-    def _scale_factor(self, X: np.ndarray) -> float:
-        """The deep kernel's scale factor for the observed configurations (engine/spread.py)."""
-        if not self.spread:
-            return 1.0
-        if self._spread is None:
-            ref = np.vstack([self.space.encode(c) for c in self.space.sample(REFERENCE, np.random.default_rng([self.seed, 1]))])
-            self._spread = Spread(self.tasks, self._imputer(), ref, seed=self.seed)
-        return self._spread.factor(X)
 
     def _model_batch(
         self,
@@ -397,7 +378,7 @@ class Proposer:
         models: dict[str, Any] = {}
         meta = self.meta_model()
         if meta is not None:
-            models["deep-kernel"] = meta.posterior(X, y, fine_tune=self.fine_tune, seed=self.seed, spread=self._scale_factor(X))
+            models["deep-kernel"] = meta.posterior(X, y, fine_tune=self.fine_tune, seed=self.seed, spread=self._spread.factor(X) if self._spread else 1.0)
         if meta is None:  # the plain GP alone, integrated over its hyperparameters on few points
             return Choice(*self._gp.mixture(X, y), "gp")
         guarded = self.model == "auto" and self.guard

@@ -32,6 +32,7 @@ from typing import Any
 
 import numpy as np
 
+from forebear.core.space import Space
 from forebear.engine.warmstart import Imputer
 
 CAP = 10.0  # at most this factor: a bound, not a measured value (the factors seen were 1-8)
@@ -49,20 +50,22 @@ class Spread:
 
     Parameters
     ----------
+    space
+        The search space (its random configurations are the reference).
     tasks
         History tasks (``forebear.records.history.Task``: encoded ``X``, scores ``y``).
     impute
         Task-normalised scores of a history task at encoded configurations.
     reference
-        Encoded random configurations of the space (:data:`REFERENCE` of them, say): what a
-        random support looks like.
+        Encoded configurations that stand for a random support; default :data:`REFERENCE`
+        random configurations of ``space`` (drawn when first needed).
     seed
         Seed of the random subsets.
     """
 
-    def __init__(self, tasks: Sequence[Any], impute: Imputer, reference: np.ndarray, seed: int = 0) -> None:
-        self.tasks, self.impute, self.seed = list(tasks), impute, seed
-        self.reference = np.asarray(reference, float)
+    def __init__(self, space: Space, tasks: Sequence[Any], impute: Imputer, seed: int = 0, reference: np.ndarray | None = None) -> None:
+        self.space, self.tasks, self.impute, self.seed = space, list(tasks), impute, seed
+        self._reference_X = None if reference is None else np.asarray(reference, float)
         self._subset_sd: dict[int, np.ndarray] = {}  # size -> each task's mean spread of random subsets
         self._ref_scores: dict[int, np.ndarray] = {}  # task -> imputed scores at the reference
 
@@ -80,6 +83,13 @@ class Spread:
         f = float(np.quantile(ratio, QUANTILE))
         return 1.0 if f < FLOOR else min(f, CAP)
 
+    def reference(self) -> np.ndarray:
+        """The encoded reference configurations."""
+        if self._reference_X is None:
+            configs = self.space.sample(REFERENCE, np.random.default_rng([self.seed, 1]))
+            self._reference_X = np.vstack([self.space.encode(c) for c in configs])
+        return self._reference_X
+
     def _reference(self, n: int) -> np.ndarray:
         """Each task's mean spread of ``n`` random configurations, imputed as the observed ones are.
 
@@ -91,7 +101,7 @@ class Spread:
             out = []
             for j in range(len(self.tasks)):
                 if j not in self._ref_scores:
-                    self._ref_scores[j] = np.asarray(self.impute(j, self.reference), float)
+                    self._ref_scores[j] = np.asarray(self.impute(j, self.reference()), float)
                 u = self._ref_scores[j]
                 # Without replacement, unless there are enough reference points that it makes no
                 # difference (drawing with replacement then keeps this O(n) per draw).
