@@ -74,7 +74,7 @@ class Spread:
         n = len(X)
         if n < 2 or not self.tasks:
             return 1.0
-        ref = self._reference(n)
+        ref = self._subset_spread(n)
         sd = np.array([float(np.std(self.impute(j, X))) for j in range(len(self.tasks))])
         ok = np.isfinite(ref) & np.isfinite(sd) & (ref > 0)
         if not ok.any():
@@ -90,7 +90,7 @@ class Spread:
             self._reference_X = np.vstack([self.space.encode(c) for c in configs])
         return self._reference_X
 
-    def _reference(self, n: int) -> np.ndarray:
+    def _subset_spread(self, n: int) -> np.ndarray:
         """Each task's mean spread of ``n`` random configurations, imputed as the observed ones are.
 
         Imputed at new configurations on both sides, not the task's observed scores: where a
