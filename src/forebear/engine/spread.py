@@ -33,6 +33,7 @@ from typing import Any
 import numpy as np
 
 from forebear.core.space import Space
+from forebear.engine.acquisition import keys
 from forebear.engine.warmstart import Imputer
 
 CAP = 10.0  # at most this factor: a bound, not a measured value (the factors seen were 1-8)
@@ -68,6 +69,9 @@ class Spread:
         self._reference_X = None if reference is None else np.asarray(reference, float)
         self._subset_sd: dict[int, np.ndarray] = {}  # size -> each task's mean spread of random subsets
         self._ref_scores: dict[int, np.ndarray] = {}  # task -> imputed scores at the reference
+        # Observed configuration (by key) -> its imputed score on every task: each round hands in
+        # the same observations plus a few, and only the new ones are imputed.
+        self._seen: dict[bytes, np.ndarray] = {}
 
     def factor(self, X: np.ndarray) -> float:
         """The factor for encoded configurations ``X`` (1 with fewer than two, or no history)."""
@@ -75,13 +79,23 @@ class Spread:
         if n < 2 or not self.tasks:
             return 1.0
         ref = self._subset_spread(n)
-        sd = np.array([float(np.std(self.impute(j, X))) for j in range(len(self.tasks))])
+        sd = np.std(self._imputed(X), axis=0)
         ok = np.isfinite(ref) & np.isfinite(sd) & (ref > 0)
         if not ok.any():
             return 1.0
         ratio = ref[ok] / np.maximum(sd[ok], 1e-12)
         f = float(np.quantile(ratio, QUANTILE))
         return 1.0 if f < FLOOR else min(f, CAP)
+
+    def _imputed(self, X: np.ndarray) -> np.ndarray:
+        """Imputed scores of ``X`` on every task, shape ``(len(X), tasks)``."""
+        ks = keys(X)
+        new = [i for i, k in enumerate(ks) if k not in self._seen]
+        if new:
+            rows = np.asarray(X, float)[new]
+            cols = np.column_stack([np.asarray(self.impute(j, rows), float) for j in range(len(self.tasks))])
+            self._seen.update({ks[i]: cols[r] for r, i in enumerate(new)})
+        return np.vstack([self._seen[k] for k in ks])
 
     def reference(self) -> np.ndarray:
         """The encoded reference configurations."""
