@@ -8,6 +8,7 @@ from collections import Counter
 from pathlib import Path
 from typing import Any
 
+import numpy as np
 import pytest
 
 import forebear
@@ -305,3 +306,20 @@ def test_logbook_write_failure_stops_and_keeps_what_was_recorded(tmp_path: Path,
     assert table.header is not None and len(table) >= 1 and table.closed is None
     # Resuming after the disk has room again completes the search from what was recorded.
     assert forebear.run(spec).counts["scored"] == 20 - table.counts()["failed"]
+
+
+def test_a_history_that_disagrees_with_itself_is_not_used_and_the_run_says_so(tmp_path: Path, shared_loopback: LoopbackCluster, capsys: pytest.CaptureFixture[str]) -> None:
+    # Four earlier tasks whose scores are independent noise (invented data): they cannot rank
+    # configurations alike, so the search runs as a cold one (Latin-hypercube design, plain GP).
+    rng = np.random.default_rng(0)
+    lines = ["task,x,y,loss"] + [f"t{j},{rng.random():.4f},{rng.uniform(-1, 1):.4f},{rng.random():.4f}" for j in range(4) for _ in range(25)]
+    (tmp_path / "past.csv").write_text("\n".join(lines) + "\n")
+    spec = make_spec(tmp_path, shared_loopback, trials=5, batch=1, concurrency=1)
+    spec["history"] = [{"csv": str(tmp_path / "past.csv"), "task": "task", "score": "loss"}]
+    result = forebear.run(spec, quiet=False)
+    assert result.counts["scored"] == 5
+    err = capsys.readouterr().err
+    assert "history: 4 earlier search(es)" in err and "do not rank configurations alike" in err and "searching without history" in err
+    proposed = [r for r in Logbook(tmp_path / "runs" / "ctl.jsonl").records() if r["kind"] == "proposed"]
+    assert [r["source"] for r in proposed[:3]] == ["initial"] * 3  # min(dim + 1, 10) design points
+    assert {r["model"] for r in proposed if r["source"] == "model"} <= {"gp"}

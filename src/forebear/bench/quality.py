@@ -69,6 +69,7 @@ METHODS: dict[str, Method] = {m.name: m for m in (
     Method("no-fine-tune", "proposer", history=True, settings={"fine_tune": False}),
     Method("no-guard", "proposer", history=True, settings={"guard": False}),
     Method("no-spread", "proposer", history=True, settings={"spread": False}),
+    Method("no-agreement", "proposer", history=True, settings={"agreement": False}),
     # Peers from their papers (bench/peers): history warm start then plain GP, RGPE, and cold TPE.
     Method("warmstart-gp", "peer", history=True),
     Method("rgpe", "peer", history=True),

@@ -29,7 +29,7 @@ from __future__ import annotations
 import math
 import os
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass, replace
+from dataclasses import replace
 from pathlib import Path
 from typing import Any
 
@@ -38,7 +38,9 @@ import torch
 
 from forebear.core.space import Space
 from forebear.engine import acquisition
+from forebear.engine.agreement import verdict
 from forebear.engine.cache import default_cache_dir, load_or_train
+from forebear.engine.proposals import Observation, Proposal
 from forebear.engine.refits import Refits
 from forebear.engine.runtime import finite as _finite
 from forebear.engine.runtime import threads as _threads
@@ -53,29 +55,6 @@ FAILED = ("impute", "classifier")
 HISTORY_SHARE = 1.0  # of the initial design from history; 0.5 measured worse (docs/engine.md)
 GUARD_FROM = 3  # observations before the guard fits the plain GP next to the deep kernel
 DEFAULT_FAILED = "impute"  # chosen by `python -m forebear.bench.proposal failures` (docs/engine.md)
-
-
-@dataclass(frozen=True)
-class Proposal:
-    """One proposed configuration and where it came from.
-
-    ``source`` is ``initial``, ``model`` or ``random``; ``model`` names the
-    surrogate that proposed it (``gp``, ``deep-kernel``, ``mix``) or is
-    ``None``; ``acquisition`` is the log-EI of the point when it was chosen.
-    """
-
-    config: dict[str, Any]
-    source: str
-    model: str | None = None
-    acquisition: float | None = None
-
-
-@dataclass(frozen=True)
-class Observation:
-    """A finished trial as the proposer sees it: lower ``score`` is better."""
-
-    config: Mapping[str, Any]
-    score: float
 
 
 class Proposer:
@@ -122,11 +101,13 @@ class Proposer:
     n_candidates
         Quasi-random candidates per batch.
     history_share
-        With history and ``warm_start``, the fraction of the initial design
-        taken from history; a Latin hypercube fills the rest, a hedge against
-        history that misleads.
+        With history and ``warm_start``, the fraction of the initial design taken from history
+        (a Latin hypercube fills the rest).
     spread
         Scale the deep kernel by the factor :class:`forebear.engine.spread.Spread` measures on history.
+    agreement
+        Search without a history whose tasks do not rank configurations alike
+        (:mod:`forebear.engine.agreement`; not with ``model="deep-kernel"``).
     """
 
     def __init__(
@@ -151,6 +132,7 @@ class Proposer:
         n_candidates: int = 2048,
         history_share: float = HISTORY_SHARE,
         spread: bool = True,
+        agreement: bool = True,
         **more: Any,
     ) -> None:
         if more:
@@ -189,6 +171,8 @@ class Proposer:
         # searches that share a history then share one cache entry.
         self.settings = replace(dk, augment=augment)
         self.use_meta = bool(tasks) and model in ("auto", "deep-kernel")
+        self._check = agreement and model != "deep-kernel" and bool(tasks)  # check_history still to run
+        self.history_agreement: float | None = None  # what it measured
         if cache_dir is False:
             self.cache_dir: Path | None = None
         elif cache_dir is None or cache_dir is True:
@@ -216,6 +200,7 @@ class Proposer:
 
     def meta_model(self) -> MetaModel | None:
         """The meta-trained deep kernel (trained or loaded on first use), or ``None``."""
+        self.check_history()
         if not self.use_meta:
             return None
         if self._meta is None:
@@ -231,11 +216,21 @@ class Proposer:
 
     def history_hash(self) -> str:
         h = getattr(self.history, "hash", None)
-        if callable(h):
-            return str(h())
         from forebear.records.history import History  # a plain list of tasks hashes like a History
 
-        return History(list(self.tasks)).hash()
+        return str(h()) if callable(h) else History(list(self.tasks)).hash()
+
+    def check_history(self) -> str | None:
+        """Once: drop a history whose tasks disagree (:mod:`forebear.engine.agreement`); a line
+        for the user, or ``None`` when there was nothing to check."""
+        if not self._check:
+            return None
+        self._check = False
+        with _threads(self.threads):
+            use, self.history_agreement, note = verdict(self.space, self.tasks, self._impute, self.seed)
+        if not use:
+            self.tasks, self.use_meta, self._spread, self._impute = [], False, None, GPImputer([], self.seed)
+        return note
 
     def _load_or_train(self) -> MetaModel:
         meta, self.meta_seconds, self.meta_cached = load_or_train(
@@ -317,6 +312,7 @@ class Proposer:
         """Size of the initial design for a first round of ``batch``: ``n_initial`` when given, else
         ``max(batch, k)``, ``k = min(dim + 1, 10)`` cut by ``warmstart.covered_size`` with history."""
         k = min(self.space.dim + 1, 10)
+        self.check_history()
         if self.n_initial is None and self.tasks and self.warm_start and self._covered is None:
             with _threads(self.threads):
                 self._covered = covered_size(self.tasks, k, min(3, k), seed=self.seed)  # observed scores only: about 1 s

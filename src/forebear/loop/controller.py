@@ -169,6 +169,10 @@ class Controller(Attempts, Rounds, Opening):
             self.say(f"search {spec.name} is already complete ({self.book.finished} trials finished); nothing to do")
             return SearchResult.from_table(table, spec.logbook, str(table.closed.get("reason")))
         proposer = self._proposer or Proposer(spec.space, history=load_history(spec, self.say), seed=spec.seed)
+        check = getattr(proposer, "check_history", None)  # before the proposer leaves for its process
+        note = check() if callable(check) else None
+        if note:
+            self.say(note)
         engine = ProposalEngine(proposer, self.say)
         try:
             if self._dispatch is None:

@@ -19,7 +19,7 @@ import torch
 
 from forebear.core.space import Space
 from forebear.engine import acquisition
-from forebear.engine.proposer import Observation, Proposal
+from forebear.engine.proposals import Observation, Proposal
 
 
 class Peer:

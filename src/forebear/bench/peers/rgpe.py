@@ -47,7 +47,7 @@ from scipy.stats import qmc
 from forebear.bench.peers import _gp
 from forebear.bench.peers._base import Peer, targets
 from forebear.core.space import Space
-from forebear.engine.proposer import Observation, Proposal
+from forebear.engine.proposals import Observation, Proposal
 from forebear.engine.surrogate.gp import Posterior, as_tensor, standardise
 
 #: Posterior samples per weight computation; the paper's experiments use more, 256 keeps a round cheap.

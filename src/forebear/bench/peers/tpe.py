@@ -37,7 +37,7 @@ from scipy.special import ndtr, ndtri
 from forebear.bench.peers._base import Peer
 from forebear.core.space import Space
 from forebear.engine import acquisition
-from forebear.engine.proposer import Observation, Proposal
+from forebear.engine.proposals import Observation, Proposal
 
 #: The paper's quantile for the good group (from memory).
 GAMMA = 0.15

@@ -28,7 +28,7 @@ import torch
 from forebear.bench.peers import _gp
 from forebear.bench.peers._base import Peer, targets
 from forebear.core.space import Space
-from forebear.engine.proposer import Observation, Proposal
+from forebear.engine.proposals import Observation, Proposal
 
 
 def warm_start(tasks: Sequence[Any], t: int) -> list[dict[str, Any]]:
