@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 
 from forebear.core.space import Space
-from forebear.engine.agreement import MIN_TASKS, THRESHOLD, agreement, verdict
+from forebear.engine.agreement import BEST_SHARE, MIN_TASKS, THRESHOLD, agreement, verdict
 from forebear.engine.proposer import Observation, Proposer
 from forebear.engine.warmstart import gp_imputer
 from forebear.records.history import Task
@@ -36,13 +36,25 @@ def test_rank_correlation_of_known_surfaces() -> None:
     # pairs (A, A) = 1 and (A, -A) = -1 twice: the mean over the three pairs is -1/3.
     surfaces = [lambda X: X[:, 0] + 2 * X[:, 1], lambda X: X[:, 0] + 2 * X[:, 1], lambda X: -(X[:, 0] + 2 * X[:, 1])]
     tasks = _bowls(3)
-    assert agreement(SPACE, tasks, lambda j, X: surfaces[j](X)) == pytest.approx(-1 / 3)
-    assert agreement(SPACE, tasks, lambda j, X: surfaces[0](X) ** (j + 1)) == pytest.approx(1.0)  # monotone maps keep ranks
+    assert agreement(SPACE, tasks, lambda j, X: surfaces[j](X)).correlation == pytest.approx(-1 / 3)
+    assert agreement(SPACE, tasks, lambda j, X: surfaces[0](X) ** (j + 1)).correlation == pytest.approx(1.0)  # monotone maps keep ranks
+
+
+def test_where_each_task_best_falls_on_the_others() -> None:
+    # Every task scores a + b, and each task's best observed configuration is (0.3, 0.2), where
+    # a + b = 0.5: of uniform random points on the unit square, a share of 0.5^2 / 2 = 0.125 has
+    # a + b below 0.5 (the triangle under the line), so that is the share better than the best,
+    # up to the sampling error of 256 points (sd sqrt(0.125 * 0.875 / 256) = 0.021).
+    X = np.array([[0.3, 0.2], [0.9, 0.9], [0.6, 0.8]])
+    tasks = [Task(f"t{j}", [{"a": a, "b": b} for a, b in X], X, X.sum(1)) for j in range(3)]
+    a = agreement(SPACE, tasks, lambda j, Q: Q.sum(1))
+    assert a.correlation == pytest.approx(1.0) and a.best == pytest.approx(0.125, abs=0.065)
+    assert not a.disagrees
 
 
 def test_a_constant_task_counts_as_no_agreement() -> None:
     tasks = _bowls(3)
-    value = agreement(SPACE, tasks, lambda j, X: np.zeros(len(X)) if j == 2 else X[:, 0])
+    value = agreement(SPACE, tasks, lambda j, X: np.zeros(len(X)) if j == 2 else X[:, 0]).correlation
     assert value == pytest.approx(1 / 3)  # pairs: 1, and 0 twice for the constant task
 
 
@@ -50,11 +62,25 @@ def test_related_history_agrees_and_shuffled_history_does_not() -> None:
     related, shuffled = _bowls(), _bowls(shuffled=True)
     a = agreement(SPACE, related, gp_imputer(related, seed=0))
     b = agreement(SPACE, shuffled, gp_imputer(shuffled, seed=0))
-    assert a is not None and a > 0.8  # bowls centred within 0.2 of each other rank alike
-    assert b is not None and abs(b) < THRESHOLD
+    assert a is not None and a.correlation > 0.8 and a.best < 0.1  # bowls centred within 0.2 of each other
+    assert b is not None and abs(b.correlation) < THRESHOLD and b.best > BEST_SHARE and b.disagrees
     use, value, note = verdict(SPACE, shuffled, gp_imputer(shuffled, seed=0))
-    assert not use and value == pytest.approx(b) and "without history" in str(note)
+    assert not use and value == b and "without history" in str(note)
     assert verdict(SPACE, related, gp_imputer(related, seed=0))[0]
+
+
+def test_tasks_that_agree_only_on_their_best_configuration_are_kept() -> None:
+    # Noise everywhere but one configuration, the best on every task (invented data): the ranks of
+    # the space disagree, the tasks' bests do not, and that is what the warm start uses.
+    rng = np.random.default_rng(2)
+    tasks = []
+    for t in range(4):
+        X = np.vstack([[0.5, 0.5], rng.random((20, 2))])
+        y = rng.random(21) + 0.2
+        y[0] = 0.0
+        tasks.append(Task(f"t{t}", [{"a": a, "b": b} for a, b in X], X, y))
+    a = agreement(SPACE, tasks, gp_imputer(tasks, seed=0))
+    assert a.correlation < THRESHOLD and a.best < BEST_SHARE and not a.disagrees
 
 
 def test_too_few_tasks_are_not_judged() -> None:

@@ -12,10 +12,15 @@ was 1.45x the plain GP's, the guard keeping the deep kernel because it
 predicted about as well (docs/benchmarks.md, "Unrelated history").
 
 :func:`agreement` imputes every task's scores at random configurations (the
-warm start's per-task GP imputer) and returns the mean Spearman rank
-correlation over all pairs of tasks. :func:`verdict` turns it into the
-proposer's decision and a one-line note for the user: below :data:`THRESHOLD`
-the search runs as one without history (plain GP, Latin-hypercube start).
+warm start's per-task GP imputer) and measures two things: the mean Spearman
+rank correlation over all pairs of tasks (do they rank the whole space
+alike?), and where each task's best configuration falls on every other task,
+as the share of random configurations the other task's GP scores better
+(do they agree on what is good? 0.5 when they do not). A history is dropped
+only when both say no (correlation below :data:`THRESHOLD`, share above
+:data:`BEST_SHARE`): tasks that agree on their best configurations and
+differ elsewhere still give the warm start its first picks. Then the search
+runs as one without history (plain GP, Latin-hypercube start).
 The agreement says nothing about whether the *new* task resembles the earlier
 ones (that is the transfer guard's job, as the search goes); it only catches
 a history that cannot resemble anything, because it does not resemble itself.
@@ -24,6 +29,7 @@ a history that cannot resemble anything, because it does not resemble itself.
 from __future__ import annotations
 
 from collections.abc import Sequence
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
@@ -32,39 +38,58 @@ from scipy.stats import spearmanr
 from forebear.core.space import Space
 from forebear.engine.warmstart import Imputer
 
-# Below this mean pairwise rank correlation the history is not used. Ours, set in the gap
-# measured on the benchmark's families (docs/engine.md, "Histories that disagree"): related
-# histories 0.40-0.74, shuffled ones -0.01 to 0.02.
+# A history is dropped when its mean pairwise rank correlation is below THRESHOLD and its tasks'
+# best configurations place, on average, worse than BEST_SHARE of random configurations on the
+# other tasks. Both ours, set in the gaps measured on the benchmark's families (docs/engine.md,
+# "Histories that disagree"): related histories 0.36-0.98 and 0.23-0.29, shuffled ones -0.01 to
+# 0.02 and 0.47-0.52.
 THRESHOLD = 0.1
+BEST_SHARE = 0.35
 MIN_TASKS = 3  # fewer tasks give one or three pairs: too few to tell chance from disagreement
 REFERENCE = 256  # random configurations at which the tasks' imputed scores are compared
 
 
-def agreement(space: Space, tasks: Sequence[Any], impute: Imputer, seed: int = 0) -> float | None:
-    """Mean Spearman correlation over pairs of ``tasks`` of their imputed scores at random
-    configurations, or ``None`` with fewer than :data:`MIN_TASKS` tasks.
+@dataclass(frozen=True)
+class Agreement:
+    """How alike a history's tasks are: ``correlation``, the mean Spearman correlation over pairs
+    of tasks of their imputed scores at random configurations; ``best``, the mean share of random
+    configurations another task scores better than a task's best configuration."""
+
+    tasks: int
+    correlation: float
+    best: float
+
+    @property
+    def disagrees(self) -> bool:
+        return self.correlation < THRESHOLD and self.best > BEST_SHARE
+
+
+def agreement(space: Space, tasks: Sequence[Any], impute: Imputer, seed: int = 0) -> Agreement | None:
+    """The :class:`Agreement` of ``tasks`` (``None`` with fewer than :data:`MIN_TASKS`).
 
     A task whose imputed scores are constant (its GP found no structure) correlates 0.
     """
-    if len(tasks) < MIN_TASKS:
+    n = len(tasks)
+    if n < MIN_TASKS:
         return None
     configs = space.sample(REFERENCE, np.random.default_rng([seed, 2]))
     X = np.vstack([space.encode(c) for c in configs])
-    U = np.column_stack([np.asarray(impute(j, X), float) for j in range(len(tasks))])
+    U = np.column_stack([np.asarray(impute(j, X), float) for j in range(n)])
     with np.errstate(invalid="ignore", divide="ignore"):
         rho = np.atleast_2d(spearmanr(U).statistic)
-    off = rho[~np.eye(len(tasks), dtype=bool)]
-    return float(np.nan_to_num(off, nan=0.0).mean())
+    off = ~np.eye(n, dtype=bool)
+    best = np.vstack([np.asarray(t.X, float)[int(np.argmin(t.y))] for t in tasks])
+    V = np.column_stack([np.asarray(impute(j, best), float) for j in range(n)])  # V[i, j]: task j at task i's best
+    share = (U[None, :, :] < V[:, None, :]).mean(axis=1)  # [i, j]: share of random points better on j
+    return Agreement(n, float(np.nan_to_num(rho[off], nan=0.0).mean()), float(share[off].mean()))
 
 
-def verdict(space: Space, tasks: Sequence[Any], impute: Imputer, seed: int = 0) -> tuple[bool, float | None, str | None]:
+def verdict(space: Space, tasks: Sequence[Any], impute: Imputer, seed: int = 0) -> tuple[bool, Agreement | None, str | None]:
     """``(use, agreement, note)``: whether to use the history, the measure, and a line for the user."""
-    value = agreement(space, tasks, impute, seed)
-    if value is None:
+    a = agreement(space, tasks, impute, seed)
+    if a is None:
         return True, None, None
-    n = len(tasks)
-    if value < THRESHOLD:
-        note = (f"history: the {n} earlier searches do not rank configurations alike (mean rank correlation "
-                f"{value:.2f}, below {THRESHOLD}); searching without history")
-        return False, value, note
-    return True, value, f"history: the {n} earlier searches rank configurations alike (mean rank correlation {value:.2f})"
+    measure = f"mean rank correlation {a.correlation:.2f}; each one's best beats {1 - a.best:.0%} of random configurations on the others"
+    if a.disagrees:
+        return False, a, f"history: the {a.tasks} earlier searches do not rank configurations alike ({measure}); searching without history"
+    return True, a, f"history: the {a.tasks} earlier searches rank configurations alike ({measure})"
