@@ -38,7 +38,7 @@ import torch
 
 from forebear.core.space import Space
 from forebear.engine import acquisition
-from forebear.engine.agreement import verdict
+from forebear.engine.agreement import Agreement, verdict
 from forebear.engine.cache import default_cache_dir, load_or_train
 from forebear.engine.proposals import Observation, Proposal
 from forebear.engine.refits import Refits
@@ -172,7 +172,7 @@ class Proposer:
         self.settings = replace(dk, augment=augment)
         self.use_meta = bool(tasks) and model in ("auto", "deep-kernel")
         self._check = agreement and model != "deep-kernel" and bool(tasks)  # check_history still to run
-        self.history_agreement: float | None = None  # what it measured
+        self.history_agreement: Agreement | None = None  # what it measured
         if cache_dir is False:
             self.cache_dir: Path | None = None
         elif cache_dir is None or cache_dir is True:
