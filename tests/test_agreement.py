@@ -41,15 +41,19 @@ def test_rank_correlation_of_known_surfaces() -> None:
 
 
 def test_where_each_task_best_falls_on_the_others() -> None:
-    # Every task scores a + b, and each task's best observed configuration is (0.3, 0.2), where
-    # a + b = 0.5: of uniform random points on the unit square, a share of 0.5^2 / 2 = 0.125 has
-    # a + b below 0.5 (the triangle under the line), so that is the share better than the best,
-    # up to the sampling error of 256 points (sd sqrt(0.125 * 0.875 / 256) = 0.021).
-    X = np.array([[0.3, 0.2], [0.9, 0.9], [0.6, 0.8]])
-    tasks = [Task(f"t{j}", [{"a": a, "b": b} for a, b in X], X, X.sum(1)) for j in range(3)]
-    a = agreement(SPACE, tasks, lambda j, Q: Q.sum(1))
-    assert a.correlation == pytest.approx(1.0) and a.best == pytest.approx(0.125, abs=0.065)
-    assert not a.disagrees
+    # Three tasks score a + b at their own points, so each task's best is its point of least
+    # a + b. Tasks 0 and 1 impute a + b, task 2 its negation. On a task that agrees, none of the
+    # other points beats the best (share 0); on task 2 all of them do (share 1). Of the six ordered
+    # pairs, (0, 2) and (1, 2) have share 1: the mean is 2 / 6 = 1/3.
+    rng = np.random.default_rng(3)
+    tasks = []
+    for j in range(3):
+        X = rng.random((12, 2))
+        tasks.append(Task(f"t{j}", [{"a": a, "b": b} for a, b in X], X, X.sum(1)))
+    same = agreement(SPACE, tasks, lambda j, Q: Q.sum(1))
+    assert same.correlation == pytest.approx(1.0) and same.best == 0.0 and not same.disagrees
+    mixed = agreement(SPACE, tasks, lambda j, Q: -Q.sum(1) if j == 2 else Q.sum(1))
+    assert mixed.best == pytest.approx(1 / 3) and mixed.correlation == pytest.approx(-1 / 3)
 
 
 def test_a_constant_task_counts_as_no_agreement() -> None:

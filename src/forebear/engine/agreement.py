@@ -14,9 +14,11 @@ predicted about as well (docs/benchmarks.md, "Unrelated history").
 :func:`agreement` imputes every task's scores at random configurations (the
 warm start's per-task GP imputer) and measures two things: the mean Spearman
 rank correlation over all pairs of tasks (do they rank the whole space
-alike?), and where each task's best configuration falls on every other task,
-as the share of random configurations the other task's GP scores better
-(do they agree on what is good? 0.5 when they do not). A history is dropped
+alike?), and where each task's best configuration falls on every other task
+among that task's own other configurations, as the share of them the other
+task's GP scores better (do they agree on what is good? 0.5 when they do not,
+whatever the shape of the scores, since the best is then one of the task's
+points at random). A history is dropped
 only when both say no (correlation below :data:`THRESHOLD`, share above
 :data:`BEST_SHARE`): tasks that agree on their best configurations and
 differ elsewhere still give the warm start its first picks. Then the search
@@ -47,13 +49,14 @@ THRESHOLD = 0.1
 BEST_SHARE = 0.35
 MIN_TASKS = 3  # fewer tasks give one or three pairs: too few to tell chance from disagreement
 REFERENCE = 256  # random configurations at which the tasks' imputed scores are compared
+OWN = 64  # of a task's other configurations, at most this many are compared with its best
 
 
 @dataclass(frozen=True)
 class Agreement:
     """How alike a history's tasks are: ``correlation``, the mean Spearman correlation over pairs
-    of tasks of their imputed scores at random configurations; ``best``, the mean share of random
-    configurations another task scores better than a task's best configuration."""
+    of tasks of their imputed scores at random configurations; ``best``, the mean share of a task's
+    other configurations that another task scores better than the task's best one."""
 
     tasks: int
     correlation: float
@@ -78,9 +81,18 @@ def agreement(space: Space, tasks: Sequence[Any], impute: Imputer, seed: int = 0
     with np.errstate(invalid="ignore", divide="ignore"):
         rho = np.atleast_2d(spearmanr(U).statistic)
     off = ~np.eye(n, dtype=bool)
-    best = np.vstack([np.asarray(t.X, float)[int(np.argmin(t.y))] for t in tasks])
-    V = np.column_stack([np.asarray(impute(j, best), float) for j in range(n)])  # V[i, j]: task j at task i's best
-    share = (U[None, :, :] < V[:, None, :]).mean(axis=1)  # [i, j]: share of random points better on j
+    rng = np.random.default_rng([seed, 3])
+    share = np.zeros((n, n))
+    for i, t in enumerate(tasks):
+        Xi, yi = np.asarray(t.X, float), np.asarray(t.y, float)
+        b = int(np.argmin(yi))
+        rest = np.delete(np.arange(len(yi)), b)
+        rest = rest if len(rest) <= OWN else rng.choice(rest, OWN, replace=False)
+        Q = np.vstack([Xi[b : b + 1], Xi[rest]])
+        for j in range(n):
+            if j != i:
+                v = np.asarray(impute(j, Q), float)
+                share[i, j] = float((v[1:] < v[0]).mean())  # of task i's other points, better on j
     return Agreement(n, float(np.nan_to_num(rho[off], nan=0.0).mean()), float(share[off].mean()))
 
 
@@ -89,7 +101,8 @@ def verdict(space: Space, tasks: Sequence[Any], impute: Imputer, seed: int = 0) 
     a = agreement(space, tasks, impute, seed)
     if a is None:
         return True, None, None
-    measure = f"mean rank correlation {a.correlation:.2f}; each one's best beats {1 - a.best:.0%} of random configurations on the others"
+    measure = f"mean rank correlation {a.correlation:.2f}; each one's best beats {1 - a.best:.0%} of its other configurations on the others"
     if a.disagrees:
         return False, a, f"history: the {a.tasks} earlier searches do not rank configurations alike ({measure}); searching without history"
-    return True, a, f"history: the {a.tasks} earlier searches rank configurations alike ({measure})"
+    alike = "rank configurations alike" if a.correlation >= THRESHOLD else "agree on their best configurations"
+    return True, a, f"history: the {a.tasks} earlier searches {alike} ({measure})"
