@@ -75,24 +75,30 @@ def agreement(space: Space, tasks: Sequence[Any], impute: Imputer, seed: int = 0
     n = len(tasks)
     if n < MIN_TASKS:
         return None
-    configs = space.sample(REFERENCE, np.random.default_rng([seed, 2]))
-    X = np.vstack([space.encode(c) for c in configs])
-    U = np.column_stack([np.asarray(impute(j, X), float) for j in range(n)])
-    with np.errstate(invalid="ignore", divide="ignore"):
-        rho = np.atleast_2d(spearmanr(U).statistic)
-    off = ~np.eye(n, dtype=bool)
+    X = space.encode_many(space.sample(REFERENCE, np.random.default_rng([seed, 2])))
+    # Each task's best configuration, then up to OWN of its others: one block of rows per task.
     rng = np.random.default_rng([seed, 3])
-    share = np.zeros((n, n))
-    for i, t in enumerate(tasks):
+    blocks = []
+    for t in tasks:
         Xi, yi = np.asarray(t.X, float), np.asarray(t.y, float)
         b = int(np.argmin(yi))
         rest = np.delete(np.arange(len(yi)), b)
         rest = rest if len(rest) <= OWN else rng.choice(rest, OWN, replace=False)
-        Q = np.vstack([Xi[b : b + 1], Xi[rest]])
-        for j in range(n):
-            if j != i:
-                v = np.asarray(impute(j, Q), float)
-                share[i, j] = float((v[1:] < v[0]).mean())  # of task i's other points, better on j
+        blocks.append(np.vstack([Xi[b : b + 1], Xi[rest]]))
+    edges = np.cumsum([0] + [len(q) for q in blocks])
+    # One imputation per task, at the reference and at every block together.
+    imputed = [np.asarray(impute(j, np.vstack([X, *blocks])), float) for j in range(n)]
+    U = np.column_stack([v[: len(X)] for v in imputed])
+    with np.errstate(invalid="ignore", divide="ignore"):
+        rho = np.atleast_2d(spearmanr(U).statistic)
+    off = ~np.eye(n, dtype=bool)
+    share = np.zeros((n, n))
+    for j, v in enumerate(imputed):
+        on_j = v[len(X) :]
+        for i in range(n):
+            if i != j:
+                block = on_j[edges[i] : edges[i + 1]]
+                share[i, j] = float((block[1:] < block[0]).mean())  # of task i's other points, better on j
     return Agreement(n, float(np.nan_to_num(rho[off], nan=0.0).mean()), float(share[off].mean()))
 
 
